@@ -1,0 +1,1 @@
+"""Blood O2 and CO2 chemistry and acid-base balance."""

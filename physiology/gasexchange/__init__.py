@@ -1,0 +1,1 @@
+"""Gas exchange: alveolar equations and the multi-compartment V/Q lung."""
