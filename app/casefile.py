@@ -1,0 +1,264 @@
+"""Case files (``.ventcast.json``): reading, validation and atomic saving.
+
+A case is validated in two stages: the JSON Schema in
+``resources/schema/case.schema.json`` (structure, types, unknown keys), then
+physiological range and consistency checks here. Every refusal is a
+:class:`CaseError` whose message names the field, the value and what is
+accepted.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import math
+import os
+import tempfile
+from importlib import resources
+from pathlib import Path
+
+import jsonschema
+
+from physiology.gasexchange.alveolar import alveolar_po2
+from physiology.indices import predicted_body_weight
+
+FORMAT = "ventcast.case"
+VERSION = 1
+MAX_BYTES = 1_000_000
+DEMO_NAMES = ("ards-moderate", "copd-trapping", "postop-wean", "refractory-shunt")
+
+#: Defaults for optional fields, documented in the README.
+PATIENT_DEFAULTS = {"temperature_c": 37.0, "barometric_mmhg": 760.0, "hb_g_dl": 12.0, "age_years": None}
+SETTINGS_DEFAULTS = {"apparatus_dead_space_ml": 0.0, "vt_ml": None, "inspiratory_pressure_cmh2o": None}
+
+# (low, high, unit) accepted in code, after the schema.
+SETTING_RANGES = {
+    "peep_cmh2o": (0.0, 30.0, "cmH2O"),
+    "rr_per_min": (1.0, 60.0, "/min"),
+    "inspiratory_time_s": (0.2, 5.0, "s"),
+    "inspiratory_pressure_cmh2o": (1.0, 50.0, "cmH2O"),
+    "apparatus_dead_space_ml": (0.0, 300.0, "mL"),
+}
+OBSERVATION_RANGES = {
+    "pao2_mmhg": (20.0, 700.0, "mmHg"),
+    "paco2_mmhg": (10.0, 150.0, "mmHg"),
+    "ph": (6.5, 8.0, ""),
+    "hco3_mmol_l": (2.0, 60.0, "mmol/L"),
+    "petco2_mmhg": (0.0, 150.0, "mmHg"),
+    "pplat_cmh2o": (0.0, 60.0, "cmH2O"),
+    "ppeak_cmh2o": (0.0, 80.0, "cmH2O"),
+    "vte_ml": (20.0, 2500.0, "mL"),
+    "ve_l_min": (0.5, 40.0, "L/min"),
+    "vco2_ml_min": (50.0, 800.0, "mL/min"),
+    "cardiac_output_l_min": (1.0, 20.0, "L/min"),
+}
+#: PaO2 may exceed the ideal alveolar PO2 by at most this much before we refuse [mmHg].
+PAO2_ABOVE_ALVEOLAR_TOLERANCE = 10.0
+
+
+class CaseError(ValueError):
+    """A case file or value that cannot be used; ``field`` is the JSON path."""
+
+    def __init__(self, field: str, message: str):
+        super().__init__(f"{field}: {message}")
+        self.field = field
+
+
+def _schema() -> dict:
+    text = resources.files("resources.schema").joinpath("case.schema.json").read_text(encoding="utf-8")
+    return json.loads(text)
+
+
+def _path(parts) -> str:
+    out = ""
+    for p in parts:
+        out += f"[{p}]" if isinstance(p, int) else (f".{p}" if out else str(p))
+    return out or "(case)"
+
+
+def _schema_errors(doc: dict) -> None:
+    validator = jsonschema.Draft202012Validator(_schema())
+    errors = sorted(validator.iter_errors(doc), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
+    if not errors:
+        return
+    err = errors[0]
+    where = _path(err.absolute_path)
+    if err.validator == "additionalProperties":
+        extra = sorted(set(err.instance) - set(err.schema.get("properties", {})))
+        raise CaseError(_path(list(err.absolute_path) + [extra[0]]), f"unknown key {extra[0]!r} is not accepted")
+    if err.validator == "required":
+        missing = [k for k in err.validator_value if k not in err.instance][0]
+        raise CaseError(_path(list(err.absolute_path) + [missing]), "required field is missing")
+    if err.validator in ("minimum", "maximum"):
+        s = err.schema
+        raise CaseError(where, f"value {err.instance!r} is outside the accepted range "
+                               f"{s.get('minimum')} to {s.get('maximum')}")
+    if err.validator == "type":
+        raise CaseError(where, f"value {err.instance!r} has the wrong type; expected {err.validator_value}")
+    if err.validator in ("enum", "const"):
+        allowed = err.validator_value if err.validator == "enum" else [err.validator_value]
+        raise CaseError(where, f"value {err.instance!r} is not accepted; expected one of {allowed}")
+    raise CaseError(where, err.message)
+
+
+def _finite(field: str, value) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        raise CaseError(field, f"value {value!r} must be a finite number")
+    return float(value)
+
+
+def _check(field: str, value, low: float, high: float, unit: str) -> float:
+    v = _finite(field, value)
+    if not low <= v <= high:
+        u = f" {unit}" if unit else ""
+        raise CaseError(field, f"value {v:g}{u} is outside the accepted range {low:g} to {high:g}{u}")
+    return v
+
+
+def check_fio2_field(field: str, value) -> float:
+    v = _finite(field, value)
+    if 21 <= v <= 100:
+        raise CaseError(field, f"value {v:g} is outside the accepted range 0.21 to 1.0: FiO2 is a fraction "
+                               f"from 0.21 to 1.0; did you mean {v / 100:.2f}?")
+    if not 0.21 <= v <= 1.0:
+        raise CaseError(field, f"value {v:g} is outside the accepted range 0.21 to 1.0 (a fraction)")
+    return v
+
+
+def check_fraction_field(field: str, value) -> float:
+    v = _finite(field, value)
+    if 1 < v <= 100:
+        raise CaseError(field, f"value {v:g} is outside the accepted range 0 to 1: saturations are "
+                               f"fractions; did you mean {v / 100:.2f}?")
+    if not 0 <= v <= 1:
+        raise CaseError(field, f"value {v:g} is outside the accepted range 0 to 1 (a fraction)")
+    return v
+
+
+def check_settings(field: str, settings: dict, pbw_kg: float) -> dict:
+    """Range-check one settings block; return it with defaults filled in."""
+    s = dict(SETTINGS_DEFAULTS)
+    s.update({k: v for k, v in settings.items() if v is not None or k not in s})
+    check_fio2_field(f"{field}.fio2", s["fio2"])
+    for key, (lo, hi, unit) in SETTING_RANGES.items():
+        if s.get(key) is not None:
+            _check(f"{field}.{key}", s[key], lo, hi, unit)
+    if s["apparatus_dead_space_ml"] is None:
+        s["apparatus_dead_space_ml"] = 0.0
+    if s["mode"] == "volume":
+        if s.get("vt_ml") is None:
+            raise CaseError(f"{field}.vt_ml", "required in volume mode")
+        lo, hi = 2.0 * pbw_kg, 20.0 * pbw_kg
+        _check(f"{field}.vt_ml", s["vt_ml"], round(lo), round(hi), "mL (2 to 20 mL/kg PBW)")
+    else:
+        if s.get("inspiratory_pressure_cmh2o") is None:
+            raise CaseError(f"{field}.inspiratory_pressure_cmh2o", "required in pressure mode")
+    breath = 60.0 / s["rr_per_min"]
+    if s["inspiratory_time_s"] >= breath:
+        raise CaseError(f"{field}.inspiratory_time_s",
+                        f"value {s['inspiratory_time_s']:g} s leaves no time to breathe out at RR "
+                        f"{s['rr_per_min']:g}/min (breath {breath:.2f} s); accepted range 0.2 to below {breath:.2f} s")
+    return s
+
+
+def validate(doc) -> dict:
+    """Validate a parsed case; return a normalised deep copy with defaults filled in."""
+    if not isinstance(doc, dict):
+        raise CaseError("(case)", "a case file must hold a JSON object")
+    if doc.get("format") != FORMAT:
+        raise CaseError("format", f"value {doc.get('format')!r} is not accepted; expected {FORMAT!r}")
+    version = doc.get("version")
+    if isinstance(version, int) and not isinstance(version, bool) and version > VERSION:
+        raise CaseError("version", f"this case was written by a newer Ventcast (file version {version}); "
+                                   f"this version reads up to {VERSION}")
+    _schema_errors(doc)
+    case = copy.deepcopy(doc)
+    patient = dict(PATIENT_DEFAULTS)
+    patient.update({k: v for k, v in case["patient"].items() if v is not None})
+    case["patient"] = patient
+    pbw = float(predicted_body_weight(patient["height_cm"], patient["sex"]))
+    case["settings"] = check_settings("settings", case["settings"], pbw)
+    pb = patient["barometric_mmhg"]
+    t = patient["temperature_c"]
+    for i, obs in enumerate(case["observations"]):
+        field = f"observations[{i}]"
+        obs["settings"] = check_settings(f"{field}.settings", obs.get("settings") or case["settings"], pbw)
+        for key, (lo, hi, unit) in OBSERVATION_RANGES.items():
+            if obs.get(key) is not None:
+                _check(f"{field}.{key}", obs[key], lo, hi, unit)
+        if obs.get("sao2") is not None:
+            check_fraction_field(f"{field}.sao2", obs["sao2"])
+        fio2 = obs["settings"]["fio2"]
+        pa_ideal = float(alveolar_po2(fio2, obs["paco2_mmhg"], 0.8, pb, min(max(t, 20.0), 45.0)))
+        if obs["pao2_mmhg"] > pa_ideal + PAO2_ABOVE_ALVEOLAR_TOLERANCE:
+            raise CaseError(f"{field}.pao2_mmhg",
+                            f"value {obs['pao2_mmhg']:g} mmHg is impossible at FiO2 {fio2:g} with PaCO2 "
+                            f"{obs['paco2_mmhg']:g} mmHg: the alveolar PO2 is only {pa_ideal:.0f} mmHg "
+                            f"(accepted up to {pa_ideal + PAO2_ABOVE_ALVEOLAR_TOLERANCE:.0f}). Likely causes: "
+                            f"FiO2 recorded wrongly, or air in the sample")
+    return case
+
+
+def loads(text: str) -> dict:
+    """Parse and validate case text."""
+    try:
+        doc = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise CaseError("(file)", f"not valid JSON: {exc.msg} at line {exc.lineno}, column {exc.colno}") from None
+    return validate(doc)
+
+
+def load(path) -> dict:
+    """Read and validate a case file."""
+    p = Path(path)
+    try:
+        size = p.stat().st_size
+    except OSError as exc:
+        raise CaseError("(file)", f"cannot read {str(p)!r}: {exc.strerror}") from None
+    if size > MAX_BYTES:
+        raise CaseError("(file)", f"{str(p)!r} is {size} bytes; a case file may be at most {MAX_BYTES} bytes")
+    try:
+        text = p.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise CaseError("(file)", f"cannot read {str(p)!r} as UTF-8 text: {exc}") from None
+    return loads(text)
+
+
+def demo_text(name: str) -> str:
+    """Text of a built-in demo case."""
+    if name not in DEMO_NAMES:
+        raise CaseError("--demo", f"value {name!r} is not a demo case; accepted: {', '.join(DEMO_NAMES)}")
+    return resources.files("resources.demo").joinpath(f"{name}.ventcast.json").read_text(encoding="utf-8")
+
+
+def load_demo(name: str) -> dict:
+    return loads(demo_text(name))
+
+
+def write_atomic(path, text: str) -> None:
+    """Write ``text`` to ``path`` atomically: temporary file in the same folder, fsync, rename."""
+    target = Path(path)
+    folder = target.parent if str(target.parent) else Path(".")
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=folder)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, target)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+def dumps(case: dict) -> str:
+    return json.dumps(case, indent=2) + "\n"
+
+
+def save(path, case: dict) -> None:
+    """Validate then save a case atomically."""
+    validate(case)
+    write_atomic(path, dumps(case))

@@ -1,0 +1,631 @@
+"""Multi-compartment V/Q lung solved to a whole-body steady state.
+
+The lung is true shunt (V/Q = 0), N perfused units carrying a log-normal
+distribution of perfusion over V/Q (dispersion ``log_sd`` on the natural-log
+scale, 50 units over +/-3.5 SD), an optional second high-V/Q mode (20 units;
+overdistended lung), and alveolar dead space (V/Q = infinity). Series dead space
+(anatomic + apparatus) enters only the mixed-expired gas.
+
+Each unit's end-capillary gas equals its alveolar gas. Its O2 and CO2 mass
+balances are those of West 1969, with inspired ventilation from the N2 balance:
+
+    CO2:  (VA/Q) PCO2 = K (CvCO2 - Cc'CO2)
+    O2:   PIO2 (1 - (PO2 + PCO2)/Pdry) - (1 - FiO2) PO2 = (1 - FiO2) (K / (VA/Q)) (Cc'O2 - CvO2)
+
+with ``K = 10 k`` (k = 0.863 mmHg L/mL at 37 degC, see :func:`btps_factor`) and
+``Pdry = PB - PH2O``. The O2 balance is written multiplied through by
+``(1 - FiO2)`` so that FiO2 = 1.0 needs no special case: it reduces to
+``PO2 + PCO2 = Pdry`` (no N2 in the lung). Mixed-venous contents close the loop
+by Fick with VO2, VCO2 and cardiac output given.
+
+Numerics: one Newton iteration updates every unit's (PO2, PCO2) and the two
+mixed-venous contents together. The Jacobian is block-diagonal per unit with a
+two-column border for the mixed-venous unknowns; the border is eliminated by a
+Schur complement, so each iteration costs a handful of vectorised operations on
+arrays of shape (batch, units) — no loop over units or over the batch.
+Content derivatives are analytic. The small dependence of capillary pH on
+saturation (oxylabile term) is lagged one iteration; at convergence it is
+exact.
+
+Blood chemistry: Severinghaus 1979 curve on Kelman's virtual PO2 (O2), Kelman
+1967 (CO2, Haldane effect), West/Wagner whole-blood buffer line for capillary
+pH; the arterial pH reported is the in-vivo curve at fixed standard base excess
+(:func:`physiology.bloodgas.acidbase.ph_invivo`).
+
+References
+----------
+[1] West JB. Ventilation-perfusion inequality and overall gas exchange in
+    computer models of the lung. Respir Physiol 1969;7:88-110 (from memory).
+[2] Wagner PD, Saltzman HA, West JB. Measurement of continuous distributions of
+    ventilation-perfusion ratios: theory. J Appl Physiol 1974;36:588-599.
+[3] Riley RL, Cournand A. J Appl Physiol 1949;1:825-847 (ideal alveolar air).
+[4] Berggren SM. Acta Physiol Scand 1942;4(Suppl 11):1-92 (shunt equation).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, fields
+
+import numpy as np
+
+from .._checks import check_fio2, check_range
+from ..bloodgas.acidbase import _ph_invivo
+from ..bloodgas.carbon_dioxide import MMOL_TO_ML_DL
+from ..bloodgas.oxygen import _SEV_A, _SEV_B, HUFNER_DEFAULT, O2_SOLUBILITY
+from .alveolar import btps_factor, water_vapour_pressure_antoine
+
+__all__ = ["LungParameters", "SteadyState", "solve_steady_state", "DOMAIN",
+           "N_MAIN_UNITS", "N_HIGH_UNITS", "unit_equations"]
+
+N_MAIN_UNITS = 50
+N_HIGH_UNITS = 20
+_Z_MAIN = np.linspace(-3.5, 3.5, N_MAIN_UNITS)
+_Z_HIGH = np.linspace(-3.0, 3.0, N_HIGH_UNITS)
+
+#: Below this mixed-venous PO2 [mmHg] a fixed VO2 can no longer be extracted by tissue, so the
+#: model's fixed-VO2 steady state is not physiological (critical PvO2 of roughly 15-25 mmHg;
+#: from memory, chosen at the low end so that only clearly unsurvivable states are refused).
+MIN_MIXED_VENOUS_PO2 = 15.0
+
+#: Documented input domain: (low, high, unit). Values outside are refused.
+DOMAIN = {
+    "fio2": (0.21, 1.0, ""),
+    "shunt": (0.0, 0.8, ""),
+    "log_sd": (0.0, 2.5, ""),
+    "alveolar_ventilation": (0.5, 30.0, "L/min"),
+    "dead_space_fraction": (0.0, 0.8, ""),
+    "cardiac_output": (1.0, 20.0, "L/min"),
+    "vo2": (50.0, 800.0, "mL/min"),
+    "vco2": (40.0, 700.0, "mL/min"),
+    "hb": (3.0, 22.0, "g/dL"),
+    "temperature": (30.0, 42.0, "degC"),
+    "barometric": (450.0, 800.0, "mmHg"),
+    "base_excess": (-30.0, 30.0, "mmol/L"),
+    "series_ventilation": (0.0, 30.0, "L/min"),
+    "high_vq_fraction": (0.0, 0.5, ""),
+    "high_vq_ratio": (2.0, 100.0, ""),
+    "high_vq_log_sd": (0.0, 1.5, ""),
+    "hufner": (1.30, 1.40, "mL/g"),
+}
+
+
+@dataclass(frozen=True)
+class LungParameters:
+    """Inputs of the steady-state lung; each field a scalar or an array of shape (B,).
+
+    Attributes
+    ----------
+    fio2 : inspired O2 fraction [fraction 0.21-1.0]
+    shunt : true shunt, fraction of cardiac output [fraction]
+    log_sd : dispersion of the perfusion distribution over ln(V/Q) [unitless]
+    alveolar_ventilation : VA, all ventilation reaching alveoli incl. alveolar dead space [L/min BTPS]
+    dead_space_fraction : share of VA going to unperfused alveoli [fraction]
+    cardiac_output : Qt [L/min]
+    vo2 : O2 consumption [mL/min STPD]
+    vco2 : CO2 production [mL/min STPD]
+    hb : haemoglobin [g/dL]
+    temperature : body temperature [degC]
+    barometric : barometric pressure [mmHg]
+    base_excess : standard base excess, the metabolic state [mmol/L]
+    series_ventilation : RR x series dead space (anatomic + apparatus) [L/min]
+    high_vq_fraction : share of non-shunt perfusion in the high-V/Q mode [fraction]
+    high_vq_ratio : centre of the high mode relative to the main mode [unitless]
+    high_vq_log_sd : dispersion of the high mode [unitless]
+    hufner : O2 per g Hb [mL/g]
+    """
+
+    fio2: object = 0.21
+    shunt: object = 0.0
+    log_sd: object = 0.0
+    alveolar_ventilation: object = 4.3
+    dead_space_fraction: object = 0.0
+    cardiac_output: object = 5.0
+    vo2: object = 250.0
+    vco2: object = 200.0
+    hb: object = 15.0
+    temperature: object = 37.0
+    barometric: object = 760.0
+    base_excess: object = 0.0
+    series_ventilation: object = 0.0
+    high_vq_fraction: object = 0.0
+    high_vq_ratio: object = 10.0
+    high_vq_log_sd: object = 0.4
+    hufner: object = HUFNER_DEFAULT
+
+    def arrays(self) -> dict:
+        """Validated inputs broadcast to a common 1-D batch shape (B,)."""
+        values = [getattr(self, name) for name in _FIELD_NAMES]
+        if all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in values):
+            # Fast path for one case: check every bound at once; on any failure fall through to
+            # the field-by-field checks, which word the message.
+            x = np.array(values, dtype=float)
+            if np.all(np.isfinite(x) & (x >= _LOW) & (x <= _HIGH)):
+                return {name: x[i:i + 1].copy() for i, name in enumerate(_FIELD_NAMES)}, ()
+        out = {}
+        for f in fields(self):
+            lo, hi, unit = DOMAIN[f.name]
+            v = getattr(self, f.name)
+            if f.name == "fio2":
+                out[f.name] = check_fio2(v)
+            else:
+                out[f.name] = check_range(f.name, v, lo, hi, unit)
+        shapes = [np.shape(v) for v in out.values()]
+        try:
+            shape = np.broadcast_shapes(*shapes)
+        except ValueError:
+            raise ValueError(f"LungParameters fields have incompatible shapes: {shapes}") from None
+        if len(shape) > 1:
+            raise ValueError(f"LungParameters fields must be scalars or 1-D arrays, got shape {shape}")
+        n = shape[0] if shape else 1
+        return {k: np.broadcast_to(v, (n,)).astype(float) for k, v in out.items()}, shape
+
+    @property
+    def is_batch(self) -> bool:
+        return any(np.ndim(getattr(self, f.name)) > 0 for f in fields(self))
+
+
+_FIELD_NAMES = tuple(f.name for f in fields(LungParameters))
+_LOW = np.array([DOMAIN[k][0] for k in _FIELD_NAMES])
+_HIGH = np.array([DOMAIN[k][1] for k in _FIELD_NAMES])
+
+
+@dataclass(frozen=True)
+class SteadyState:
+    """Result of :func:`solve_steady_state`. Arrays have the batch shape of the inputs.
+
+    Attributes (units in brackets)
+    ------------------------------
+    success : converged to a physiological steady state [bool]
+    message : summary; ``reasons`` holds one per case ('' when it succeeded)
+    pao2, paco2 [mmHg]; ph [pH units]; sao2 [fraction]
+    pvo2, pvco2 [mmHg]; svo2 [fraction]
+    cao2, cvo2, caco2, cvco2 [mL/dL]
+    pe_co2 : mixed-expired PCO2 incl. series dead space [mmHg]
+    petco2 : end-tidal PCO2, ventilation-weighted alveolar incl. alveolar dead space [mmHg]
+    vd_vt : physiological dead-space fraction, Bohr-Enghoff from the model's expired gas [fraction]
+    shunt : true shunt Qs/Qt [fraction]
+    venous_admixture : Berggren at this FiO2, from ideal alveolar gas [fraction]
+    overall_vq : VA / Qt [unitless]
+    pf_ratio [mmHg]; alveolar_po2 : ideal, full alveolar gas equation [mmHg]; aa_gradient [mmHg]
+    o2_uptake, co2_output : summed over units [mL/min STPD]
+    unit_vq [unitless], unit_ventilation [L/min], unit_perfusion [L/min],
+    unit_po2, unit_pco2 [mmHg] : the distribution, shape (..., units)
+    iterations : Newton iterations used
+    parameters : the inputs
+    """
+
+    success: np.ndarray
+    message: str
+    reasons: np.ndarray
+    pao2: np.ndarray
+    paco2: np.ndarray
+    ph: np.ndarray
+    sao2: np.ndarray
+    pvo2: np.ndarray
+    pvco2: np.ndarray
+    svo2: np.ndarray
+    cao2: np.ndarray
+    cvo2: np.ndarray
+    caco2: np.ndarray
+    cvco2: np.ndarray
+    pe_co2: np.ndarray
+    petco2: np.ndarray
+    vd_vt: np.ndarray
+    shunt: np.ndarray
+    venous_admixture: np.ndarray
+    overall_vq: np.ndarray
+    pf_ratio: np.ndarray
+    alveolar_po2: np.ndarray
+    aa_gradient: np.ndarray
+    o2_uptake: np.ndarray
+    co2_output: np.ndarray
+    unit_vq: np.ndarray
+    unit_ventilation: np.ndarray
+    unit_perfusion: np.ndarray
+    unit_po2: np.ndarray
+    unit_pco2: np.ndarray
+    iterations: int
+    parameters: LungParameters = field(repr=False)
+
+
+# --- blood contents with analytic derivatives --------------------------------------------
+
+_LN10 = np.log(10.0)
+_LN20 = np.log(20.0)
+_LN40 = np.log(40.0)
+_BOHR = 0.40 * _LN10  # Kelman: d ln(virtual PO2) / d pH
+_DLNX_DC = _BOHR * 0.2741 + 0.06  # -d ln(virtual PO2) / d ln PCO2 along the buffer line
+
+
+class _Blood:
+    """Per-case blood constants, shaped (B, 1) to broadcast over units."""
+
+    def __init__(self, hb, temperature, offset, hufner):
+        self.hb = hb
+        self.hct = hb / 33.3
+        self.t = temperature
+        self.offset = offset
+        self.cap = hufner * hb
+        dt = 37.0 - temperature
+        self.sol = 0.0307 + 0.00057 * dt + 0.00002 * dt * dt
+        self.log_kelman_t = _LN10 * 0.024 * dt
+        self.dpk_dp = 0.042 + 0.00139 * (38.0 - temperature)
+
+    def contents(self, p, c, s_guess, derivatives=True):
+        """O2 and CO2 contents [mL/dL] at PO2 ``p``, PCO2 ``c`` [mmHg], with derivatives.
+
+        Capillary pH depends on saturation (oxylabile term) and saturation on pH
+        (Bohr): this loop is closed by one Newton correction from ``s_guess``
+        (contraction ~0.03, so the remaining error is ~1e-3 of the guess error);
+        derivatives are implicit, so the outer Newton stays quadratic.
+        """
+        lnc = np.log(c)
+        oxy = 0.003 * self.hb
+        ph_base = 7.59 + self.offset + oxy - 0.2741 * (lnc - _LN20)
+        ph = ph_base - oxy * s_guess
+        lx = np.log(p) + self.log_kelman_t + _BOHR * (ph - 7.4) + 0.06 * (_LN40 - lnc)
+        x = np.exp(lx)
+        x2 = x * x
+        q = x * (x2 + _SEV_B)
+        den = q + _SEV_A
+        fx = _SEV_A * (3.0 * x2 + _SEV_B) * x / (den * den)  # dS/d ln x
+        kappa = fx * _BOHR * oxy
+        s_new = s_guess + (q / den - s_guess) / (1.0 + kappa)
+        ph = ph_base - oxy * s_new
+        x = x * np.exp(-_BOHR * oxy * (s_new - s_guess))
+        x2 = x * x
+        q = x * (x2 + _SEV_B)
+        den = q + _SEV_A
+        s = q / den
+        o2 = self.cap * s + O2_SOLUBILITY * p
+        # Kelman 1967 CO2
+        pp = 7.4 - ph
+        pk = 6.086 + 0.042 * pp + (38.0 - self.t) * (0.00472 + 0.00139 * pp)
+        dox = 0.590 + 0.2913 * pp - 0.0844 * pp * pp
+        dr = 0.664 + 0.2275 * pp - 0.0938 * pp * pp
+        ddd = dox + (dr - dox) * (1.0 - s)
+        e = np.exp(_LN10 * (ph - pk))
+        cp = self.sol * c * (1.0 + e)
+        mix = self.hct * ddd + (1.0 - self.hct)
+        co2 = MMOL_TO_ML_DL * mix * cp
+        if not derivatives:
+            return o2, co2, s, ph
+        fx = _SEV_A * (3.0 * x2 + _SEV_B) * x / (den * den)
+        inv = 1.0 / (1.0 + fx * _BOHR * oxy)
+        ds_dp = fx * inv / p
+        ds_dc = -fx * inv * _DLNX_DC / c
+        do2_dp = self.cap * ds_dp + O2_SOLUBILITY
+        do2_dc = self.cap * ds_dc
+        dpp_dp = oxy * ds_dp
+        dpp_dc = 0.2741 / c + oxy * ds_dc
+        ddox = 0.2913 - 0.1688 * pp
+        dddd_dpp = ddox + ((0.2275 - 0.1876 * pp) - ddox) * (1.0 - s)
+        dddd_ds = -(dr - dox)
+        dcp_dpp = -self.sol * c * e * _LN10 * (1.0 + self.dpk_dp)
+        hcp = self.hct * cp
+        dco2_dp = MMOL_TO_ML_DL * (hcp * (dddd_dpp * dpp_dp + dddd_ds * ds_dp) + mix * dcp_dpp * dpp_dp)
+        dco2_dc = MMOL_TO_ML_DL * (hcp * (dddd_dpp * dpp_dc + dddd_ds * ds_dc)
+                                   + mix * (self.sol * (1.0 + e) + dcp_dpp * dpp_dc))
+        return o2, co2, s, ph, do2_dp, do2_dc, dco2_dp, dco2_dc
+
+
+# --- the unit equations (also used by the reference solver in tests) ----------------------
+
+def unit_equations(p, c, vq, cvo2, cvco2, fio2, pio2, pdry, k_flux, blood, s_lag):
+    """Residuals of one unit's O2 and CO2 balances [mmHg]; see the module docstring."""
+    o2, co2, s, _ph = blood.contents(p, c, s_lag, derivatives=False)
+    e1 = vq * c - k_flux * (cvco2 - co2)
+    e2 = pio2 * (1.0 - (p + c) / pdry) - (1.0 - fio2) * p - (1.0 - fio2) * (k_flux / vq) * (o2 - cvo2)
+    return e1, e2, s
+
+
+def _distribution(a):
+    """Unit V/Q, perfusion and ventilation, each (B, N); N = 50, or 70 with a high-V/Q mode."""
+    n = a["fio2"].shape[0]
+    sd = a["log_sd"][:, None]
+    w_main = np.exp(-0.5 * _Z_MAIN ** 2)
+    w_main = np.broadcast_to(w_main / w_main.sum(), (n, N_MAIN_UNITS))
+    shape_main = np.exp(sd * _Z_MAIN)
+    if np.any(a["high_vq_fraction"] > 0):
+        f2 = a["high_vq_fraction"][:, None]
+        w_high = np.exp(-0.5 * _Z_HIGH ** 2)
+        w_high = w_high / w_high.sum()
+        weights = np.concatenate([(1.0 - f2) * w_main, f2 * w_high], axis=1)
+        shape = np.concatenate([shape_main, a["high_vq_ratio"][:, None]
+                                * np.exp(a["high_vq_log_sd"][:, None] * _Z_HIGH)], axis=1)
+    else:
+        weights = np.array(w_main)
+        shape = shape_main
+    q_perfused = (1.0 - a["shunt"]) * a["cardiac_output"]
+    va_perfused = (1.0 - a["dead_space_fraction"]) * a["alveolar_ventilation"]
+    scale = va_perfused / (q_perfused * np.sum(weights * shape, axis=1))
+    vq = scale[:, None] * shape
+    perfusion = q_perfused[:, None] * weights
+    return vq, weights, perfusion, perfusion * vq
+
+
+def _solve_arrays(a: dict, tol: float, max_iter: int) -> dict:
+    """Solve one chunk of validated, broadcast inputs; return per-case arrays.
+
+    Work arrays have N + 2 columns: the N units, then the arterial and the mixed-venous
+    blood, whose PO2/PCO2 are found by inverting their contents inside the same Newton
+    loop (so one content evaluation per iteration serves all three jobs).
+    """
+    n = a["fio2"].shape[0]
+    t = a["temperature"]
+    k_btps = btps_factor(t)
+    k_flux = (10.0 * k_btps)[:, None]
+    pdry = (a["barometric"] - water_vapour_pressure_antoine(t))[:, None]
+    fio2 = a["fio2"][:, None]
+    pio2 = fio2 * pdry
+    sbe = a["base_excess"]
+    offset = (_ph_invivo(np.full(n, 40.0), sbe) - _PH40_SBE0) if np.any(sbe != 0) else np.zeros(n)
+    blood = _Blood(a["hb"][:, None], t[:, None], offset[:, None], a["hufner"][:, None])
+
+    vq, w, perfusion, ventilation = _distribution(a)
+    nu = vq.shape[1]
+    ns = 1.0 - a["shunt"]
+    shunt = a["shunt"]
+    fick_o2 = a["vo2"] / (10.0 * a["cardiac_output"])
+    fick_co2 = a["vco2"] / (10.0 * a["cardiac_output"])
+    ko2 = (1.0 - fio2) * (k_flux / vq)
+    a21_const = -pio2 / pdry - (1.0 - fio2)
+    a22_const = -pio2 / pdry
+    wn = w * ns[:, None]
+
+    # Start: mixed venous PO2 40, PCO2 from the alveolar ventilation equation + 6.
+    va_perf = ((1.0 - a["dead_space_fraction"]) * a["alveolar_ventilation"])[:, None]
+    pa_co2_guess = np.clip(k_btps[:, None] * a["vco2"][:, None] / va_perf, 15.0, 150.0)
+    pv_o2 = np.full((n, 1), 40.0)
+    pv_co2 = pa_co2_guess + 6.0
+    cvo2, cvco2, _s, _ph = blood.contents(pv_o2, pv_co2, np.full((n, 1), 0.75), derivatives=False)
+    cvo2, cvco2 = cvo2[:, 0], cvco2[:, 0]
+    # Units start from linearised dissociation curves (CO2 slope 0.45, O2 slope 0.05 mL/dL/mmHg).
+    beta = 0.45 * blood.hb / 15.0 + 0.1
+    cu = k_flux * beta * pv_co2 / (vq + k_flux * beta)
+    b_o2 = 0.05 * blood.hb / 15.0
+    num = pio2 * (1.0 - cu / pdry) + ko2 * b_o2 * pv_o2
+    den = pio2 / pdry + (1.0 - fio2) + ko2 * b_o2
+    pu = np.clip(num / den, pv_o2, np.maximum(pio2 - cu, pv_o2 + 1.0))
+    cu = np.maximum(cu, 0.5)
+    p = np.concatenate([pu, np.sum(w * pu, axis=1, keepdims=True), pv_o2], axis=1)
+    c = np.concatenate([cu, np.sum(w * cu, axis=1, keepdims=True), pv_co2], axis=1)
+    s_lag = np.full_like(p, 0.9)
+    p_cap = np.concatenate([np.broadcast_to(pio2 + 1.0, pu.shape),
+                            np.broadcast_to(pio2 + 1.0, (n, 2))], axis=1)
+
+    converged = np.zeros(n, dtype=bool)
+    collapse_count = np.zeros(n, dtype=int)
+    collapsed = np.zeros(n, dtype=bool)
+    bad_numbers = np.zeros(n, dtype=bool)
+    dp = np.empty_like(p)
+    dc = np.empty_like(c)
+    state = None
+    it = 0
+    for it in range(1, max_iter + 1):
+        o2, co2, s, _ph, do2_dp, do2_dc, dco2_dp, dco2_dc = blood.contents(p, c, s_lag)
+        uo2, uco2 = o2[:, :nu], co2[:, :nu]
+        cu = c[:, :nu]
+        # Unit residuals (West 1969 balances) and Fick closure.
+        e1 = vq * cu - k_flux * (cvco2[:, None] - uco2)
+        e2 = pio2 * (1.0 - (p[:, :nu] + cu) / pdry) - (1.0 - fio2) * p[:, :nu] - ko2 * (uo2 - cvo2[:, None])
+        mean_o2 = np.sum(w * uo2, axis=1)
+        mean_co2 = np.sum(w * uco2, axis=1)
+        g1 = ns * (mean_o2 - cvo2) - fick_o2
+        g2 = ns * (cvco2 - mean_co2) - fick_co2
+        # Unit Jacobian A = [[a11, a12], [a21, a22]] in (p, c), inverted in closed form.
+        uo2p, uo2c, uco2p, uco2c = do2_dp[:, :nu], do2_dc[:, :nu], dco2_dp[:, :nu], dco2_dc[:, :nu]
+        a11 = k_flux * uco2p
+        a12 = vq + k_flux * uco2c
+        a21 = a21_const - ko2 * uo2p
+        a22 = a22_const - ko2 * uo2c
+        inv_det = 1.0 / (a11 * a22 - a12 * a21)
+        i11, i12, i21, i22 = a22 * inv_det, -a12 * inv_det, -a21 * inv_det, a11 * inv_det
+        # Border columns (cvo2, cvco2): d e1 = [0, -K], d e2 = [ko2, 0]; A^-1 times them and A^-1 E.
+        m1p, m1c = i12 * ko2, i22 * ko2
+        m2p, m2c = -k_flux * i11, -k_flux * i21
+        uep = i11 * e1 + i12 * e2
+        uec = i21 * e1 + i22 * e2
+        # Fick rows: dg1/d(p,c) = ns w dO2; dg2/d(p,c) = -ns w dCO2. Schur complement on (cvo2, cvco2).
+        c1p, c1c = wn * uo2p, wn * uo2c
+        c2p, c2c = wn * uco2p, wn * uco2c
+        s11 = -ns - np.sum(c1p * m1p + c1c * m1c, axis=1)
+        s12 = -np.sum(c1p * m2p + c1c * m2c, axis=1)
+        s21 = np.sum(c2p * m1p + c2c * m1c, axis=1)
+        s22 = ns + np.sum(c2p * m2p + c2c * m2c, axis=1)
+        r1 = -g1 + np.sum(c1p * uep + c1c * uec, axis=1)
+        r2 = -g2 - np.sum(c2p * uep + c2c * uec, axis=1)
+        sdet = s11 * s22 - s12 * s21
+        dv1 = (s22 * r1 - s12 * r2) / sdet
+        dv2 = (-s21 * r1 + s11 * r2) / sdet
+        # Damp the whole step of a case whose mixed-venous contents would fall below 30 % of
+        # their value (keeps the Newton direction; the solution has positive contents).
+        over1 = dv1 < -0.7 * cvo2
+        over2 = dv2 < -0.7 * cvco2
+        if over1.any() or over2.any():
+            lam = np.minimum(np.where(over1, -0.7 * cvo2 / np.where(over1, dv1, -1.0), 1.0),
+                             np.where(over2, -0.7 * cvco2 / np.where(over2, dv2, -1.0), 1.0))
+            dv1 = lam * dv1
+            dv2 = lam * dv2
+        else:
+            lam = np.ones(n)
+        lam2 = lam[:, None]
+        dpu = -(lam2 * uep + m1p * dv1[:, None] + m2p * dv2[:, None])
+        dcu = -(lam2 * uec + m1c * dv1[:, None] + m2c * dv2[:, None])
+        # Arterial and mixed-venous blood: Newton on their content equations (targets held).
+        ca_o2 = ns * mean_o2 + shunt * cvo2
+        ca_co2 = ns * mean_co2 + shunt * cvco2
+        rb1 = o2[:, nu:] - np.stack([ca_o2, cvo2], axis=1)
+        rb2 = co2[:, nu:] - np.stack([ca_co2, cvco2], axis=1)
+        b11, b12, b21, b22 = do2_dp[:, nu:], do2_dc[:, nu:], dco2_dp[:, nu:], dco2_dc[:, nu:]
+        bdet = b11 * b22 - b12 * b21
+        dpb = -(b22 * rb1 - b12 * rb2) / bdet
+        dcb = -(-b21 * rb1 + b11 * rb2) / bdet
+        # Safeguards: stay positive and below inspired PO2; limit large jumps.
+        dp[:, :nu] = dpu
+        dp[:, nu:] = dpb
+        dc[:, :nu] = dcu
+        dc[:, nu:] = dcb
+        p_try = p + dp
+        c_try = c + dc
+        p_new = np.clip(p_try, 0.3 * p, np.minimum(2.5 * p + 30.0, p_cap))
+        c_new = np.clip(c_try, 0.3 * c, 2.5 * c + 20.0)
+        full_step = (lam == 1.0) & np.all(p_new == p_try, axis=1) & np.all(c_new == c_try, axis=1)
+        step = np.maximum(np.max(np.abs(dp) / (1.0 + p), axis=1), np.max(np.abs(dc) / (1.0 + c), axis=1))
+        step_v = np.maximum(np.abs(dv1), np.abs(dv2)) / (1.0 + np.maximum(cvo2, cvco2))
+        ds = np.max(np.abs(s - s_lag), axis=1)
+        resid = np.maximum(np.max(np.abs(e1) / (1.0 + vq * cu), axis=1), np.max(np.abs(e2) / (1.0 + pio2), axis=1))
+        resid = np.maximum(resid, np.abs(g1) + np.abs(g2))
+        state = (p_new, c_new, cvo2 + dv1, cvco2 + dv2, resid, dpu, dcu, dv1, dv2,
+                 uo2p, uo2c, uco2p, uco2c, b11, b12, b21, b22)
+        p, c, s_lag = p_new, c_new, s
+        cvo2 = cvo2 + dv1
+        cvco2 = cvco2 + dv2
+        bad_numbers = ~(np.isfinite(step) & np.isfinite(step_v))
+        # Stop after a full Newton step below tol: in the quadratic regime the state it reaches is
+        # accurate to about tol squared.
+        converged = full_step & (step < tol) & (step_v < tol) & (ds < 1e-4) & ~bad_numbers
+        # Mixed-venous O2 content driven towards zero (below 2 % saturation-equivalent) for three
+        # iterations running: VO2 cannot be delivered, there is no physiological steady state.
+        collapse_count = np.where(cvo2 < 0.02 * blood.cap[:, 0], collapse_count + 1, 0)
+        collapsed = collapse_count >= 3
+        if np.all(converged | bad_numbers | collapsed):
+            break
+
+    # The accepted state is the one reached by the last (small, full) Newton step. The residuals
+    # at its start must be small too: the safeguarded steps must not hide a non-solution.
+    (p, c, cvo2, cvco2, resid, dpu, dcu, dv1, dv2,
+     uo2p, uo2c, uco2p, uco2c, b11, b12, b21, b22) = state
+    converged &= resid < 1e-3
+    # Contents at the accepted state, to first order from the last derivatives (error ~ step^2).
+    uo2 = o2[:, :nu] + uo2p * dpu + uo2c * dcu
+    uco2 = co2[:, :nu] + uco2p * dpu + uco2c * dcu
+    ca_o2 = ns * np.sum(w * uo2, axis=1) + shunt * cvo2
+    ca_co2 = ns * np.sum(w * uco2, axis=1) + shunt * cvco2
+    # The arterial and venous Newton steps aimed at the previous targets; move them to the new ones.
+    t1 = np.stack([ns * np.sum(w * (uo2p * dpu + uo2c * dcu), axis=1) + shunt * dv1, dv1], axis=1)
+    t2 = np.stack([ns * np.sum(w * (uco2p * dpu + uco2c * dcu), axis=1) + shunt * dv2, dv2], axis=1)
+    bdet = b11 * b22 - b12 * b21
+    p = p.copy()
+    c = c.copy()
+    p[:, nu:] += (b22 * t1 - b12 * t2) / bdet
+    c[:, nu:] += (-b21 * t1 + b11 * t2) / bdet
+    cu = c[:, :nu]
+    pa_o2, pv_o2 = p[:, nu], p[:, nu + 1]
+    pa_co2, pv_co2 = c[:, nu], c[:, nu + 1]
+    s = s + 0.0
+    sa, sv = s[:, nu], s[:, nu + 1]
+
+    reasons = np.full(n, "", dtype=object)
+    reasons[~converged] = "did not converge within the iteration limit"
+    reasons[collapsed & ~converged] = ("no physiological steady state: the lung cannot deliver this VO2 "
+                                       "(mixed-venous O2 content falls to zero)")
+    ok = converged.copy()
+    hypoxic = ok & (pv_o2 < MIN_MIXED_VENOUS_PO2)
+    reasons[hypoxic] = (f"no physiological steady state: VO2 cannot be delivered (mixed-venous PO2 would fall "
+                        f"below {MIN_MIXED_VENOUS_PO2:g} mmHg)")
+    ok &= ~hypoxic
+    very_high_co2 = ok & (pa_co2 > 250.0)
+    reasons[very_high_co2] = "no physiological steady state: CO2 cannot be cleared (PaCO2 above 250 mmHg)"
+    ok &= ~very_high_co2
+
+    va = a["alveolar_ventilation"]
+    ve = va + a["series_ventilation"]
+    alveolar_co2_flow = np.sum(ventilation * cu, axis=1)  # L/min x mmHg
+    pe_co2 = alveolar_co2_flow / ve
+    petco2 = alveolar_co2_flow / va
+    ph_a = _ph_invivo(np.where(ok, pa_co2, 40.0), sbe)
+    r_exchange = np.clip(a["vco2"] / a["vo2"], 0.5, 1.5)
+    f = a["fio2"]
+    pa_ideal = f * pdry[:, 0] - pa_co2 * (f + (1.0 - f) / r_exchange)
+    blood1 = _Blood(a["hb"], t, offset, a["hufner"])
+    cc_ideal, _cco2, _si, _phi = blood1.contents(np.maximum(pa_ideal, 1.0), np.maximum(pa_co2, 1.0), sa,
+                                                derivatives=False)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        admixture = (cc_ideal - ca_o2) / (cc_ideal - cvo2)
+    o2_uptake = 10.0 * np.sum(perfusion * (uo2 - cvo2[:, None]), axis=1)
+    co2_output = 10.0 * np.sum(perfusion * (cvco2[:, None] - uco2), axis=1)
+    return {
+        "ok": ok, "reasons": reasons, "it": np.int64(it),
+        "pao2": pa_o2, "paco2": pa_co2, "ph": ph_a, "sao2": sa, "pvo2": pv_o2, "pvco2": pv_co2, "svo2": sv,
+        "cao2": ca_o2, "cvo2": cvo2, "caco2": ca_co2, "cvco2": cvco2, "pe_co2": pe_co2, "petco2": petco2,
+        "shunt": shunt, "venous_admixture": admixture, "overall_vq": va / a["cardiac_output"],
+        "fio2": f, "alveolar_po2": pa_ideal, "o2_uptake": o2_uptake, "co2_output": co2_output,
+        "unit_vq": vq, "unit_ventilation": ventilation, "unit_perfusion": perfusion,
+        "unit_po2": p[:, :nu], "unit_pco2": cu,
+    }
+
+
+#: Cases per chunk: keeps the (chunk x units) work arrays cache-sized and lets a chunk whose
+#: cases have all converged stop early.
+CHUNK = 512
+
+
+def solve_steady_state(params: LungParameters, tol: float = 1e-4, max_iter: int = 80) -> SteadyState:
+    """Solve the V/Q lung and body to steady state for one case or a batch.
+
+    Parameters
+    ----------
+    params : LungParameters
+        Scalars (one case) or arrays of shape (B,) (a batch).
+    tol : float
+        Newton-step acceptance [unitless]: the iteration stops after a full (undamped,
+        unclipped) step smaller than ``tol`` relative to 1 + each unknown; in the
+        quadratic regime the state reached is accurate to about ``tol**2``.
+    max_iter : int
+        Newton iteration limit; a case that has not converged by then fails.
+
+    Returns
+    -------
+    SteadyState
+        Failed cases have ``success`` False, a reason, and NaN in every number:
+        never a plausible-looking value.
+    """
+    a, shape = params.arrays()
+    n = a["fio2"].shape[0]
+    if n <= CHUNK:
+        parts = [_solve_arrays(a, tol, max_iter)]
+        r = parts[0]
+    else:
+        parts = [_solve_arrays({k: v[lo:lo + CHUNK] for k, v in a.items()}, tol, max_iter)
+                 for lo in range(0, n, CHUNK)]
+        r = {k: (np.concatenate([pt[k] for pt in parts]) if k != "it" else max(pt["it"] for pt in parts))
+             for k in parts[0]}
+    if len({pt["unit_vq"].shape[1] for pt in parts}) > 1:  # a chunk without a high mode has 50 units
+        width = max(pt["unit_vq"].shape[1] for pt in parts)
+        for k in ("unit_vq", "unit_ventilation", "unit_perfusion", "unit_po2", "unit_pco2"):
+            r[k] = np.concatenate([np.pad(pt[k], ((0, 0), (0, width - pt[k].shape[1])), constant_values=0.0)
+                                   for pt in parts])
+    ok, reasons, it = r["ok"], r["reasons"], r["it"]
+    safe = np.where(ok, 1.0, np.nan)
+    n_fail = int(np.sum(~ok))
+    if n_fail == 0:
+        message = f"converged in {it} iterations"
+    elif n == 1:
+        message = str(reasons[0])
+    else:
+        kinds = sorted(set(reasons[~ok]))
+        message = f"{n_fail} of {n} cases failed: " + "; ".join(kinds)
+
+    def out(x):
+        x = np.asarray(x, dtype=float) * (safe if np.ndim(x) == 1 else safe[:, None])
+        return x.reshape(shape + x.shape[1:]) if shape else x[0]
+
+    return SteadyState(
+        success=ok.reshape(shape) if shape else np.bool_(ok[0]),
+        message=message,
+        reasons=reasons.reshape(shape) if shape else reasons[0],
+        pao2=out(r["pao2"]), paco2=out(r["paco2"]), ph=out(r["ph"]), sao2=out(r["sao2"]),
+        pvo2=out(r["pvo2"]), pvco2=out(r["pvco2"]), svo2=out(r["svo2"]),
+        cao2=out(r["cao2"]), cvo2=out(r["cvo2"]), caco2=out(r["caco2"]), cvco2=out(r["cvco2"]),
+        pe_co2=out(r["pe_co2"]), petco2=out(r["petco2"]),
+        vd_vt=out((r["paco2"] - r["pe_co2"]) / r["paco2"]),
+        shunt=out(r["shunt"]), venous_admixture=out(r["venous_admixture"]), overall_vq=out(r["overall_vq"]),
+        pf_ratio=out(r["pao2"] / r["fio2"]), alveolar_po2=out(r["alveolar_po2"]),
+        aa_gradient=out(r["alveolar_po2"] - r["pao2"]),
+        o2_uptake=out(r["o2_uptake"]), co2_output=out(r["co2_output"]),
+        unit_vq=out(r["unit_vq"]), unit_ventilation=out(r["unit_ventilation"]),
+        unit_perfusion=out(r["unit_perfusion"]), unit_po2=out(r["unit_po2"]), unit_pco2=out(r["unit_pco2"]),
+        iterations=int(it), parameters=params,
+    )
+

@@ -1,0 +1,109 @@
+"""Ventcast benchmark harness: ``python tests/benchmarks/bench.py --json``.
+
+Each entry warms up, repeats, and reports the median in milliseconds; the
+result is one flat JSON object. A capability that has not been built has no
+key. Not part of the pytest run: the machines are shared and noisy, so speed
+targets are read from medians here, never asserted in timed tests.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import statistics
+import sys
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parents[1]
+for p in (str(ROOT), str(HERE)):
+    if p not in sys.path:
+        sys.path.insert(0, p)
+
+
+def median_ms(fn, repeats: int = 7, warmup: int = 1, min_seconds: float = 0.0) -> float:
+    """Median wall time of ``fn()`` in milliseconds after ``warmup`` calls."""
+    for _ in range(warmup):
+        fn()
+    times = []
+    start = time.perf_counter()
+    while len(times) < repeats or (time.perf_counter() - start) < min_seconds:
+        t0 = time.perf_counter()
+        fn()
+        times.append((time.perf_counter() - t0) * 1000.0)
+        if len(times) >= 200:
+            break
+    return statistics.median(times)
+
+
+def bench_steady(results: dict) -> None:
+    import numpy as np
+
+    from physiology.gasexchange.compartments import LungParameters, solve_steady_state
+    from reference_solver import solve_reference
+
+    one = LungParameters(shunt=0.15, log_sd=1.0, alveolar_ventilation=5.0, cardiac_output=5.0, fio2=0.5)
+    results["steady_single_ms"] = median_ms(lambda: solve_steady_state(one), repeats=51, warmup=3)
+
+    rng = np.random.default_rng(7)
+    n = 10_000
+    batch = LungParameters(
+        shunt=rng.uniform(0.0, 0.4, n), log_sd=rng.uniform(0.3, 1.5, n),
+        alveolar_ventilation=rng.uniform(3.0, 10.0, n), cardiac_output=rng.uniform(3.5, 7.0, n),
+        fio2=rng.uniform(0.25, 1.0, n), dead_space_fraction=rng.uniform(0.0, 0.3, n),
+    )
+    results["steady_batch_10000_ms"] = median_ms(lambda: solve_steady_state(batch), repeats=5, warmup=1)
+
+    # Speed ratio on the same 20 cases: the reference solves them one by one; the engine as it is
+    # used (one batched call), and also one call per case (reported separately).
+    m = 20
+    same = dict(shunt=rng.uniform(0, 0.4, m), log_sd=rng.uniform(0.3, 1.3, m),
+                alveolar_ventilation=rng.uniform(3, 10, m), cardiac_output=rng.uniform(3.5, 7, m),
+                fio2=rng.uniform(0.25, 1.0, m))
+    singles = [LungParameters(**{k: float(v[i]) for k, v in same.items()}) for i in range(m)]
+    t0 = time.perf_counter()
+    for c in singles:
+        solve_reference(c)
+    ref_total = (time.perf_counter() - t0) * 1000.0
+    fast_batch = median_ms(lambda: solve_steady_state(LungParameters(**same)), repeats=15, warmup=2)
+    fast_single = median_ms(lambda: [solve_steady_state(c) for c in singles], repeats=5, warmup=1)
+    results["reference_speed_ratio"] = ref_total / fast_batch
+    results["reference_speed_ratio_one_call_per_case"] = ref_total / fast_single
+
+
+BENCHES = [bench_steady]
+
+
+def _available(bench) -> bool:
+    try:
+        bench_probe = {"bench_steady": "physiology.gasexchange.compartments"}[bench.__name__]
+        __import__(bench_probe)
+        return True
+    except ImportError:
+        return False
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--json", action="store_true", help="print one flat JSON object")
+    args = parser.parse_args(argv)
+    results: dict = {}
+    for bench in BENCHES:
+        if _available(bench):
+            bench(results)
+    results["rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+    results = {k: round(v, 3) for k, v in results.items()}
+    if args.json:
+        print(json.dumps(results))
+    else:
+        for k, v in results.items():
+            print(f"{k:>28}  {v}")
+    return 0
+
+
+if __name__ == "__main__":
+    os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+    sys.exit(main())
