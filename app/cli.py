@@ -112,10 +112,13 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv=None) -> int:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if not argv:
+        argv = ["open"]
+    if argv[0] in NOT_YET:
+        return _not_yet(argv[0])(None)
     try:
         args = build_parser().parse_args(argv)
-        if not getattr(args, "verb", None):
-            args = build_parser().parse_args(["open"])
         return args.run(args)
     except CaseError as exc:
         print(f"ventcast: invalid input: {exc}", file=sys.stderr)
