@@ -51,7 +51,7 @@ import numpy as np
 from .._checks import check_fio2, check_range
 from ..bloodgas.acidbase import _ph_invivo
 from ..bloodgas.carbon_dioxide import MMOL_TO_ML_DL
-from ..bloodgas.oxygen import _SEV_A, _SEV_B, HUFNER_DEFAULT, O2_SOLUBILITY
+from ..bloodgas.oxygen import _SEV_A, _SEV_B, HUFNER_DEFAULT, O2_SOLUBILITY, _ellis, _sev
 from .alveolar import btps_factor, water_vapour_pressure_antoine
 
 __all__ = ["LungParameters", "SteadyState", "solve_steady_state", "DOMAIN",
@@ -272,7 +272,7 @@ class _Blood:
         kappa = fx * _BOHR * oxy
         s_new = s_guess + (q / den - s_guess) / (1.0 + kappa)
         ph = ph_base - oxy * s_new
-        x = x * np.exp(-_BOHR * oxy * (s_new - s_guess))
+        x = x * (1.0 - _BOHR * oxy * (s_new - s_guess))  # exp(z) to first order; z -> 0 at convergence
         x2 = x * x
         q = x * (x2 + _SEV_B)
         den = q + _SEV_A
@@ -373,11 +373,17 @@ def _solve_arrays(a: dict, tol: float, max_iter: int) -> dict:
     a22_const = -pio2 / pdry
     wn = w * ns[:, None]
 
-    # Start: mixed venous PO2 40, PCO2 from the alveolar ventilation equation + 6.
+    # Start: arterial PCO2 from the alveolar ventilation equation; mixed venous from a Riley
+    # (ideal alveolus + shunt) estimate through Fick, on the standard curves.
     va_perf = ((1.0 - a["dead_space_fraction"]) * a["alveolar_ventilation"])[:, None]
     pa_co2_guess = np.clip(k_btps[:, None] * a["vco2"][:, None] / va_perf, 15.0, 150.0)
-    pv_o2 = np.full((n, 1), 40.0)
-    pv_co2 = pa_co2_guess + 6.0
+    r_guess = np.clip(a["vco2"] / a["vo2"], 0.5, 1.5)[:, None]
+    pa_ideal = np.maximum(pio2 - pa_co2_guess * (fio2 + (1.0 - fio2) / r_guess), 30.0)
+    cc_ideal = blood.cap * _sev(pa_ideal) + O2_SOLUBILITY * pa_ideal
+    cv_guess = cc_ideal - (fick_o2 / np.maximum(ns, 0.2))[:, None]
+    sv_guess = np.clip((cv_guess - O2_SOLUBILITY * 35.0) / blood.cap, 0.2, 0.9)
+    pv_o2 = _ellis(sv_guess)
+    pv_co2 = pa_co2_guess + (fick_co2[:, None] / (0.45 * blood.hb / 15.0 + 0.1))
     cvo2, cvco2, _s, _ph = blood.contents(pv_o2, pv_co2, np.full((n, 1), 0.75), derivatives=False)
     cvo2, cvco2 = cvo2[:, 0], cvco2[:, 0]
     # Units start from linearised dissociation curves (CO2 slope 0.45, O2 slope 0.05 mL/dL/mmHg).
@@ -517,7 +523,7 @@ def _solve_arrays(a: dict, tol: float, max_iter: int) -> dict:
     sa, sv = s[:, nu], s[:, nu + 1]
 
     reasons = np.full(n, "", dtype=object)
-    reasons[~converged] = "did not converge within the iteration limit"
+    reasons[~converged] = _NOT_CONVERGED
     reasons[collapsed & ~converged] = ("no physiological steady state: the lung cannot deliver this VO2 "
                                        "(mixed-venous O2 content falls to zero)")
     ok = converged.copy()
@@ -556,6 +562,25 @@ def _solve_arrays(a: dict, tol: float, max_iter: int) -> dict:
     }
 
 
+_NOT_CONVERGED = "did not converge within the iteration limit"
+#: Iteration budget of the first pass over a large batch (see solve_steady_state).
+FIRST_PASS_ITERATIONS = 8
+
+
+def _concatenate(parts: list) -> dict:
+    """Join chunk results; a chunk without a high-V/Q mode has 50 unit columns, pad it with zeros."""
+    width = max(pt["unit_vq"].shape[1] for pt in parts)
+    out = {}
+    for k in parts[0]:
+        if k == "it":
+            out[k] = max(pt["it"] for pt in parts)
+        elif parts[0][k].ndim == 2:
+            out[k] = np.concatenate([np.pad(pt[k], ((0, 0), (0, width - pt[k].shape[1]))) for pt in parts])
+        else:
+            out[k] = np.concatenate([pt[k] for pt in parts])
+    return out
+
+
 #: Cases per chunk: keeps the (chunk x units) work arrays cache-sized and lets a chunk whose
 #: cases have all converged stop early.
 CHUNK = 512
@@ -587,15 +612,27 @@ def solve_steady_state(params: LungParameters, tol: float = 1e-4, max_iter: int 
         parts = [_solve_arrays(a, tol, max_iter)]
         r = parts[0]
     else:
-        parts = [_solve_arrays({k: v[lo:lo + CHUNK] for k, v in a.items()}, tol, max_iter)
+        # First pass with a short iteration budget; the few cases it leaves unconverged are solved
+        # again, together, with the full budget (cheaper than carrying every chunk to its slowest case).
+        first = min(FIRST_PASS_ITERATIONS, max_iter)
+        parts = [_solve_arrays({k: v[lo:lo + CHUNK] for k, v in a.items()}, tol, first)
                  for lo in range(0, n, CHUNK)]
-        r = {k: (np.concatenate([pt[k] for pt in parts]) if k != "it" else max(pt["it"] for pt in parts))
-             for k in parts[0]}
-    if len({pt["unit_vq"].shape[1] for pt in parts}) > 1:  # a chunk without a high mode has 50 units
-        width = max(pt["unit_vq"].shape[1] for pt in parts)
-        for k in ("unit_vq", "unit_ventilation", "unit_perfusion", "unit_po2", "unit_pco2"):
-            r[k] = np.concatenate([np.pad(pt[k], ((0, 0), (0, width - pt[k].shape[1])), constant_values=0.0)
-                                   for pt in parts])
+        r = _concatenate(parts)
+        again = np.flatnonzero(r["reasons"] == _NOT_CONVERGED)
+        if again.size and max_iter > first:
+            sub = {k: v[again] for k, v in a.items()}
+            redo = _concatenate([_solve_arrays({k: v[lo:lo + CHUNK] for k, v in sub.items()}, tol, max_iter)
+                                 for lo in range(0, again.size, CHUNK)])
+            width = max(r["unit_vq"].shape[1], redo["unit_vq"].shape[1])
+            for k, v in redo.items():
+                if k == "it":
+                    r["it"] = max(r["it"], v)
+                    continue
+                if v.ndim == 2 and r[k].shape[1] < width:
+                    r[k] = np.pad(r[k], ((0, 0), (0, width - r[k].shape[1])))
+                if v.ndim == 2 and v.shape[1] < width:
+                    v = np.pad(v, ((0, 0), (0, width - v.shape[1])))
+                r[k][again] = v
     ok, reasons, it = r["ok"], r["reasons"], r["it"]
     safe = np.where(ok, 1.0, np.nan)
     n_fail = int(np.sum(~ok))
