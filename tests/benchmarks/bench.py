@@ -74,12 +74,31 @@ def bench_steady(results: dict) -> None:
     results["reference_speed_ratio_one_call_per_case"] = ref_total / fast_single
 
 
-BENCHES = [bench_steady]
+def bench_prediction(results: dict) -> None:
+    """Mechanics + V/Q lung: one trial setting, and 10,000 candidate settings in one batch."""
+    import numpy as np
+
+    from physiology.forecast import PatientModel, predict
+    from physiology.mechanics.ventilator import Mechanics, Settings
+
+    patient = PatientModel(pbw_kg=57, shunt_fixed=0.08, log_sd=0.9, dead_space_fraction=0.25, hb=10.5,
+                           mechanics=Mechanics(resistance=15, c_max=35, recruitable=0.35))
+    one = Settings(mode="volume", fio2=0.6, peep=12.0, vt_ml=400.0, rr=22.0, ti=0.9)
+    results["prediction_single_ms"] = median_ms(lambda: predict(patient, one), repeats=51, warmup=3)
+    rng = np.random.default_rng(3)
+    n = 10_000
+    many = Settings(mode="volume", fio2=rng.choice(np.arange(0.3, 1.0001, 0.05), n), peep=rng.integers(5, 21, n) * 1.0,
+                    vt_ml=rng.uniform(300, 480, n), rr=rng.integers(14, 33, n) * 1.0, ti=0.8)
+    results["prediction_batch_10000_ms"] = median_ms(lambda: predict(patient, many), repeats=3, warmup=1)
+
+
+BENCHES = [bench_steady, bench_prediction]
 
 
 def _available(bench) -> bool:
     try:
-        bench_probe = {"bench_steady": "physiology.gasexchange.compartments"}[bench.__name__]
+        bench_probe = {"bench_steady": "physiology.gasexchange.compartments",
+                       "bench_prediction": "physiology.forecast"}[bench.__name__]
         __import__(bench_probe)
         return True
     except ImportError:

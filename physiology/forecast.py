@@ -1,0 +1,133 @@
+"""Steady-state forecast: patient model + ventilator settings -> mechanics and blood gases (batched).
+
+The patient model couples the pieces: ventilator settings and mechanics give the
+delivered VT, pressures, intrinsic PEEP, the open fraction of the recruitable lung,
+overdistension and alveolar ventilation (:mod:`physiology.mechanics.ventilator`);
+mean airway pressure sets cardiac output through venous return
+(:func:`physiology.mechanics.recruitment.cardiac_output_with_paw`); collapsed
+recruitable lung adds shunt and overdistended lung adds alveolar dead space; the
+V/Q lung (:mod:`physiology.gasexchange.compartments`) then gives the blood gases.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, fields, replace
+
+import numpy as np
+
+from .gasexchange.compartments import LungParameters, SteadyState, solve_steady_state
+from .mechanics.recruitment import cardiac_output_with_paw
+from .mechanics.ventilator import Breathing, Mechanics, Settings, breathe
+
+__all__ = ["PatientModel", "Prediction", "predict"]
+
+
+@dataclass(frozen=True)
+class PatientModel:
+    """One patient (scalars) or a batch of parameter draws (arrays of shape (B,)).
+
+    Attributes
+    ----------
+    pbw_kg : predicted body weight [kg]
+    shunt_fixed : non-recruitable shunt [fraction of cardiac output]
+    recruitable_shunt_ratio : shunt carried by collapsed recruitable lung per unit of its lung fraction
+        [unitless]; 1 = perfused in proportion to its share (hypoxic vasoconstriction ignored)
+    log_sd : V/Q dispersion of the perfused lung [unitless]
+    dead_space_fraction : alveolar dead space at no overdistension [fraction of alveolar ventilation]
+    overdistension_dead_space : extra alveolar dead space of fully overdistended lung [fraction]
+    vo2, vco2 : [mL/min STPD]
+    hb : [g/dL]; temperature [degC]; barometric [mmHg]; base_excess : standard BE [mmol/L]
+    cardiac_output_ref : cardiac output at ``mean_paw_ref`` [L/min]
+    mean_paw_ref : mean airway pressure at which ``cardiac_output_ref`` holds [cmH2O]
+    preload_dependence : how much PEEP lowers cardiac output [unitless] (0 none, 1 typical, 2 hypovolaemic)
+    mechanics : :class:`Mechanics`
+    """
+
+    pbw_kg: object = 70.0
+    shunt_fixed: object = 0.05
+    recruitable_shunt_ratio: object = 1.0
+    log_sd: object = 0.5
+    dead_space_fraction: object = 0.1
+    overdistension_dead_space: object = 0.3
+    vo2: object = 250.0
+    vco2: object = 200.0
+    hb: object = 13.0
+    temperature: object = 37.0
+    barometric: object = 760.0
+    base_excess: object = 0.0
+    cardiac_output_ref: object = 5.0
+    mean_paw_ref: object = 10.0
+    preload_dependence: object = 1.0
+    mechanics: Mechanics = field(default_factory=Mechanics)
+
+    def replace(self, **changes) -> "PatientModel":
+        """A copy with some fields (or mechanics fields, by their own names) changed."""
+        mech_names = {f.name for f in fields(Mechanics)}
+        mech = {k: v for k, v in changes.items() if k in mech_names}
+        own = {k: v for k, v in changes.items() if k not in mech_names}
+        unknown = set(own) - {f.name for f in fields(PatientModel)}
+        if unknown:
+            raise ValueError(f"unknown patient-model field(s): {sorted(unknown)}")
+        if mech:
+            own["mechanics"] = replace(self.mechanics, **mech)
+        return replace(self, **own)
+
+
+@dataclass(frozen=True)
+class Prediction:
+    """A steady-state forecast: ``breathing`` (mechanics), ``gas`` (V/Q lung), and the couplings.
+
+    success, message; shunt [fraction] and alveolar_dead_space [fraction] handed to the lung;
+    cardiac_output [L/min]; vt_per_kg_pbw [mL/kg].
+    """
+
+    success: np.ndarray
+    message: str
+    breathing: Breathing
+    gas: SteadyState
+    shunt: np.ndarray
+    alveolar_dead_space: np.ndarray
+    cardiac_output: np.ndarray
+    vt_per_kg_pbw: np.ndarray
+    settings: Settings = field(repr=False)
+    patient: PatientModel = field(repr=False)
+
+
+def predict(patient: PatientModel, settings: Settings) -> Prediction:
+    """Steady-state mechanics and blood gases for ``settings`` in ``patient`` (batched).
+
+    A case fails (``success`` False, NaN numbers, a reason in ``message``) when its mechanics do
+    not settle, the tidal volume does not fit, or the lung has no physiological steady state.
+    """
+    br = breathe(settings, patient.mechanics, pbw_kg=patient.pbw_kg)
+    recruitable = np.asarray(patient.mechanics.recruitable, dtype=float)
+    closed = np.nan_to_num(1.0 - br.open_fraction, nan=0.0)
+    shunt = np.clip(np.asarray(patient.shunt_fixed) + np.asarray(patient.recruitable_shunt_ratio)
+                    * recruitable * closed, 0.0, 0.8)
+    ads = np.clip(np.asarray(patient.dead_space_fraction) + np.asarray(patient.overdistension_dead_space)
+                  * np.nan_to_num(br.overdistended_fraction, nan=0.0), 0.0, 0.8)
+    mean_paw = np.nan_to_num(br.mean_paw, nan=float(np.mean(patient.mean_paw_ref)))
+    co = cardiac_output_with_paw(patient.cardiac_output_ref, mean_paw, patient.mean_paw_ref,
+                                 patient.preload_dependence)
+    va = np.nan_to_num(br.alveolar_ventilation, nan=1.0)
+    lung = LungParameters(
+        fio2=settings.fio2, shunt=shunt, log_sd=patient.log_sd, alveolar_ventilation=np.clip(va, 0.5, 30.0),
+        dead_space_fraction=ads, cardiac_output=np.clip(co, 1.0, 20.0), vo2=patient.vo2, vco2=patient.vco2,
+        hb=patient.hb, temperature=patient.temperature, barometric=patient.barometric,
+        base_excess=patient.base_excess, series_ventilation=np.nan_to_num(br.series_ventilation, nan=0.0),
+    )
+    gas = solve_steady_state(lung)
+    ok = np.asarray(br.success) & np.asarray(gas.success)
+    if np.all(ok):
+        message = "forecast computed"
+    elif np.ndim(ok) == 0:
+        message = br.message if not br.success else gas.message
+    else:
+        reasons = sorted(set(list(np.asarray(br.reasons)[~np.asarray(br.success)])
+                             + list(np.asarray(gas.reasons)[~np.asarray(gas.success)])) - {""})
+        message = f"{int((~ok).sum())} of {ok.size} cases failed: " + "; ".join(reasons)
+    nan = np.where(ok, 1.0, np.nan)
+    return Prediction(success=ok, message=message, breathing=br, gas=gas, shunt=shunt * nan,
+                      alveolar_dead_space=ads * nan, cardiac_output=co * nan,
+                      vt_per_kg_pbw=br.vt_ml / np.asarray(patient.pbw_kg) * nan,
+                      settings=settings, patient=patient)

@@ -1,0 +1,222 @@
+"""Ventilator and lung mechanics against worked examples, published tables and expected behaviour."""
+
+import numpy as np
+import pytest
+from hypothesis import given, settings as hsettings, strategies as st
+
+from physiology import protocols
+from physiology.forecast import PatientModel, predict
+from physiology.mechanics import motion, recruitment
+from physiology.mechanics.ventilator import Mechanics, Settings, breathe
+
+
+# --- worked examples (digest section 5; equations from the cited papers) -------------------------
+
+def test_intrinsic_peep_worked_example():
+    """Row 28: passive single compartment (Pepe & Marini 1982, from memory): R 15, C 50 mL/cmH2O,
+    VT 0.5 L, Te 1.2 s -> trapped 126 mL, intrinsic PEEP 2.53 cmH2O; Te 2.0 s -> 37 mL, 0.75."""
+    assert motion.intrinsic_peep(0.5, 15, 0.05, 1.2) == pytest.approx(2.53, abs=0.01)
+    assert 1000 * motion.trapped_volume_volume_control(0.5, 0.75, 1.2) == pytest.approx(126, abs=1)
+    assert motion.intrinsic_peep(0.5, 15, 0.05, 2.0) == pytest.approx(0.75, abs=0.01)
+
+
+def test_mean_airway_pressure_worked_example():
+    """Row 29: PIP 25, PEEP 10, Ti 1 s, RR 20: pressure control 15.0, volume control 12.5 cmH2O."""
+    assert motion.mean_airway_pressure("pressure", 25, 10, 1.0, 20) == pytest.approx(15.0)
+    assert motion.mean_airway_pressure("volume", 25, 10, 1.0, 20) == pytest.approx(12.5)
+
+
+def test_mechanical_power_worked_example():
+    """Row 24: Gattinoni 2016: RR 20, VT 0.5 L, Ppeak 30, Pplat 25, PEEP 10, I:E 1:2 ->
+    full = simplified = 22.05 J/min; second example (simplified) 30.87 J/min."""
+    assert motion.mechanical_power_gattinoni(20, 0.5, 30, 10, 0.5, 10) == pytest.approx(22.05, abs=0.01)
+    assert motion.mechanical_power_simplified(20, 0.5, 30, 25, 10) == pytest.approx(22.05, abs=0.01)
+    assert motion.mechanical_power_simplified(30, 0.42, 32, 28, 14) == pytest.approx(30.87, abs=0.01)
+
+
+def test_giosa_surrogate():
+    """Row 25: Giosa 2019: VE 10 L/min, Ppeak 30, PEEP 10, flow 30 L/min -> 22.5 J/min."""
+    assert motion.mechanical_power_giosa(10, 30, 10, 30) == pytest.approx(22.5, abs=0.01)
+
+
+def test_becher_pressure_control_power_without_ramp():
+    """Becher 2019 with no ramp: 0.098 RR [(dP + PEEP) VT - dP^2 C / 2]."""
+    mp = motion.mechanical_power_pressure_control(20, 0.5, 15, 10, 0.5 / 15, 10)
+    assert mp == pytest.approx(0.098 * 20 * (25 * 0.5 - 225 * (0.5 / 15) * 0.5))
+
+
+@pytest.mark.parametrize("p,expected", [(5, 151.7), (15, 1000.0), (25, 1848.3)])
+def test_venegas_curve(p, expected):
+    """Row 30: Venegas 1998 sigmoid, a 0, b 2000 mL, c 15, d 4 cmH2O."""
+    assert recruitment.venegas_volume(p, 0, 2000, 15, 4) == pytest.approx(expected, abs=0.1)
+
+
+def test_venegas_compliance():
+    """Venegas 1998: Cmax = b/(4d) = 125 mL/cmH2O at c; C(5) = 35.1 (digest 5.4)."""
+    assert recruitment.venegas_compliance(15, 2000, 15, 4) == pytest.approx(125.0)
+    assert recruitment.venegas_compliance(5, 2000, 15, 4) == pytest.approx(35.1, abs=0.1)
+
+
+def test_aerated_curve_is_linear_then_venegas_and_invertible():
+    p = np.linspace(0, 40, 81)
+    v = recruitment.aerated_volume(p, 0.05, 20, 5)
+    assert np.allclose(v[p <= 20], 0.05 * p[p <= 20])
+    assert np.all(np.diff(v) > 0)
+    assert np.allclose(recruitment.aerated_pressure(v, 0.05, 20, 5), p, atol=1e-9)
+    assert recruitment.aerated_pressure(0.05 * 30 + 1.0, 0.05, 20, 5) == np.inf  # beyond capacity
+
+
+# --- ARDS Network tables, row by row ------------------------------------------------------------
+
+def test_lower_peep_table_exactly():
+    """ARDS Network 2000, lower PEEP/higher FiO2, checked against two reproductions (data-exchange notes)."""
+    published = [(0.3, 5), (0.4, 5), (0.4, 8), (0.5, 8), (0.5, 10), (0.6, 10), (0.7, 10), (0.7, 12),
+                 (0.7, 14), (0.8, 14), (0.9, 14), (0.9, 16), (0.9, 18), (1.0, (18, 24))]
+    assert list(protocols.PEEP_FIO2_LOWER) == published
+    assert [p for f, p in protocols.table_steps("lower-peep") if f == 0.7] == [10, 12, 14]  # row 36
+
+
+def test_higher_peep_table_exactly():
+    """Brower 2004 (ALVEOLI), higher PEEP/lower FiO2; 16 (not 15) in the second FiO2-0.4 cell."""
+    published = [(0.3, 5), (0.3, 8), (0.3, 10), (0.3, 12), (0.3, 14), (0.4, 14), (0.4, 16), (0.5, 16),
+                 (0.5, 18), ((0.5, 0.8), 20), (0.8, 22), (0.9, 22), (1.0, 22), (1.0, 24)]
+    assert list(protocols.PEEP_FIO2_HIGHER) == published
+    with pytest.raises(ValueError, match="table"):
+        protocols.table_steps("medium")
+
+
+def test_protocol_goals():
+    """ARDS Network 2000: plateau <= 30, pH 7.30-7.45, PaO2 55-80 or SpO2 88-95 %; Amato 2015 ceiling 15."""
+    lim = protocols.LIMITS
+    assert lim["pplat"].high == 30 and lim["ph"].low == 7.30 and lim["ph"].high == 7.45
+    assert (lim["pao2"].low, lim["pao2"].high) == (55, 80) and (lim["spo2"].low, lim["spo2"].high) == (0.88, 0.95)
+    assert lim["driving_pressure"].high == 15
+
+
+# --- properties ---------------------------------------------------------------------------------
+
+LINEAR = Mechanics(resistance=12, c_max=45, inflection=40, width=8)
+
+
+@hsettings(max_examples=40, deadline=None)
+@given(st.floats(5, 20), st.floats(250, 600), st.floats(20, 150))
+def test_pplat_rises_with_vt_and_peep(peep, vt, dvt):
+    s = Settings(mode="volume", peep=np.array([peep, peep, peep + 2]), vt_ml=np.array([vt, vt + dvt, vt]),
+                 rr=18, ti=1.0)
+    b = breathe(s, Mechanics(resistance=12, c_max=45, recruitable=0.2))
+    assert b.success.all()
+    assert b.pplat[1] > b.pplat[0] and b.pplat[2] > b.pplat[0]
+
+
+def test_intrinsic_peep_rises_with_rate_at_fixed_ti():
+    rr = np.array([10, 15, 20, 25, 30])
+    b = breathe(Settings(mode="volume", peep=5, vt_ml=500, rr=rr, ti=1.0), Mechanics(resistance=25, c_max=60))
+    assert np.all(np.diff(b.intrinsic_peep) > 0)
+
+
+def test_pressure_control_vt_falls_when_ti_is_short():
+    """Pressure control: VT falls once Ti is shortened below ~3 tau (single-compartment filling)."""
+    mech = Mechanics(resistance=15, c_max=50)  # tau 0.75 s
+    ti = np.array([3.0, 2.25, 1.5, 0.75, 0.4])
+    b = breathe(Settings(mode="pressure", peep=5, inspiratory_pressure=12, rr=10, ti=ti), mech)
+    assert b.vt_ml[0] == pytest.approx(b.vt_ml[1], rel=0.06)  # beyond 3 tau: nearly full
+    assert np.all(np.diff(b.vt_ml) < 0)
+    assert b.vt_ml[-1] < 0.5 * b.vt_ml[0]
+
+
+def test_pressure_control_vt_from_compliance():
+    b = breathe(Settings(mode="pressure", peep=5, inspiratory_pressure=10, rr=10, ti=2.5), LINEAR)
+    assert b.vt_ml == pytest.approx(450, rel=0.02)  # C dP once filled
+    assert b.ppeak == pytest.approx(15)
+
+
+def test_volume_control_pressures_follow_the_equation_of_motion():
+    b = breathe(Settings(mode="volume", peep=8, vt_ml=450, rr=12, ti=1.0), LINEAR)
+    assert b.pplat == pytest.approx(8 + 450 / 45 + float(b.intrinsic_peep), abs=0.05)
+    assert b.ppeak - b.pplat == pytest.approx(12 * 0.45 / 1.0, abs=1e-6)  # R x flow
+    assert b.driving_pressure == pytest.approx(10.0, abs=0.05)
+    assert b.alveolar_ventilation == pytest.approx(12 * (450 - 80) / 1000)
+
+
+def test_recruitment_manoeuvre_keeps_lung_open_above_closing_pressure():
+    """Hysteresis (Crotti 2001): after a 40 cmH2O manoeuvre the same PEEP keeps more lung open."""
+    mech = Mechanics(resistance=12, c_max=35, recruitable=0.4)
+    s = Settings(mode="volume", peep=10, vt_ml=400, rr=20, ti=0.9)
+    before = breathe(s, mech)
+    after = breathe(s, Mechanics(resistance=12, c_max=35, recruitable=0.4, pressure_history=40))
+    assert after.open_fraction > before.open_fraction + 0.1
+    assert after.compliance > before.compliance
+
+
+def test_cardiac_output_falls_with_mean_airway_pressure():
+    """Luecke & Pelosi 2005 (venous return): CO falls roughly 10-25 % from ZEEP to PEEP 15-20 (from memory)."""
+    co = recruitment.cardiac_output_with_paw(5.0, np.array([6, 21]), 6)
+    assert 0.75 <= co[1] / co[0] <= 0.90
+    assert recruitment.cardiac_output_with_paw(5.0, 21, 6, preload_dependence=0) == pytest.approx(5.0)
+
+
+# --- combined model -----------------------------------------------------------------------------
+
+def _patient(recruitable, shunt_fixed):
+    return PatientModel(pbw_kg=60, shunt_fixed=shunt_fixed, log_sd=0.9, dead_space_fraction=0.25, hb=11,
+                        mechanics=Mechanics(resistance=14, c_max=35, recruitable=recruitable))
+
+
+def _at_peep(patient, peep, fio2=0.6):
+    return predict(patient, Settings(mode="volume", fio2=fio2, peep=np.asarray(peep, float), vt_ml=400, rr=20, ti=0.9))
+
+
+def test_recruitable_lung_gains_from_peep():
+    """Recruitable lung at PEEP 5 -> 15: shunt falls and PaO2 rises (Crotti 2001; Karbing 2020)."""
+    p = _at_peep(_patient(0.35, 0.08), [5, 15])
+    assert p.success.all()
+    assert p.shunt[1] < p.shunt[0] - 0.1
+    assert p.gas.pao2[1] > p.gas.pao2[0] + 30
+
+
+def test_non_recruitable_lung_does_not():
+    """Non-recruitable lung: the same step barely changes PaO2, raises Pplat by about 10 and lowers CO."""
+    p = _at_peep(_patient(0.0, 0.30), [5, 15])
+    assert p.success.all()
+    assert abs(p.gas.pao2[1] - p.gas.pao2[0]) < 8
+    assert p.breathing.pplat[1] - p.breathing.pplat[0] == pytest.approx(10, abs=1.5)
+    assert p.cardiac_output[1] < p.cardiac_output[0]
+
+
+def test_peep_above_the_upper_inflection_raises_dead_space():
+    """Overdistension: above the upper inflection more PEEP raises VD/VT."""
+    p = _at_peep(_patient(0.1, 0.1), [16, 20, 24])
+    assert p.success.all()
+    assert p.breathing.pplat[0] > 26  # beyond the default inflection
+    assert np.all(np.diff(p.gas.vd_vt) > 0)
+
+
+def test_batched_prediction_equals_single():
+    pt = _patient(0.3, 0.1)
+    batch = _at_peep(pt, [6, 12])
+    one = _at_peep(pt, 12.0)
+    assert batch.gas.pao2[1] == pytest.approx(float(one.gas.pao2), abs=1e-6)
+
+
+# --- bad input ----------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("kw,needle", [
+    ({"ti": 3.5, "rr": 20}, "Ti = 3.5 s leaves no time to breathe out"),
+    ({"rr": 0}, "RR = 0"), ({"rr": 61}, "RR = 61"),
+    ({"vt_ml": 80}, "VT = 80"), ({"vt_ml": 1300}, "mL/kg PBW"),
+    ({"peep": -1}, "PEEP = -1"), ({"peep": 31}, "PEEP = 31"),
+    ({"fio2": 1.5}, "FiO2 = 1.5"), ({"fio2": 0.1}, "FiO2 = 0.1"), ({"fio2": 40}, "did you mean 0.40"),
+    ({"mode": "pressure", "inspiratory_pressure": 55}, "inspiratory pressure = 55"),
+    ({"mode": "oscillate"}, "mode"),
+])
+def test_bad_settings(kw, needle):
+    s = {"mode": "volume", "fio2": 0.5, "peep": 5, "vt_ml": 420, "rr": 20, "ti": 1.0, **kw}
+    if s["mode"] == "pressure":
+        s.setdefault("inspiratory_pressure", 12)
+    with pytest.raises(ValueError, match=needle):
+        breathe(Settings(**s), Mechanics(), pbw_kg=60)
+
+
+def test_volume_beyond_capacity_fails_honestly():
+    b = breathe(Settings(mode="volume", peep=25, vt_ml=1500, rr=10, ti=1.0), Mechanics(c_max=20, inflection=15, width=3))
+    assert not b.success and "does not fit" in b.message and np.isnan(b.pplat)
