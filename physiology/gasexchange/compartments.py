@@ -55,7 +55,7 @@ from ..bloodgas.oxygen import _SEV_A, _SEV_B, HUFNER_DEFAULT, O2_SOLUBILITY, _el
 from .alveolar import btps_factor, water_vapour_pressure_antoine
 
 __all__ = ["LungParameters", "SteadyState", "solve_steady_state", "DOMAIN",
-           "N_MAIN_UNITS", "N_HIGH_UNITS", "unit_equations"]
+           "N_MAIN_UNITS", "N_HIGH_UNITS", "blood_chemistry", "invert_contents"]
 
 N_MAIN_UNITS = 50
 N_HIGH_UNITS = 20
@@ -228,6 +228,8 @@ class SteadyState:
     parameters: LungParameters = field(repr=False)
 
 
+_PH40_SBE0 = float(_ph_invivo(np.array(40.0), np.array(0.0)))
+
 # --- blood contents with analytic derivatives --------------------------------------------
 
 _LN10 = np.log(10.0)
@@ -308,15 +310,56 @@ class _Blood:
                                    + mix * (self.sol * (1.0 + e) + dcp_dpp * dpp_dc))
         return o2, co2, s, ph, do2_dp, do2_dc, dco2_dp, dco2_dc
 
+    def saturation_guess(self, p, c):
+        """Saturation from the buffer line at S = 0.75 (within ~1e-2 of the coupled value)."""
+        lnc = np.log(c)
+        ph = 7.59 + self.offset + 0.003 * self.hb * 0.25 - 0.2741 * (lnc - _LN20)
+        return _sev(p * np.exp(self.log_kelman_t + _BOHR * (ph - 7.4) + 0.06 * (_LN40 - lnc)))
 
-# --- the unit equations (also used by the reference solver in tests) ----------------------
+    def contents_from_scratch(self, p, c, derivatives=True):
+        """:meth:`contents` from the buffer-line saturation guess (one correction; relative error ~1e-7)."""
+        return self.contents(p, c, self.saturation_guess(p, c), derivatives)
 
-def unit_equations(p, c, vq, cvo2, cvco2, fio2, pio2, pdry, k_flux, blood, s_lag):
-    """Residuals of one unit's O2 and CO2 balances [mmHg]; see the module docstring."""
-    o2, co2, s, _ph = blood.contents(p, c, s_lag, derivatives=False)
-    e1 = vq * c - k_flux * (cvco2 - co2)
-    e2 = pio2 * (1.0 - (p + c) / pdry) - (1.0 - fio2) * p - (1.0 - fio2) * (k_flux / vq) * (o2 - cvo2)
-    return e1, e2, s
+    def contents_exact(self, p, c, derivatives=True):
+        """:meth:`contents` with the S-pH loop closed from scratch (two corrections, error ~1e-10)."""
+        _o2, _co2, s, _ph = self.contents(p, c, self.saturation_guess(p, c), derivatives=False)
+        return self.contents(p, c, s, derivatives)
+
+
+# --- public helpers for the time-course model -----------------------------------------------------
+
+def blood_chemistry(hb, temperature=37.0, base_excess=0.0, hufner=HUFNER_DEFAULT) -> _Blood:
+    """Blood-content evaluator (same chemistry as the steady solver) for arrays of cases.
+
+    Parameters broadcast against the arrays later passed to ``contents`` [g/dL, degC, mmol/L, mL/g].
+    """
+    hb = np.asarray(hb, dtype=float)
+    sbe = np.asarray(base_excess, dtype=float)
+    offset = np.where(sbe != 0, _ph_invivo(np.full(sbe.shape, 40.0), sbe) - _PH40_SBE0, 0.0)
+    return _Blood(hb, np.asarray(temperature, dtype=float), offset, np.asarray(hufner, dtype=float))
+
+
+def invert_contents(blood: _Blood, o2_target, co2_target, po2_guess, pco2_guess, tol=1e-9, max_iter=60):
+    """PO2 and PCO2 [mmHg] of blood whose O2 and CO2 contents [mL/dL] are the targets.
+
+    Vectorised Newton on the joint content functions (Bohr-Haldane coupling). Returns
+    ``(po2, pco2, so2, converged)``.
+    """
+    p = np.array(po2_guess, dtype=float)
+    c = np.array(pco2_guess, dtype=float)
+    s = blood.saturation_guess(p, c)
+    ok = np.zeros(p.shape, dtype=bool)
+    for _ in range(max_iter):
+        o2, co2, s_new, _ph, a, b, cc, d = blood.contents(p, c, s)
+        r1, r2 = o2 - o2_target, co2 - co2_target
+        s = s_new
+        ok = (np.abs(r1) < tol * (1.0 + np.abs(o2_target))) & (np.abs(r2) < tol * (1.0 + np.abs(co2_target)))
+        if np.all(ok):
+            break
+        det = a * d - b * cc
+        p = np.clip(p - (d * r1 - b * r2) / det, 0.25 * p, 4.0 * p + 50.0)
+        c = np.clip(c - (-cc * r1 + a * r2) / det, 0.25 * c, 4.0 * c + 20.0)
+    return p, c, s, ok
 
 
 def _distribution(a):

@@ -159,7 +159,8 @@ class Breathing:
     tau [s]; mechanical_power [J/min] (Gattinoni full form in volume control, Becher in pressure
     control); mechanical_power_simplified [J/min]; open_fraction, open_fraction_end_expiration,
     aerated_fraction, overdistended_fraction [fraction]; minute_ventilation, alveolar_ventilation,
-    series_ventilation [L/min]; series_dead_space_ml [mL]; flow [L/s]; ie_ratio [unitless].
+    series_ventilation [L/min]; series_dead_space_ml [mL]; flow [L/s]; ie_ratio [unitless];
+    end_expiratory_volume_ml : aerated volume above relaxation at end-expiration (PEEP + trapped) [mL].
     """
 
     success: np.ndarray
@@ -187,6 +188,7 @@ class Breathing:
     series_dead_space_ml: np.ndarray
     flow: np.ndarray
     ie_ratio: np.ndarray
+    end_expiratory_volume_ml: np.ndarray
     settings: Settings = field(repr=False)
     mechanics: Mechanics = field(repr=False)
 
@@ -339,5 +341,6 @@ def breathe(settings: Settings, mechanics: Mechanics, pbw_kg=None, max_iter: int
         open_fraction=out(f_eff), open_fraction_end_expiration=out(f_ee), aerated_fraction=out(aer),
         overdistended_fraction=out(over), minute_ventilation=out(ve), alveolar_ventilation=out(va),
         series_ventilation=out(series), series_dead_space_ml=out(vds_ml), flow=out(flow), ie_ratio=out(ie),
+        end_expiratory_volume_ml=out(1000.0 * volume(peep_tot, aer)),
         settings=settings, mechanics=mechanics,
     )

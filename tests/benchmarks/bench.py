@@ -92,13 +92,35 @@ def bench_prediction(results: dict) -> None:
     results["prediction_batch_10000_ms"] = median_ms(lambda: predict(patient, many), repeats=3, warmup=1)
 
 
-BENCHES = [bench_steady, bench_prediction]
+def bench_course(results: dict) -> None:
+    """60-minute course after an FiO2/PEEP/rate change: one case, and 200 parameter draws in one batch."""
+    import numpy as np
+
+    from physiology.dynamics.course import simulate
+    from physiology.forecast import PatientModel
+    from physiology.mechanics.ventilator import Mechanics, Settings
+
+    patient = PatientModel(pbw_kg=70, shunt_fixed=0.08, log_sd=0.6, dead_space_fraction=0.15, hb=12,
+                           mechanics=Mechanics(resistance=10, c_max=50))
+    now = Settings(mode="pressure", fio2=0.35, peep=6, inspiratory_pressure=10, rr=12, ti=1.0)
+    trial = Settings(mode="pressure", fio2=0.55, peep=8, inspiratory_pressure=10, rr=14, ti=1.0)
+    results["course_60min_ms"] = median_ms(lambda: simulate(patient, now, trial), repeats=11, warmup=2)
+    rng = np.random.default_rng(1)
+    b = 200
+    draws = PatientModel(pbw_kg=70, shunt_fixed=rng.uniform(0.03, 0.15, b), log_sd=rng.uniform(0.4, 0.9, b),
+                         dead_space_fraction=rng.uniform(0.1, 0.2, b), hb=12,
+                         mechanics=Mechanics(resistance=10, c_max=rng.uniform(40, 60, b)))
+    results["course_draws_200_ms"] = median_ms(lambda: simulate(draws, now, trial), repeats=3, warmup=1)
+
+
+BENCHES = [bench_steady, bench_prediction, bench_course]
 
 
 def _available(bench) -> bool:
     try:
         bench_probe = {"bench_steady": "physiology.gasexchange.compartments",
-                       "bench_prediction": "physiology.forecast"}[bench.__name__]
+                       "bench_prediction": "physiology.forecast",
+                       "bench_course": "physiology.dynamics.course"}[bench.__name__]
         __import__(bench_probe)
         return True
     except ImportError:

@@ -1,0 +1,165 @@
+"""The time-course model against published time courses, conservation and the steady-state engine."""
+
+import numpy as np
+import pytest
+from scipy.optimize import curve_fit
+
+from physiology.dynamics.course import Change, rhs, simulate
+from physiology.forecast import PatientModel
+from physiology.mechanics.ventilator import Mechanics, Settings
+
+# A patient without airflow obstruction, P/F above 180, in pressure control (as in Cakar 2001).
+PATIENT = PatientModel(pbw_kg=70, shunt_fixed=0.08, log_sd=0.6, dead_space_fraction=0.15, hb=12,
+                       mechanics=Mechanics(resistance=10, c_max=50))
+
+
+def pc(**kw):
+    base = dict(mode="pressure", fio2=0.35, peep=6, inspiratory_pressure=10, rr=12, ti=1.0)
+    base.update(kw)
+    return Settings(**base)
+
+
+def _rate_constant(course):
+    start, end = course.pao2[0], course.pao2[-1]
+
+    def model(t, k):
+        return start + (end - start) * (1 - np.exp(-k * t))
+
+    (k,), _ = curve_fit(model, course.minutes, course.pao2, p0=[1.0])
+    return k
+
+
+def test_fio2_step_time_constant():
+    """Cakar et al. 2001: after FiO2 0.35 -> 0.55 in PCV patients without obstruction, PaO2 follows
+    PaO2b + dPaO2 (1 - e^(-kt)) with k = 1.01 +/- 0.71 /min rising and 0.69 +/- 0.42 /min falling
+    (test range 0.3-1.7); 90 % of the change within 10 min ("10 minutes adequate")."""
+    up = simulate(PATIENT, pc(fio2=0.35), pc(fio2=0.55))
+    down = simulate(PATIENT, pc(fio2=0.55), pc(fio2=0.35))
+    assert up.success and down.success
+    for course in (up, down):
+        assert 0.3 <= _rate_constant(course) <= 1.7
+        assert course.t90_pao2 < 10.0
+    assert up.pao2[-1] > up.pao2[0] + 50
+
+
+def _fraction_of_change(course):
+    end = float(course.final.gas.paco2)
+    return (course.paco2 - course.paco2[0]) / (end - course.paco2[0])
+
+
+def test_minute_ventilation_step():
+    """Minute-ventilation step (RR 12 -> 18): most of the PaCO2 change within 10 min and more than 90 %
+    by 30 min (from memory; Farhi & Rahn 1955 abstract: CO2 stores change 50 % in about 4 min)."""
+    c = simulate(PATIENT, pc(rr=12), pc(rr=18))
+    f = _fraction_of_change(c)
+    at = {m: f[np.argmin(np.abs(c.minutes - m))] for m in (4, 10, 30)}
+    assert at[10] > 0.5
+    assert at[30] > 0.9
+    assert 0.3 < at[4] < 0.75
+
+
+def test_rising_paco2_is_slower_than_falling():
+    """Direction of the asymmetry: after a ventilation decrease (PaCO2 rising) the approach is slower than
+    after an increase. Taskar et al. 1995 (ICU patients after +/-10 % ventilator resetting): the time
+    constant is longer after a ventilation decrease; mechanical hyperventilation study (J Appl Physiol
+    1962;17:805, abstract): only a third of the CO2 lost in 12 min was regained in the next 12 min.
+    (Farhi & Rahn 1955's abstract states no direction.)"""
+    falling = simulate(PATIENT, pc(rr=12), pc(rr=18))
+    rising = simulate(PATIENT, pc(rr=18), pc(rr=12))
+    assert rising.t90_paco2 > falling.t90_paco2
+    i10 = np.argmin(np.abs(falling.minutes - 10))
+    assert _fraction_of_change(rising)[i10] < _fraction_of_change(falling)[i10]
+
+
+def test_apnoea():
+    """Apnoea from an oxygenated steady state (FiO2 1.0, airway open): PaCO2 rises most in the first
+    minute, then 3-6 mmHg/min (Stock et al. 1988: 7 mmHg in 10 s, then 6 mmHg/min, awake; Eger &
+    Severinghaus 1961: ~3 mmHg/min anaesthetised, from memory)."""
+    c = simulate(PATIENT, pc(fio2=1.0), Change(0.0, apnoea=True), minutes=6)
+    assert c.success
+    t, p = c.minutes, c.paco2
+    first = p[np.argmin(np.abs(t - 1))] - p[0]
+    later = (p[np.argmin(np.abs(t - 5))] - p[np.argmin(np.abs(t - 2))]) / 3.0
+    assert first > later
+    assert 3.0 <= later <= 6.0
+    assert np.all(c.pao2 > 100)  # apnoeic oxygenation from 100 % O2 keeps the patient oxygenated
+
+
+def test_co2_is_conserved():
+    """CO2 in stores (lung gas, tissue, venous and transit blood) plus CO2 exhaled equals CO2 produced
+    within 1 % over a course (ventilation change, PEEP change and FiO2 change)."""
+    for new in (pc(rr=18), pc(rr=8), pc(peep=12, fio2=0.6)):
+        c = simulate(PATIENT, pc(), new)
+        assert abs(c.co2_balance_error) < 0.01
+
+
+def test_no_change_is_flat():
+    c = simulate(PATIENT, pc(), pc())
+    assert np.ptp(c.pao2) < 0.05 and np.ptp(c.paco2) < 0.05
+
+
+def test_long_course_ends_at_the_steady_state():
+    """One physiology, two views: after a long course the state equals the steady-state engine's answer
+    for the new settings (PaO2 within 1 mmHg, PaCO2 within 0.5 mmHg) for 50 random valid cases."""
+    rng = np.random.default_rng(11)
+    n = 50
+    patients = PatientModel(
+        pbw_kg=rng.uniform(50, 85, n), shunt_fixed=rng.uniform(0.02, 0.25, n), log_sd=rng.uniform(0.3, 1.1, n),
+        dead_space_fraction=rng.uniform(0.05, 0.3, n), hb=rng.uniform(8, 15, n), vco2=rng.uniform(160, 260, n),
+        vo2=rng.uniform(200, 320, n), cardiac_output_ref=rng.uniform(4, 7, n),
+        mechanics=Mechanics(resistance=rng.uniform(6, 20, n), c_max=rng.uniform(30, 70, n),
+                            recruitable=rng.uniform(0, 0.3, n)))
+    now = Settings(mode="volume", fio2=rng.uniform(0.3, 0.7, n), peep=rng.uniform(5, 12, n),
+                   vt_ml=rng.uniform(380, 480, n), rr=rng.uniform(14, 22, n), ti=0.9)
+    new = Settings(mode="volume", fio2=rng.uniform(0.3, 0.9, n), peep=rng.uniform(5, 15, n),
+                   vt_ml=rng.uniform(380, 480, n), rr=rng.uniform(12, 26, n), ti=0.9)
+    c = simulate(patients, now, new, minutes=180, rtol=1e-5)
+    assert np.all(c.success)
+    assert np.max(np.abs(c.pao2[:, -1] - c.final.gas.pao2)) < 1.0
+    assert np.max(np.abs(c.paco2[:, -1] - c.final.gas.paco2)) < 0.5
+
+
+def test_peep_step_recruits_over_minutes():
+    """Recruitment after a PEEP step continues for minutes (Katz 1981; Garnero 2015, from memory):
+    PaO2 is still rising 5 minutes after the step in a recruitable lung."""
+    pt = PATIENT.replace(recruitable=0.3, shunt_fixed=0.05)
+    c = simulate(pt, pc(fio2=0.5, peep=5, inspiratory_pressure=14), pc(fio2=0.5, peep=14, inspiratory_pressure=14))
+    i1, i5, i30 = (np.argmin(np.abs(c.minutes - m)) for m in (1, 5, 30))
+    assert c.open_fraction[i30] > c.open_fraction[0]
+    assert c.pao2[i5] < c.pao2[i30] - 2
+    assert c.t90_pao2 > 3
+
+
+def test_schedule_of_changes_and_events():
+    changes = [Change(0.0, settings=pc(rr=16)), Change(20.0, patient={"shunt_fixed": 0.25}, label="atelectasis")]
+    c = simulate(PATIENT, pc(), changes, minutes=40)
+    i19, i39 = np.argmin(np.abs(c.minutes - 19.5)), -1
+    assert c.pao2[i39] < c.pao2[i19] - 10
+    assert c.minutes[1] - c.minutes[0] <= 0.25
+
+
+def test_solver_options_pass_through_and_rhs_convention():
+    c = simulate(PATIENT, pc(), pc(fio2=0.5), minutes=10, method="Radau", max_step=1.0)
+    assert c.success
+    import inspect
+    assert list(inspect.signature(rhs).parameters)[:4] == ["t", "x", "u", "params"]
+
+
+def test_batch_of_draws_gives_a_band():
+    rng = np.random.default_rng(5)
+    draws = PATIENT.replace(shunt_fixed=rng.uniform(0.04, 0.12, 20), log_sd=rng.uniform(0.5, 0.7, 20))
+    c = simulate(draws, pc(), pc(fio2=0.5), minutes=30)
+    assert c.pao2.shape == (20, c.minutes.size)
+    lo, hi = np.percentile(c.pao2, [5, 95], axis=0)
+    assert np.all(hi[1:] > lo[1:])
+
+
+@pytest.mark.parametrize("kw,needle", [({"step_s": 30}, "step_s"), ({"minutes": 0}, "minutes")])
+def test_bad_course_arguments(kw, needle):
+    with pytest.raises(ValueError, match=needle):
+        simulate(PATIENT, pc(), pc(fio2=0.5), **kw)
+
+
+def test_change_outside_the_course_is_refused():
+    with pytest.raises(ValueError, match="outside the course"):
+        simulate(PATIENT, pc(), Change(90.0, settings=pc(fio2=0.5)), minutes=60)
