@@ -1,0 +1,1 @@
+"""Patient fit from blood gases: MAP estimate, likely ranges, identifiability, next best measurement."""

@@ -1,0 +1,644 @@
+"""Patient fit from blood gases and ventilator readings: MAP estimate, uncertainty, identifiability.
+
+Method
+------
+Unknowns (transformed to an unconstrained scale: logit for fractions, log for positive
+quantities) have population priors; the fit minimises
+
+    sum_obs ((y_obs - y_model(theta)) / sd)^2 + sum_params ((theta - prior_mean) / prior_sd)^2
+
+with ``scipy.optimize.least_squares`` (maximum a posteriori with Gaussian priors on the
+transformed scale). The Jacobian is taken by forward differences, all perturbations
+of all observations solved in one batched call of the engine. The posterior is
+approximated by a Gaussian on the transformed scale with covariance ``(J^T J)^-1``
+(Laplace / Gauss-Newton), and parameter draws from it give the 90 % likely range of any
+forecast (5th to 95th percentile).
+
+Cardiac output and VO2 are unknown nuisance parameters with population priors (not
+fixed): their uncertainty reaches the likely range. When measured, they enter as
+observations.
+
+Measurement-error model (one standard deviation; from memory, informed by analyser
+performance limits and short-term within-patient variation): PaO2 2 mmHg + 5 %;
+PaCO2 1.5 mmHg + 2 %; pH 0.01; SaO2 0.015; PetCO2 2 mmHg; Pplat 1.5 cmH2O; Ppeak 2 cmH2O;
+exhaled VT 5 % + 10 mL; VE 5 % + 0.2 L/min; VCO2 8 %; cardiac output 10 % (thermodilution,
+from memory).
+
+Population priors (from memory unless cited): shunt 0.10 (logit SD 1.0); recruitable lung
+fraction 0.10 (Gattinoni 2006: 13 +/- 11 % of lung weight; logit SD 1.0); V/Q log SD 0.8
+(log SD 0.4; Cardus 1997 healthy 0.3-0.6, ARDS 1-2); alveolar dead space 0.20 (logit SD 0.8);
+VO2 125 mL/min/m2 body surface, +10 % per degC above 37 (log SD 0.15); VCO2 0.8 VO2 (log SD
+0.2); cardiac index 3.2 L/min/m2 (log SD 0.25); aerated-lung compliance 0.8 mL/cmH2O per kg
+PBW (log SD 0.45); resistance 12 cmH2O/L/s (log SD 0.45); standard base excess 0 mmol/L
+(SD 8).
+
+References
+----------
+[1] Karbing DS, Kjaergaard S, Smith BW, et al. Variation in the PaO2/FiO2 ratio with FiO2:
+    mathematical and experimental description, and clinical relevance. Crit Care 2007;11:R118
+    (several FiO2 levels separate shunt from V/Q mismatch; one cannot).
+[2] Gattinoni L, Caironi P, Cressoni M, et al. Lung recruitment in patients with the acute
+    respiratory distress syndrome. N Engl J Med 2006;354:1775-1786 (from memory).
+[3] Cardus J, Burgos F, Diaz O, et al. Increase in pulmonary ventilation-perfusion inequality
+    with age in healthy individuals. Am J Respir Crit Care Med 1997;156:648-653.
+[4] Mosteller RD. Simplified calculation of body-surface area. N Engl J Med 1987;317:1098.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.optimize import least_squares
+from scipy.special import expit, logit
+
+from .._checks import check_fio2, check_range
+from ..bloodgas.acidbase import _ph_invivo, bicarbonate_henderson_hasselbalch
+from ..bloodgas.oxygen import saturation
+from ..forecast import PatientModel, Prediction, predict
+from ..gasexchange.alveolar import alveolar_po2
+from ..indices import predicted_body_weight
+from ..mechanics.ventilator import Mechanics, Settings
+
+__all__ = ["Patient", "Observation", "FitResult", "fit", "check_observation", "InputError",
+           "PARAMETERS", "likely_range", "next_best_measurement", "population_defaults"]
+
+
+class InputError(ValueError):
+    """Observations that are inconsistent before any fitting (refused with the values named)."""
+
+
+@dataclass(frozen=True)
+class Patient:
+    """What is known about the patient [units]: sex, height_cm, weight_kg, age_years, temperature_c,
+    hb_g_dl, barometric_mmhg."""
+
+    sex: str
+    height_cm: float
+    weight_kg: float
+    age_years: float | None = None
+    temperature_c: float = 37.0
+    hb_g_dl: float = 12.0
+    barometric_mmhg: float = 760.0
+
+    @property
+    def pbw_kg(self) -> float:
+        return float(predicted_body_weight(self.height_cm, self.sex))
+
+    @property
+    def bsa_m2(self) -> float:
+        """Body surface area, Mosteller 1987 [m2]: sqrt(height_cm x weight_kg / 3600)."""
+        return float(np.sqrt(self.height_cm * self.weight_kg / 3600.0))
+
+
+@dataclass(frozen=True)
+class Observation:
+    """One set of measurements with the settings in force [units as in the case file]."""
+
+    settings: Settings
+    pao2: float
+    paco2: float
+    ph: float
+    sao2: float | None = None
+    hco3: float | None = None
+    petco2: float | None = None
+    pplat: float | None = None
+    ppeak: float | None = None
+    vte_ml: float | None = None
+    ve_l_min: float | None = None
+    vco2: float | None = None
+    cardiac_output: float | None = None
+    taken_at: str = ""
+
+
+#: Fitted parameters: (name, transform, where it goes).
+PARAMETERS = ("shunt_fixed", "recruitable", "log_sd", "dead_space_fraction", "vco2", "vo2",
+              "cardiac_output_ref", "c_max", "resistance", "base_excess")
+_LOGIT = {"shunt_fixed", "recruitable", "dead_space_fraction"}
+_LINEAR = {"base_excess"}
+_BOUNDS = {"shunt_fixed": (0.0, 0.7), "recruitable": (0.0, 0.6), "log_sd": (0.05, 2.3),
+           "dead_space_fraction": (0.0, 0.75), "vco2": (60.0, 650.0), "vo2": (80.0, 750.0),
+           "cardiac_output_ref": (1.5, 18.0), "c_max": (6.0, 190.0), "resistance": (2.5, 55.0),
+           "base_excess": (-28.0, 28.0)}
+
+SD = {"pao2": (2.0, 0.05), "paco2": (1.5, 0.02), "ph": (0.01, 0.0), "sao2": (0.015, 0.0),
+      "petco2": (2.0, 0.0), "pplat": (1.5, 0.0), "ppeak": (2.0, 0.0), "vte_ml": (10.0, 0.05),
+      "ve_l_min": (0.2, 0.05), "vco2": (0.0, 0.08), "cardiac_output": (0.0, 0.10)}
+
+#: Mean airway pressure at which the fitted ``cardiac_output_ref`` holds [cmH2O].
+MEAN_PAW_REFERENCE = 10.0
+
+#: Tolerances of the pre-fit consistency checks.
+PAO2_ABOVE_ALVEOLAR_MMHG = 10.0
+HCO3_MISMATCH_MMOL_L = 2.0
+PETCO2_ABOVE_PACO2_MMHG = 5.0
+SAO2_MISMATCH = 0.05
+
+
+def population_defaults(patient: Patient) -> dict:
+    """Prior means on the natural scale, and prior SDs on the transformed scale."""
+    bsa = patient.bsa_m2
+    vo2 = 125.0 * bsa * (1.0 + 0.10 * (patient.temperature_c - 37.0))
+    mean = {"shunt_fixed": 0.10, "recruitable": 0.10, "log_sd": 0.8, "dead_space_fraction": 0.20,
+            "vco2": 0.8 * vo2, "vo2": vo2, "cardiac_output_ref": 3.2 * bsa, "c_max": 0.8 * patient.pbw_kg,
+            "resistance": 12.0, "base_excess": 0.0}
+    sd = {"shunt_fixed": 1.0, "recruitable": 1.0, "log_sd": 0.4, "dead_space_fraction": 0.8, "vco2": 0.2,
+          "vo2": 0.15, "cardiac_output_ref": 0.25, "c_max": 0.45, "resistance": 0.45, "base_excess": 8.0}
+    return {"mean": mean, "sd": sd}
+
+
+def _to_z(name, value):
+    if name in _LOGIT:
+        return logit(np.clip(value, 1e-4, 1 - 1e-4))
+    if name in _LINEAR:
+        return value
+    return np.log(value)
+
+
+def _from_z(name, z):
+    lo, hi = _BOUNDS[name]
+    if name in _LOGIT:
+        v = expit(z)
+    elif name in _LINEAR:
+        v = z
+    else:
+        v = np.exp(np.clip(z, -30, 30))
+    return np.clip(v, lo, hi)
+
+
+def _sd(key, value):
+    a, r = SD[key]
+    return a + r * abs(value)
+
+
+def check_observation(obs: Observation, patient: Patient) -> list[str]:
+    """Consistency checks before fitting. Raises :class:`InputError` for impossible data; returns warnings."""
+    fio2 = float(check_fio2(obs.settings.fio2))
+    pb = patient.barometric_mmhg
+    pa_ideal = float(alveolar_po2(fio2, obs.paco2, 0.8, pb, min(max(patient.temperature_c, 20.0), 45.0)))
+    if obs.pao2 > pa_ideal + PAO2_ABOVE_ALVEOLAR_MMHG:
+        raise InputError(
+            f"PaO2 {obs.pao2:g} mmHg is above the alveolar PO2 at FiO2 {fio2:g} and PaCO2 {obs.paco2:g} mmHg "
+            f"({pa_ideal:.0f} mmHg; at most {PAO2_ABOVE_ALVEOLAR_MMHG:g} mmHg above is accepted). Likely causes: "
+            f"FiO2 recorded wrongly, or air in the sample")
+    warnings = []
+    if obs.hco3 is not None:
+        hh = float(bicarbonate_henderson_hasselbalch(obs.ph, obs.paco2))
+        if abs(hh - obs.hco3) > HCO3_MISMATCH_MMOL_L:
+            raise InputError(
+                f"pH {obs.ph:g}, PaCO2 {obs.paco2:g} mmHg and HCO3 {obs.hco3:g} mmol/L disagree: "
+                f"Henderson-Hasselbalch gives HCO3 {hh:.1f} mmol/L from that pH and PaCO2 (mismatch "
+                f"{abs(hh - obs.hco3):.1f}, more than {HCO3_MISMATCH_MMOL_L:g} accepted). Check the values "
+                f"were copied from one sample")
+    if obs.petco2 is not None and obs.petco2 > obs.paco2 + PETCO2_ABOVE_PACO2_MMHG:
+        warnings.append(f"PetCO2 {obs.petco2:g} mmHg is more than {PETCO2_ABOVE_PACO2_MMHG:g} mmHg above PaCO2 "
+                        f"{obs.paco2:g} mmHg: unusual (sampling or timing?); PetCO2 is down-weighted")
+    if obs.sao2 is not None:
+        expected = float(saturation(obs.pao2, obs.ph, obs.paco2, patient.temperature_c))
+        if abs(expected - obs.sao2) > SAO2_MISMATCH:
+            warnings.append(f"SaO2 {obs.sao2:.2f} is inconsistent with PaO2 {obs.pao2:g} mmHg on the dissociation "
+                            f"curve (expected {expected:.2f}); check for carboxy- or methaemoglobin or a "
+                            f"pulse-oximetry value")
+    return warnings
+
+
+@dataclass(frozen=True)
+class FitResult:
+    """Result of :func:`fit`.
+
+    success, message; model : PatientModel at the MAP estimate; estimates : {name: value};
+    ranges : {name: (5th, 95th percentile)}; draws : PatientModel with arrays of draws;
+    z_hat, covariance : transformed-scale estimate and covariance; identifiability : list of messages;
+    warnings : input warnings; residuals : {observation index: {quantity: standardised residual}};
+    fitted : Prediction at the observations' settings; cost : final objective.
+    """
+
+    success: bool
+    message: str
+    model: PatientModel
+    estimates: dict
+    ranges: dict
+    draws: PatientModel
+    z_hat: np.ndarray
+    covariance: np.ndarray
+    identifiability: list
+    warnings: list
+    residuals: list
+    cost: float
+    patient: Patient = field(repr=False)
+    observations: tuple = field(repr=False)
+    free: tuple = ()
+
+
+def _settings_batch(settings_list):
+    """One Settings with arrays from a list of Settings of the same mode."""
+    mode = settings_list[0].mode
+
+    def arr(name):
+        vals = [getattr(s, name) for s in settings_list]
+        if all(v is None for v in vals):
+            return None
+        return np.array([np.nan if v is None else float(v) for v in vals])
+
+    return Settings(mode=mode, fio2=arr("fio2"), peep=arr("peep"), vt_ml=arr("vt_ml"),
+                    inspiratory_pressure=arr("inspiratory_pressure"), rr=arr("rr"), ti=arr("ti"),
+                    apparatus_dead_space_ml=arr("apparatus_dead_space_ml"), pause=arr("pause"))
+
+
+def build_model(patient: Patient, values: dict, mean_paw_ref) -> PatientModel:
+    """PatientModel for parameter values (scalars or arrays)."""
+    return PatientModel(
+        pbw_kg=patient.pbw_kg, shunt_fixed=values["shunt_fixed"], log_sd=values["log_sd"],
+        dead_space_fraction=values["dead_space_fraction"], vo2=values["vo2"], vco2=values["vco2"],
+        hb=patient.hb_g_dl, temperature=patient.temperature_c, barometric=patient.barometric_mmhg,
+        base_excess=values["base_excess"], cardiac_output_ref=values["cardiac_output_ref"],
+        mean_paw_ref=mean_paw_ref,
+        mechanics=Mechanics(resistance=values["resistance"], c_max=values["c_max"],
+                            recruitable=values["recruitable"], anatomic_dead_space_ml=patient.pbw_kg * 1.0),
+    )
+
+
+class _Problem:
+    """Residuals of all observations for a batch of parameter vectors, in one engine call per mode."""
+
+    def __init__(self, patient: Patient, observations, free, fixed: dict, prior: dict):
+        self.patient = patient
+        self.obs = list(observations)
+        self.free = tuple(free)
+        self.fixed = fixed
+        self.prior = prior
+        # The fitted cardiac output is referred to a fixed mean airway pressure (a convention, so that the
+        # parameter means the same for every case); the output at any settings follows from the model.
+        self.mean_paw_ref = MEAN_PAW_REFERENCE
+        self.groups = {}
+        for i, o in enumerate(self.obs):
+            self.groups.setdefault(o.settings.mode, []).append(i)
+        self.keys = []  # (obs index, quantity, observed, sd)
+        for i, o in enumerate(self.obs):
+            for q in ("pao2", "paco2", "ph", "sao2", "petco2", "pplat", "ppeak", "vte_ml", "ve_l_min",
+                      "vco2", "cardiac_output"):
+                y = getattr(o, q)
+                if y is None:
+                    continue
+                sd = _sd(q, y)
+                if q == "petco2" and y > o.paco2 + PETCO2_ABOVE_PACO2_MMHG:
+                    sd *= 3.0
+                if q == "pplat" and o.settings.mode == "pressure":
+                    continue  # in pressure control the end-inspiratory pressure is Ppeak's job
+                self.keys.append((i, q, float(y), sd))
+        self.y = np.array([k[2] for k in self.keys])
+        self.sd = np.array([k[3] for k in self.keys])
+        self.pm = np.array([_to_z(n, prior["mean"][n]) for n in self.free])
+        self.ps = np.array([prior["sd"][n] for n in self.free])
+
+    def values(self, Z):
+        """Natural-scale parameter arrays for rows of Z (K, p)."""
+        vals = {n: np.full(Z.shape[0], float(v)) for n, v in self.fixed.items()}
+        for j, n in enumerate(self.free):
+            vals[n] = _from_z(n, Z[:, j])
+        return vals
+
+    def model_outputs(self, Z):
+        """Model values for every (row of Z, observation key): array (K, n_keys), NaN where it failed."""
+        K = Z.shape[0]
+        vals = self.values(Z)
+        out = np.full((K, len(self.keys)), np.nan)
+        for mode, idx in self.groups.items():
+            m = len(idx)
+            s = _settings_batch([self.obs[i].settings for i in idx])
+            tiled = Settings(mode=mode, **{f: (None if getattr(s, f) is None else np.tile(getattr(s, f), K))
+                                           for f in ("fio2", "peep", "vt_ml", "inspiratory_pressure", "rr", "ti",
+                                                     "apparatus_dead_space_ml", "pause")})
+            tiled = _fill_optional(tiled)
+            rep = {n: np.repeat(v, m) for n, v in vals.items()}
+            pred = predict(build_model(self.patient, rep, self.mean_paw_ref), tiled)
+            table = _quantities(pred)
+            for col, (i, q, _y, _sd) in enumerate(self.keys):
+                if i in idx:
+                    pos = idx.index(i)
+                    out[:, col] = table[q].reshape(K, m)[:, pos]
+        return out
+
+    def residuals(self, Z):
+        """Stacked standardised residuals (data then prior) for rows of Z: (K, n_keys + p)."""
+        out = self.model_outputs(Z)
+        r = (out - self.y) / self.sd
+        r = np.where(np.isfinite(r), r, 1e3)  # no steady state at these parameters: far from the data
+        prior = (Z - self.pm) / self.ps
+        return np.concatenate([r, prior], axis=1)
+
+
+def _fill_optional(s: Settings) -> Settings:
+    from dataclasses import replace
+    changes = {}
+    for f, default in (("apparatus_dead_space_ml", 0.0), ("pause", 0.0)):
+        v = getattr(s, f)
+        if v is None:
+            changes[f] = default
+        else:
+            changes[f] = np.where(np.isnan(v), default, v)
+    return replace(s, **changes)
+
+
+def _quantities(pred: Prediction) -> dict:
+    g, b = pred.gas, pred.breathing
+    return {"pao2": np.atleast_1d(g.pao2), "paco2": np.atleast_1d(g.paco2), "ph": np.atleast_1d(g.ph),
+            "sao2": np.atleast_1d(g.sao2), "petco2": np.atleast_1d(g.petco2), "pplat": np.atleast_1d(b.pplat),
+            "ppeak": np.atleast_1d(b.ppeak), "vte_ml": np.atleast_1d(b.vt_ml),
+            "ve_l_min": np.atleast_1d(b.minute_ventilation),
+            "vco2": np.atleast_1d(np.asarray(pred.patient.vco2, dtype=float) * np.ones_like(g.pao2)),
+            "cardiac_output": np.atleast_1d(pred.cardiac_output)}
+
+
+def fit(patient: Patient, observations, n_draws: int = 400, seed: int = 0, max_nfev: int = 60) -> FitResult:
+    """Fit the patient model to one or more observations (see module notes).
+
+    Parameters
+    ----------
+    patient : Patient
+    observations : sequence of Observation (each with the settings in force when taken)
+    n_draws : int
+        Parameter draws kept for likely ranges [count], >= 200.
+    seed : int
+        Seed of the draws (fits are reproducible).
+    max_nfev : int
+        Limit on Jacobian evaluations of the optimiser.
+    """
+    observations = tuple(observations)
+    if not observations:
+        raise InputError("at least one observation (blood gas with its settings) is needed to fit")
+    if n_draws < 200:
+        raise ValueError(f"n_draws = {n_draws} is outside the accepted range 200 or more")
+    warnings = []
+    for i, o in enumerate(observations):
+        check_range("PaO2", o.pao2, 20, 700, "mmHg")
+        check_range("PaCO2", o.paco2, 10, 150, "mmHg")
+        check_range("pH", o.ph, 6.5, 8.0)
+        try:
+            warnings += [f"observation {i + 1}: {w}" for w in check_observation(o, patient)]
+        except InputError as exc:
+            raise InputError(f"observation {i + 1}: {exc}") from None
+    prior = population_defaults(patient)
+    fixed = {}
+    free = list(PARAMETERS)
+    problem = _Problem(patient, observations, free, fixed, prior)
+    p = len(free)
+    # Start at the prior mean, with base excess from the latest blood gas.
+    z0 = problem.pm.copy()
+    last = observations[-1]
+    hco3 = float(bicarbonate_henderson_hasselbalch(last.ph, last.paco2))
+    z0[free.index("base_excess")] = np.clip(hco3 - 24.8 + 16.2 * (last.ph - 7.40), -25, 25)
+
+    h = 1e-4
+
+    def fun(z):
+        return problem.residuals(z[None, :])[0]
+
+    def jac(z):
+        Z = np.vstack([z] + [z + h * e for e in np.eye(p)])
+        R = problem.residuals(Z)
+        return ((R[1:] - R[0]) / h).T
+
+    sol = least_squares(fun, z0, jac=jac, method="trf", x_scale=problem.ps, max_nfev=max_nfev,
+                        xtol=1e-6, ftol=1e-8, gtol=1e-8)
+    J = jac(sol.x)
+    r = fun(sol.x)
+    try:
+        cov = np.linalg.inv(J.T @ J)
+    except np.linalg.LinAlgError:
+        cov = np.linalg.pinv(J.T @ J)
+    cov = 0.5 * (cov + cov.T)
+    n_data = len(problem.keys)
+    data_r = r[:n_data]
+    values_hat = problem.values(sol.x[None, :])
+    estimates = {n: float(v[0]) for n, v in values_hat.items()}
+    rng = np.random.default_rng(seed)
+    Zd, ess = _posterior_draws(problem, sol.x, cov, n_draws, rng)
+    vd = problem.values(Zd)
+    ranges = {n: (float(np.percentile(vd[n], 5)), float(np.percentile(vd[n], 95))) for n in free}
+    model = build_model(patient, {n: float(v[0]) for n, v in values_hat.items()}, problem.mean_paw_ref)
+    draws = build_model(patient, vd, problem.mean_paw_ref)
+    ident = _identifiability(free, cov, problem.ps, observations)
+    residuals = [dict() for _ in observations]
+    for (i, q, _y, _sd), rr in zip(problem.keys, data_r):
+        residuals[i][q] = float(rr)
+    poor = [(i, q, v) for i, d in enumerate(residuals) for q, v in d.items() if abs(v) > 3.0]
+    converged = bool(sol.success) and np.all(np.abs(data_r) < 1e2)
+    if not converged:
+        message = f"the fit did not converge: {sol.message}"
+    elif poor:
+        message = "fitted, but the model does not reproduce " + ", ".join(
+            f"{q} of observation {i + 1} ({v:+.1f} SD)" for i, q, v in poor)
+    else:
+        message = f"fitted {len(observations)} observation(s); every measurement reproduced within 3 SD"
+    return FitResult(success=converged, message=message, model=model, estimates=estimates, ranges=ranges,
+                     draws=draws, z_hat=sol.x, covariance=cov, identifiability=ident, warnings=warnings,
+                     residuals=residuals, cost=float(sol.cost), patient=patient, observations=observations,
+                     free=tuple(free))
+
+
+#: Importance sampling: proposals per kept draw, and the defensive mixture used as proposal
+#: (share, kind, widening): a Student-t around the mode, a wider Gaussian, and the prior itself.
+PROPOSALS_PER_DRAW = 5
+PROPOSAL_MIXTURE = ((0.5, "t", 1.0), (0.2, "gauss", 2.0), (0.3, "prior", 1.0))
+PROPOSAL_DF = 4.0
+
+
+def _log_mvt(d, inv_cov, logdet, df):
+    p = d.shape[1]
+    q = np.einsum("ij,jk,ik->i", d, inv_cov, d)
+    from scipy.special import gammaln
+    return (gammaln((df + p) / 2) - gammaln(df / 2) - 0.5 * p * np.log(df * np.pi) - 0.5 * logdet
+            - 0.5 * (df + p) * np.log1p(q / df))
+
+
+def _log_mvn(d, inv_cov, logdet):
+    p = d.shape[1]
+    return -0.5 * (np.einsum("ij,jk,ik->i", d, inv_cov, d) + logdet + p * np.log(2 * np.pi))
+
+
+def _sqrt_psd(c):
+    w, v = np.linalg.eigh(c)
+    return v * np.sqrt(np.maximum(w, 1e-12))
+
+
+def _posterior_draws(problem: "_Problem", z_hat, cov, n_draws, rng):
+    """Draws from the posterior by defensive importance sampling.
+
+    The Laplace (Gauss-Newton) Gaussian misjudges the posterior where the model is strongly
+    nonlinear (recruitability whose effect vanishes once the lung is open, for instance), so it
+    only seeds a defensive mixture proposal: a Student-t around the mode, a twice-as-wide Gaussian,
+    and the prior. Importance weights come from the exact (unnormalised) posterior over the whole
+    mixture density; systematic resampling gives ``n_draws`` equally weighted draws.
+
+    Returns the draws (n_draws, p) and the effective sample size of the weighted proposals.
+    """
+    m = PROPOSALS_PER_DRAW * n_draws
+    p = z_hat.size
+    prior_cov = np.diag(problem.ps ** 2)
+    comps = []
+    for share, kind, widen in PROPOSAL_MIXTURE:
+        if kind == "prior":
+            mean, c = problem.pm, prior_cov
+        else:
+            mean, c = z_hat, widen ** 2 * cov
+        c = 0.5 * (c + c.T) + 1e-9 * np.eye(p)
+        sign, logdet = np.linalg.slogdet(c)
+        comps.append((share, kind, mean, c, np.linalg.inv(c), logdet))
+    counts = rng.multinomial(m, [cp[0] for cp in comps])
+    parts = []
+    for (share, kind, mean, c, inv, logdet), k in zip(comps, counts):
+        y = rng.standard_normal((k, p)) @ _sqrt_psd(c).T
+        if kind == "t":
+            y = y / np.sqrt(rng.chisquare(PROPOSAL_DF, size=(k, 1)) / PROPOSAL_DF)
+        parts.append(mean + y)
+    Z = np.vstack(parts)
+    log_q_parts = []
+    for share, kind, mean, c, inv, logdet in comps:
+        d = Z - mean
+        lq = _log_mvt(d, inv, logdet, PROPOSAL_DF) if kind == "t" else _log_mvn(d, inv, logdet)
+        log_q_parts.append(np.log(share) + lq)
+    log_q = np.logaddexp.reduce(np.vstack(log_q_parts), axis=0)
+    R = problem.residuals(Z)
+    log_w = -0.5 * np.sum(R ** 2, axis=1) - log_q
+    log_w -= log_w.max()
+    w = np.exp(log_w)
+    w /= w.sum()
+    ess = 1.0 / np.sum(w ** 2)
+    positions = (rng.uniform() + np.arange(n_draws)) / n_draws
+    idx = np.minimum(np.searchsorted(np.cumsum(w), positions), m - 1)
+    return Z[idx], float(ess)
+
+
+def _is_pd(c):
+    try:
+        np.linalg.cholesky(c)
+        return True
+    except np.linalg.LinAlgError:
+        return False
+
+
+def _identifiability(free, cov, prior_sd, observations):
+    """Name what the data cannot separate or do not inform."""
+    sd = np.sqrt(np.diag(cov))
+    corr = cov / np.outer(sd, sd)
+    msgs = []
+    fio2s = {round(float(o.settings.fio2), 3) for o in observations}
+    peeps = {round(float(o.settings.peep), 1) for o in observations}
+    i_s, i_l = free.index("shunt_fixed"), free.index("log_sd")
+    if len(fio2s) < 2:
+        msgs.append("shunt and V/Q mismatch (log SD) cannot be separated from blood gases at a single FiO2 "
+                    "(Karbing 2007): a second blood gas at an FiO2 about 0.1-0.2 different would separate them")
+    elif abs(corr[i_s, i_l]) > 0.8:
+        msgs.append(f"shunt and V/Q mismatch remain strongly linked (correlation {corr[i_s, i_l]:+.2f}) despite "
+                    f"{len(fio2s)} FiO2 levels")
+    if len(peeps) < 2:
+        msgs.append("recruitability is not informed by the data (no observations at different PEEP): it rests "
+                    "on the population prior")
+    names = {"shunt_fixed": "shunt", "recruitable": "recruitable lung", "log_sd": "V/Q mismatch",
+             "dead_space_fraction": "alveolar dead space", "vco2": "VCO2", "vo2": "VO2",
+             "cardiac_output_ref": "cardiac output", "c_max": "compliance", "resistance": "resistance",
+             "base_excess": "base excess"}
+    weak = [names[n] for j, n in enumerate(free) if sd[j] > 0.8 * prior_sd[j]
+            and n not in ("recruitable",)]
+    if weak:
+        msgs.append("not informed beyond the population prior: " + ", ".join(weak))
+    for a in range(len(free)):
+        for b in range(a + 1, len(free)):
+            if {free[a], free[b]} == {"shunt_fixed", "log_sd"}:
+                continue
+            if abs(corr[a, b]) > 0.9:
+                msgs.append(f"{names[free[a]]} and {names[free[b]]} cannot be separated "
+                            f"(correlation {corr[a, b]:+.2f})")
+    return msgs
+
+
+def likely_range(fit_result: FitResult, settings: Settings, quantities=("pao2", "paco2", "ph", "sao2")):
+    """90 % likely range (5th-95th percentile over the draws) of steady-state forecasts at ``settings``.
+
+    Returns ``{quantity: (low, high)}``, the per-draw values, and the fraction of draws with a steady state.
+    """
+    b = np.atleast_1d(fit_result.draws.shunt_fixed).size
+    tiled = _tile_settings(settings, b)
+    pred = predict(fit_result.draws, tiled)
+    table = _quantities(pred)
+    ok = np.asarray(pred.success)
+    out = {}
+    for q in quantities:
+        v = table[q][ok]
+        out[q] = (float(np.percentile(v, 5)), float(np.percentile(v, 95))) if v.size else (np.nan, np.nan)
+    return out, table, float(ok.mean())
+
+
+def _tile_settings(settings: Settings, b: int) -> Settings:
+    from dataclasses import replace
+    fields_ = ("fio2", "peep", "vt_ml", "inspiratory_pressure", "rr", "ti", "apparatus_dead_space_ml", "pause")
+    return replace(settings, **{f: (None if getattr(settings, f) is None
+                                    else np.broadcast_to(np.asarray(getattr(settings, f), float), (b,)).copy())
+                                for f in fields_})
+
+
+def next_best_measurement(fit_result: FitResult, trial: Settings):
+    """Rank candidate measurements by how much they would shrink the forecast's uncertainty at ``trial``.
+
+    Candidates: a blood gas after an FiO2 step of +0.1 or -0.1; a blood gas after a PEEP step of +2 or
+    -2 cmH2O; a PetCO2 reading; a plateau-pressure measurement (volume control). The expected
+    posterior covariance after each (linear-Gaussian update with the candidate's Jacobian and
+    measurement error) gives the forecast variance of PaO2 and PaCO2 at ``trial``; candidates are ranked
+    by the summed relative reduction of the two standard deviations.
+
+    Returns a list of dicts (best first): probe, settings, reduction_pao2, reduction_paco2, score, why.
+    """
+    from dataclasses import replace
+    patient, obs = fit_result.patient, fit_result.observations
+    free = list(fit_result.free)
+    problem = _Problem(patient, obs, free, {}, population_defaults(patient))
+    z = fit_result.z_hat
+    cov = fit_result.covariance
+    p = z.size
+    h = 1e-4
+    Z = np.vstack([z] + [z + h * e for e in np.eye(p)])
+    last = obs[-1].settings
+
+    def outputs_at(settings, qs):
+        vals = problem.values(Z)
+        s = _tile_settings(settings, Z.shape[0])
+        pred = predict(build_model(patient, vals, problem.mean_paw_ref), _fill_optional(s))
+        t = _quantities(pred)
+        return {q: t[q] for q in qs}
+
+    trial_out = outputs_at(trial, ("pao2", "paco2"))
+    g = {q: (v[1:] - v[0]) / h for q, v in trial_out.items()}
+    base_sd = {q: float(np.sqrt(max(g[q] @ cov @ g[q], 1e-12))) for q in g}
+    candidates = []
+    fio2 = float(last.fio2)
+    for d in (+0.1, -0.1):
+        f2 = round(fio2 + d, 2)
+        if 0.21 <= f2 <= 1.0:
+            candidates.append((f"blood gas after FiO2 {fio2:.2f} -> {f2:.2f}", replace(last, fio2=f2),
+                               ("pao2", "paco2", "ph")))
+    for d in (+2.0, -2.0):
+        p2 = float(last.peep) + d
+        if 0 <= p2 <= 30:
+            candidates.append((f"blood gas after PEEP {float(last.peep):g} -> {p2:g} cmH2O", replace(last, peep=p2),
+                               ("pao2", "paco2", "ph")))
+    if not any(o.petco2 is not None for o in obs):
+        candidates.append(("a PetCO2 reading at the current settings", last, ("petco2",)))
+    if last.mode == "volume" and not any(o.pplat is not None for o in obs):
+        candidates.append(("a plateau pressure (0.5 s inspiratory hold) at the current settings", last, ("pplat",)))
+    ranked = []
+    for label, settings, qs in candidates:
+        out = outputs_at(settings, qs)
+        if not np.all(np.isfinite(np.concatenate([out[q] for q in qs]))):
+            continue
+        J = np.array([(out[q][1:] - out[q][0]) / h for q in qs])
+        R = np.diag([_sd(q, float(out[q][0])) ** 2 for q in qs])
+        new_cov = np.linalg.inv(np.linalg.inv(cov) + J.T @ np.linalg.inv(R) @ J)
+        red = {q: 1.0 - float(np.sqrt(max(g[q] @ new_cov @ g[q], 1e-12))) / base_sd[q] for q in g}
+        ranked.append({"probe": label, "settings": settings, "reduction_pao2": red["pao2"],
+                       "reduction_paco2": red["paco2"], "score": red["pao2"] + red["paco2"]})
+    ranked.sort(key=lambda c: -c["score"])
+    for c in ranked:
+        c["why"] = (f"would narrow the forecast's PaO2 range by about {100 * c['reduction_pao2']:.0f} % and its "
+                    f"PaCO2 range by about {100 * c['reduction_paco2']:.0f} %")
+    return ranked
