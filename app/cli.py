@@ -13,15 +13,14 @@ from pathlib import Path
 
 from . import CAUTION
 from .bedside import bedside_indices
-from .casefile import DEMO_NAMES, CaseError, demo_text, load_demo, loads, write_atomic
+from .engine import ModelError
+from .casefile import DEMO_NAMES, CaseError, demo_text, load, load_demo, write_atomic
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_MODEL = 0, 1, 2, 3
 
 #: Verbs whose capability has not landed yet: they refuse honestly.
 NOT_YET = {
     "open": "the window",
-    "predict": "the patient fit and forecast",
-    "fit": "the patient fit",
     "plan": "the goal search",
     "wean": "step-down plans",
     "walkthrough": "walkthroughs",
@@ -88,6 +87,102 @@ def _cmd_demo(args) -> int:
     return EXIT_OK
 
 
+def _load_case(args) -> dict:
+    if getattr(args, "demo", None):
+        if args.case:
+            raise CaseError("(command line)", "give either CASE or --demo NAME, not both")
+        return load_demo(args.demo)
+    if not args.case:
+        raise CaseError("CASE", "a case file is required (or --demo NAME; accepted names: " + ", ".join(DEMO_NAMES) + ")")
+    return load(args.case)
+
+
+def _num(v, d=1):
+    return "-" if v is None else f"{v:.{d}f}"
+
+
+STEADY_ROWS = [("PaO2", "pao2_mmhg", "mmHg", 0), ("PaCO2", "paco2_mmhg", "mmHg", 1), ("pH", "ph", "", 2),
+               ("SaO2", "sao2", "", 3), ("PetCO2", "petco2_mmhg", "mmHg", 1), ("VD/VT", "vd_vt", "", 2),
+               ("Qs/Qt (shunt)", "shunt_fraction", "", 2), ("Pplat", "pplat_cmh2o", "cmH2O", 1),
+               ("Ppeak", "ppeak_cmh2o", "cmH2O", 1), ("Driving pressure", "driving_pressure_cmh2o", "cmH2O", 1),
+               ("Intrinsic PEEP", "intrinsic_peep_cmh2o", "cmH2O", 1),
+               ("Mechanical power", "mechanical_power_j_min", "J/min", 1), ("VT", "vt_ml_per_kg_pbw", "mL/kg PBW", 1),
+               ("P/F ratio", "pf_ratio_mmhg", "mmHg", 0), ("Cardiac output", "cardiac_output_l_min", "L/min", 1),
+               ("Alveolar ventilation", "alveolar_ventilation_l_min", "L/min", 1)]
+
+
+def _cmd_predict(args) -> int:
+    from .engine import forecast_case
+    case = _load_case(args)
+    if not 1 <= args.minutes <= 240:
+        raise CaseError("--minutes", f"value {args.minutes:g} is outside the accepted range 1 to 240 min")
+    out = forecast_case(case, args.set, minutes=args.minutes)
+    if args.format == "json":
+        print(json.dumps(out))
+        return EXIT_OK
+    s = out["settings"]
+    drive = (f"VT {s['vt_ml']:g} mL" if s["mode"] == "volume" else f"Pinsp {s['inspiratory_pressure_cmh2o']:g} cmH2O")
+    print(f"Trial settings: {s['mode']} control, FiO2 {s['fio2']:.2f}, PEEP {s['peep_cmh2o']:g} cmH2O, {drive}, "
+          f"RR {s['rr_per_min']:g}/min, Ti {s['inspiratory_time_s']:g} s")
+    f = out["fit"]
+    print(f"Lung fit: shunt {f['shunt_fraction']:.2f}, V/Q log SD {f['vq_log_sd']:.2f}, alveolar dead space "
+          f"{f['alveolar_dead_space_fraction']:.2f}, VCO2 {f['vco2_ml_min']:.0f} mL/min, cardiac output "
+          f"{f['cardiac_output_l_min']:.1f} L/min ({f['message']})")
+    print()
+    print(f"{'Forecast (steady state)':<24} {'value':>9}  likely range (90 %)")
+    rng = out["likely_range"]
+    for title, key, unit, d in STEADY_ROWS:
+        band = ""
+        short = {"pao2_mmhg": "pao2_mmhg", "paco2_mmhg": "paco2_mmhg", "ph": "ph", "sao2": "sao2"}.get(key)
+        if short:
+            lo, hi = rng[short]
+            band = f"{lo:.{d}f} to {hi:.{d}f}"
+        print(f"  {title:<22} {_num(out['steady'][key], d):>9} {unit:<9} {band}")
+    if out.get("recheck_after_min") is not None:
+        print(f"\nRe-check a blood gas after about {out['recheck_after_min']:.0f} min (90 % of the change).")
+    if out["next_best_measurement"]:
+        nb = out["next_best_measurement"][0]
+        print(f"Next best measurement: {nb['probe']} - {nb['why']}.")
+    if out["alerts"]:
+        print("\nLimits and notes:")
+        marks = {"danger": "[!!]", "caution": "[! ]", "info": "[i ]"}
+        for a in out["alerts"]:
+            print(f"  {marks[a['severity']]} {a['message']}")
+    print()
+    print(CAUTION)
+    return EXIT_OK
+
+
+def _cmd_fit(args) -> int:
+    from .engine import fit_block, fit_case, now_block, to_settings
+    case = _load_case(args)
+    _patient, _obs, result = fit_case(case)
+    block = fit_block(result, to_settings(case["settings"]))
+    out = {"now": now_block(case), "fit": block, "caution": CAUTION}
+    if args.format == "json":
+        print(json.dumps(out))
+        return EXIT_OK
+    names = [("shunt (at current settings)", "shunt_fraction", None), ("non-recruitable shunt", "shunt_fixed_fraction", "shunt_fixed"),
+             ("recruitable lung", "recruitable_lung_fraction", "recruitable"), ("V/Q log SD", "vq_log_sd", "log_sd"),
+             ("alveolar dead space", "alveolar_dead_space_fraction", None), ("VCO2 [mL/min]", "vco2_ml_min", "vco2"),
+             ("VO2 [mL/min]", "vo2_ml_min", "vo2"), ("cardiac output [L/min]", "cardiac_output_l_min", None),
+             ("compliance [mL/cmH2O]", "compliance_ml_per_cmh2o", "c_max"),
+             ("resistance [cmH2O/L/s]", "resistance_cmh2o_l_s", "resistance"),
+             ("base excess [mmol/L]", "base_excess_mmol_l", "base_excess")]
+    print(f"Lung fit: {block['message']}")
+    for title, key, rkey in names:
+        band = ""
+        if rkey:
+            lo, hi = block["likely_range"][rkey]
+            band = f"likely range {lo:.2f} to {hi:.2f}"
+        print(f"  {title:<30} {block[key]:>9.2f}  {band}")
+    for m in block["identifiability"] + block["warnings"]:
+        print(f"  [i ] {m}")
+    print()
+    print(CAUTION)
+    return EXIT_OK
+
+
 def _not_yet(verb):
     def run(args) -> int:
         print(f"ventcast {verb}: not available yet ({NOT_YET[verb]} has not been built in this version).",
@@ -104,6 +199,17 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--out", help="folder to write the demo case files into")
     demo.add_argument("--format", choices=("table", "json"), default="table")
     demo.set_defaults(run=_cmd_demo)
+    for verb, run, help_ in (("predict", _cmd_predict, "fit the case, then forecast the trial settings"),
+                             ("fit", _cmd_fit, "fit the case and show the lung model with likely ranges")):
+        p = sub.add_parser(verb, help=help_)
+        p.add_argument("case", nargs="?", help="case file (.ventcast.json)")
+        p.add_argument("--demo", choices=DEMO_NAMES, help="use a built-in demo case instead of CASE")
+        p.add_argument("--format", choices=("table", "json"), default="table")
+        if verb == "predict":
+            p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                           help="change one setting for the trial (a case-file settings key)")
+            p.add_argument("--minutes", type=float, default=60.0, help="length of the course [min]")
+        p.set_defaults(run=run)
     for verb in NOT_YET:
         p = sub.add_parser(verb, help=f"{NOT_YET[verb]} (not available yet)")
         p.add_argument("rest", nargs=argparse.REMAINDER)
@@ -123,6 +229,9 @@ def main(argv=None) -> int:
     except CaseError as exc:
         print(f"ventcast: invalid input: {exc}", file=sys.stderr)
         return EXIT_INPUT
+    except ModelError as exc:
+        print(f"ventcast: the model could not fit or converge: {exc}", file=sys.stderr)
+        return EXIT_MODEL
     except ValueError as exc:
         print(f"ventcast: invalid input: {exc}", file=sys.stderr)
         return EXIT_INPUT

@@ -288,6 +288,10 @@ class _Problem:
                 self.keys.append((i, q, float(y), sd))
         self.y = np.array([k[2] for k in self.keys])
         self.sd = np.array([k[3] for k in self.keys])
+        self.sd_abs = np.array([SD[k[1]][0] for k in self.keys])
+        self.sd_rel = np.array([SD[k[1]][1] for k in self.keys])
+        inflate = self.sd / np.maximum(self.sd_abs + self.sd_rel * np.abs(self.y), 1e-12)  # PetCO2 down-weighting
+        self.sd_abs, self.sd_rel = self.sd_abs * inflate, self.sd_rel * inflate
         self.pm = np.array([_to_z(n, prior["mean"][n]) for n in self.free])
         self.ps = np.array([prior["sd"][n] for n in self.free])
 
@@ -322,7 +326,10 @@ class _Problem:
     def residuals(self, Z):
         """Stacked standardised residuals (data then prior) for rows of Z: (K, n_keys + p)."""
         out = self.model_outputs(Z)
-        r = (out - self.y) / self.sd
+        # Measurement SD at the model's value (the generative error model), not at the observed one.
+        sd = np.where(np.isfinite(out), self.sd_abs + self.sd_rel * np.abs(np.where(np.isfinite(out), out, 0.0)),
+                      self.sd)
+        r = (out - self.y) / sd
         r = np.where(np.isfinite(r), r, 1e3)  # no steady state at these parameters: far from the data
         prior = (Z - self.pm) / self.ps
         return np.concatenate([r, prior], axis=1)

@@ -256,7 +256,8 @@ def breathe(settings: Settings, mechanics: Mechanics, pbw_kg=None, max_iter: int
         history = np.maximum(hist0, np.where(finite, pplat, 0.0))
         f_eff, f_ee_new = open_fraction(history, peep_tot, duty, b["mu_open"], b["sd_open"], b["mu_close"],
                                         b["sd_close"])
-        c_new = np.where(finite, vt / np.maximum(pplat - peep_tot, 1e-4), c_chord)
+        with np.errstate(invalid="ignore"):  # inf plateaus (volume beyond capacity) are masked by `finite`
+            c_new = np.where(finite, vt / np.maximum(pplat - peep_tot, 1e-4), c_chord)
         return f_ee_new, c_new, (aer, vt, trapped, peep_tot, pplat, f_eff, finite)
 
     # Newton on the two-variable fixed point x = cycle(x), Jacobian by forward differences

@@ -113,14 +113,41 @@ def bench_course(results: dict) -> None:
     results["course_draws_200_ms"] = median_ms(lambda: simulate(draws, now, trial), repeats=3, warmup=1)
 
 
-BENCHES = [bench_steady, bench_prediction, bench_course]
+def bench_fit(results: dict) -> None:
+    """Fit from one and from six observations; a likely range from 400 draws at a trial setting."""
+    from physiology.fitting.fit import Observation, Patient, build_model, fit, likely_range
+    from physiology.forecast import predict
+    from physiology.mechanics.ventilator import Settings
+
+    pt = Patient(sex="female", height_cm=165, weight_kg=78, hb_g_dl=10.5)
+    true = {"shunt_fixed": 0.18, "recruitable": 0.12, "log_sd": 1.0, "dead_space_fraction": 0.25, "vco2": 210.0,
+            "vo2": 260.0, "cardiac_output_ref": 5.5, "c_max": 35.0, "resistance": 14.0, "base_excess": -2.0}
+    model = build_model(pt, true, 10.0)
+
+    def obs(fio2, peep):
+        s = Settings(mode="volume", fio2=fio2, peep=peep, vt_ml=400, rr=20, ti=0.9, apparatus_dead_space_ml=50)
+        p = predict(model, s)
+        return Observation(settings=s, pao2=float(p.gas.pao2), paco2=float(p.gas.paco2), ph=float(p.gas.ph),
+                           petco2=float(p.gas.petco2), pplat=float(p.breathing.pplat), ppeak=float(p.breathing.ppeak))
+
+    one = [obs(0.6, 10)]
+    six = [obs(f, pe) for f, pe in ((0.4, 8), (0.5, 8), (0.6, 10), (0.7, 10), (0.6, 12), (0.5, 12))]
+    results["fit_one_ms"] = median_ms(lambda: fit(pt, one), repeats=5, warmup=1)
+    results["fit_six_ms"] = median_ms(lambda: fit(pt, six), repeats=5, warmup=1)
+    f = fit(pt, one)
+    trial = Settings(mode="volume", fio2=0.5, peep=14, vt_ml=400, rr=22, ti=0.9, apparatus_dead_space_ml=50)
+    results["range_draws_200_ms"] = median_ms(lambda: likely_range(f, trial), repeats=7, warmup=1)
+
+
+BENCHES = [bench_steady, bench_prediction, bench_course, bench_fit]
 
 
 def _available(bench) -> bool:
     try:
         bench_probe = {"bench_steady": "physiology.gasexchange.compartments",
                        "bench_prediction": "physiology.forecast",
-                       "bench_course": "physiology.dynamics.course"}[bench.__name__]
+                       "bench_course": "physiology.dynamics.course",
+                       "bench_fit": "physiology.fitting.fit"}[bench.__name__]
         __import__(bench_probe)
         return True
     except ImportError:

@@ -1,0 +1,285 @@
+"""Glue between case files and the engine: fit a case, forecast trial settings, check limits.
+
+Everything returned is plain data (dicts of floats, lists and strings) with units in the key names,
+ready for JSON, tables or the window.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from physiology.dynamics.course import simulate
+from physiology.fitting.fit import Observation, Patient, fit, likely_range, next_best_measurement
+from physiology.forecast import predict
+from physiology.indices import oxygenation_index
+from physiology.mechanics.motion import mean_airway_pressure, mechanical_power_simplified
+from physiology.mechanics.ventilator import Settings
+from physiology.protocols import LIMITS
+
+from . import CAUTION
+from .bedside import bedside_indices
+from .casefile import CaseError, check_settings
+
+SETTING_KEYS = ("mode", "fio2", "peep_cmh2o", "vt_ml", "inspiratory_pressure_cmh2o", "rr_per_min",
+                "inspiratory_time_s", "apparatus_dead_space_ml")
+
+
+class ModelError(RuntimeError):
+    """The model could not fit or converge (exit status 3)."""
+
+
+def to_settings(s: dict) -> Settings:
+    return Settings(mode=s["mode"], fio2=float(s["fio2"]), peep=float(s["peep_cmh2o"]),
+                    vt_ml=None if s.get("vt_ml") is None else float(s["vt_ml"]),
+                    inspiratory_pressure=None if s.get("inspiratory_pressure_cmh2o") is None
+                    else float(s["inspiratory_pressure_cmh2o"]),
+                    rr=float(s["rr_per_min"]), ti=float(s["inspiratory_time_s"]),
+                    apparatus_dead_space_ml=float(s.get("apparatus_dead_space_ml") or 0.0))
+
+
+def to_patient(case: dict) -> Patient:
+    p = case["patient"]
+    return Patient(sex=p["sex"], height_cm=float(p["height_cm"]), weight_kg=float(p["weight_kg"]),
+                   age_years=p.get("age_years"), temperature_c=float(p["temperature_c"]),
+                   hb_g_dl=float(p["hb_g_dl"]), barometric_mmhg=float(p["barometric_mmhg"]))
+
+
+def to_observations(case: dict):
+    out = []
+    for o in case["observations"]:
+        out.append(Observation(
+            settings=to_settings(o["settings"]), pao2=float(o["pao2_mmhg"]), paco2=float(o["paco2_mmhg"]),
+            ph=float(o["ph"]), sao2=o.get("sao2"), hco3=o.get("hco3_mmol_l"), petco2=o.get("petco2_mmhg"),
+            pplat=o.get("pplat_cmh2o"), ppeak=o.get("ppeak_cmh2o"), vte_ml=o.get("vte_ml"),
+            ve_l_min=o.get("ve_l_min"), vco2=o.get("vco2_ml_min"), cardiac_output=o.get("cardiac_output_l_min"),
+            taken_at=o.get("taken_at", "")))
+    return out
+
+
+def apply_sets(case: dict, sets) -> dict:
+    """Trial settings: the case settings with each ``KEY=VALUE`` applied and range-checked."""
+    trial = dict(case["settings"])
+    for item in sets or ():
+        if "=" not in item:
+            raise CaseError("--set", f"value {item!r} is not of the form KEY=VALUE")
+        key, value = item.split("=", 1)
+        key = key.strip()
+        if key not in SETTING_KEYS:
+            raise CaseError("--set", f"key {key!r} is not a setting; accepted keys: {', '.join(SETTING_KEYS)}")
+        if key == "mode":
+            if value not in ("volume", "pressure"):
+                raise CaseError("--set mode", f"value {value!r} is not accepted; expected 'volume' or 'pressure'")
+            trial[key] = value
+            continue
+        try:
+            v = float(value)
+        except ValueError:
+            raise CaseError(f"--set {key}", f"value {value!r} is not a number") from None
+        if not math.isfinite(v):
+            raise CaseError(f"--set {key}", f"value {value!r} must be a finite number")
+        trial[key] = v
+    from physiology.indices import predicted_body_weight
+    pbw = float(predicted_body_weight(case["patient"]["height_cm"], case["patient"]["sex"]))
+    return check_settings("trial settings", trial, pbw)
+
+
+def _f(x):
+    x = float(np.asarray(x))
+    return None if not math.isfinite(x) else x
+
+
+def fit_case(case: dict):
+    patient = to_patient(case)
+    observations = to_observations(case)
+    try:
+        result = fit(patient, observations)
+    except ValueError as exc:
+        raise CaseError("observations", str(exc)) from None
+    if not result.success:
+        raise ModelError(result.message)
+    return patient, observations, result
+
+
+def fit_block(result, current: Settings) -> dict:
+    now = predict(result.model, current)
+    if not now.success:
+        raise ModelError(f"the fitted model has no steady state at the current settings: {now.message}")
+    e = result.estimates
+    return {
+        "success": bool(result.success), "message": result.message,
+        "shunt_fraction": _f(now.shunt), "shunt_fixed_fraction": e["shunt_fixed"],
+        "recruitable_lung_fraction": e["recruitable"], "vq_log_sd": e["log_sd"],
+        "alveolar_dead_space_fraction": _f(now.alveolar_dead_space), "vco2_ml_min": e["vco2"], "vo2_ml_min": e["vo2"],
+        "cardiac_output_l_min": _f(now.cardiac_output), "alveolar_ventilation_l_min": _f(now.breathing.alveolar_ventilation),
+        "hb_g_dl": float(result.patient.hb_g_dl), "compliance_ml_per_cmh2o": e["c_max"],
+        "resistance_cmh2o_l_s": e["resistance"], "base_excess_mmol_l": e["base_excess"],
+        "identifiability": list(result.identifiability), "warnings": list(result.warnings),
+        "likely_range": {k: [float(a), float(b)] for k, (a, b) in result.ranges.items()},
+    }
+
+
+def steady_block(pred) -> dict:
+    g, b = pred.gas, pred.breathing
+    return {
+        "pao2_mmhg": _f(g.pao2), "paco2_mmhg": _f(g.paco2), "ph": _f(g.ph), "sao2": _f(g.sao2),
+        "petco2_mmhg": _f(g.petco2), "vd_vt": _f(g.vd_vt), "shunt_fraction": _f(pred.shunt),
+        "pplat_cmh2o": _f(b.pplat), "ppeak_cmh2o": _f(b.ppeak), "driving_pressure_cmh2o": _f(b.driving_pressure),
+        "mean_airway_pressure_cmh2o": _f(b.mean_paw), "intrinsic_peep_cmh2o": _f(b.intrinsic_peep),
+        "mechanical_power_j_min": _f(b.mechanical_power), "vt_ml": _f(b.vt_ml), "vt_ml_per_kg_pbw": _f(pred.vt_per_kg_pbw),
+        "pf_ratio_mmhg": _f(g.pf_ratio), "cardiac_output_l_min": _f(pred.cardiac_output),
+        "minute_ventilation_l_min": _f(b.minute_ventilation), "alveolar_ventilation_l_min": _f(b.alveolar_ventilation),
+    }
+
+
+def now_block(case: dict) -> dict:
+    out = bedside_indices(case)
+    obs = case["observations"][-1]
+    s = obs["settings"]
+    vt = obs.get("vte_ml") or s.get("vt_ml")
+    ppeak, pplat = obs.get("ppeak_cmh2o"), obs.get("pplat_cmh2o")
+    mp = oi = None
+    if ppeak is not None:
+        mpaw = float(mean_airway_pressure(s["mode"], ppeak, s["peep_cmh2o"], s["inspiratory_time_s"], s["rr_per_min"]))
+        oi = float(oxygenation_index(s["fio2"], mpaw, obs["pao2_mmhg"]))
+        if vt and pplat is not None:
+            mp = float(mechanical_power_simplified(s["rr_per_min"], vt / 1000.0, ppeak, pplat, s["peep_cmh2o"]))
+    out["mechanical_power_j_min"] = mp
+    out["oxygenation_index"] = oi
+    return out
+
+
+def limit_alerts(steady: dict, goals: dict | None = None) -> list:
+    """Lung-protective and goal checks of a forecast: [{code, severity, message}], with the source."""
+    goals = goals or {}
+    alerts = []
+
+    def add(code, severity, text, limit_key):
+        lim = LIMITS[limit_key]
+        alerts.append({"code": code, "severity": severity, "message": f"{text} ({lim.source})"})
+
+    pplat_max = goals.get("pplat_max_cmh2o", LIMITS["pplat"].high)
+    dp_max = goals.get("driving_pressure_max_cmh2o", LIMITS["driving_pressure"].high)
+    vt_lo, vt_hi = goals.get("vt_ml_per_kg_pbw", (LIMITS["vt_per_kg"].low, LIMITS["vt_per_kg"].high))
+    ph_lo, ph_hi = goals.get("ph", (LIMITS["ph"].low, LIMITS["ph"].high))
+    o2_lo, o2_hi = goals.get("pao2_mmhg", (LIMITS["pao2"].low, LIMITS["pao2"].high))
+    v = steady
+    if v["pplat_cmh2o"] is not None and v["pplat_cmh2o"] > pplat_max:
+        add("pplat_high", "danger", f"Pplat {v['pplat_cmh2o']:.0f} cmH2O is above {pplat_max:g} cmH2O", "pplat")
+    if v["driving_pressure_cmh2o"] is not None and v["driving_pressure_cmh2o"] > dp_max:
+        add("driving_pressure_high", "caution",
+            f"driving pressure {v['driving_pressure_cmh2o']:.0f} cmH2O is above {dp_max:g} cmH2O", "driving_pressure")
+    if v["vt_ml_per_kg_pbw"] is not None and not vt_lo <= v["vt_ml_per_kg_pbw"] <= vt_hi:
+        add("vt_outside", "caution",
+            f"VT {v['vt_ml_per_kg_pbw']:.1f} mL/kg PBW is outside {vt_lo:g}-{vt_hi:g} mL/kg PBW", "vt_per_kg")
+    if v["ph"] is not None and v["ph"] < ph_lo:
+        add("ph_low", "danger" if v["ph"] < 7.15 else "caution", f"pH {v['ph']:.3f} is below {ph_lo:.2f}", "ph")
+    if v["ph"] is not None and v["ph"] > ph_hi:
+        add("ph_high", "caution", f"pH {v['ph']:.3f} is above {ph_hi:.2f}", "ph")
+    if v["pao2_mmhg"] is not None and v["pao2_mmhg"] < o2_lo:
+        add("pao2_low", "danger", f"PaO2 {v['pao2_mmhg']:.0f} mmHg is below {o2_lo:g} mmHg", "pao2")
+    if v["pao2_mmhg"] is not None and v["pao2_mmhg"] > o2_hi:
+        add("pao2_above_goal", "info", f"PaO2 {v['pao2_mmhg']:.0f} mmHg is above the {o2_hi:g} mmHg goal: FiO2 "
+                                       f"could likely come down", "pao2")
+    if v["intrinsic_peep_cmh2o"] is not None and v["intrinsic_peep_cmh2o"] > LIMITS["intrinsic_peep"].high:
+        add("intrinsic_peep", "caution", f"intrinsic PEEP {v['intrinsic_peep_cmh2o']:.1f} cmH2O: gas trapping; a "
+                                         f"longer expiration would help", "intrinsic_peep")
+    if v["mechanical_power_j_min"] is not None and v["mechanical_power_j_min"] > LIMITS["mechanical_power"].high:
+        add("mechanical_power_high", "caution",
+            f"mechanical power {v['mechanical_power_j_min']:.0f} J/min is above {LIMITS['mechanical_power'].high:g} J/min",
+            "mechanical_power")
+    return alerts
+
+
+def forecast_case(case: dict, sets=(), minutes: float = 60.0, with_course: bool = True) -> dict:
+    """Fit the case and forecast its trial settings: the ``predict`` JSON of the README."""
+    trial_dict = apply_sets(case, sets)
+    trial = to_settings(trial_dict)
+    current = to_settings(case["settings"])
+    patient, observations, result = fit_case(case)
+    pred = predict(result.model, trial)
+    if not pred.success:
+        raise ModelError(f"no steady state at the trial settings: {pred.message}")
+    steady = steady_block(pred)
+    ranges, _table, ok_share = likely_range(result, trial)
+    out = {
+        "settings": trial_dict,
+        "now": now_block(case),
+        "fit": fit_block(result, current),
+        "steady": steady,
+        "likely_range": {"pao2_mmhg": list(ranges["pao2"]), "paco2_mmhg": list(ranges["paco2"]),
+                         "ph": list(ranges["ph"]), "sao2": list(ranges["sao2"])},
+    }
+    alerts = limit_alerts(steady, case.get("goals"))
+    if ok_share < 0.95:
+        alerts.append({"code": "range_incomplete", "severity": "caution",
+                       "message": f"{100 * (1 - ok_share):.0f} % of the parameter draws have no steady state at the trial "
+                                  f"settings; the likely range covers the rest"})
+    for w in result.warnings:
+        alerts.append({"code": "input_warning", "severity": "caution", "message": w})
+    for m in result.identifiability:
+        alerts.append({"code": "identifiability", "severity": "info", "message": m})
+    if with_course:
+        course = simulate(result.model, current, trial, minutes=minutes)
+        if not course.success:
+            raise ModelError(course.message)
+        band = _band(result, current, trial, minutes)
+        if band is None:
+            alerts.append({"code": "band_unavailable", "severity": "caution",
+                           "message": "the likely range of the course could not be computed; the steady-state range "
+                                      "above still holds"})
+            lo_o2 = hi_o2 = lo_co2 = hi_co2 = np.full(course.minutes.size, np.nan)
+        else:
+            lo_o2, hi_o2 = np.nanpercentile(band.pao2, [5, 95], axis=0)
+            lo_co2, hi_co2 = np.nanpercentile(band.paco2, [5, 95], axis=0)
+
+        def r(a, d=2):
+            return [None if not math.isfinite(float(x)) else round(float(x), d) for x in a]
+
+        out["course"] = {"minutes": r(course.minutes, 3), "pao2_mmhg": r(course.pao2), "paco2_mmhg": r(course.paco2),
+                         "ph": r(course.ph, 4), "sao2": r(course.sao2, 4), "pao2_low": r(lo_o2), "pao2_high": r(hi_o2),
+                         "paco2_low": r(lo_co2), "paco2_high": r(hi_co2)}
+        recheck = float(course.recheck_after_min)
+        out["recheck_after_min"] = None if not math.isfinite(recheck) else round(max(recheck, 0.0), 1)
+    try:
+        best = next_best_measurement(result, trial)
+    except (ValueError, np.linalg.LinAlgError):
+        best = []
+    out["next_best_measurement"] = [{"probe": c["probe"], "why": c["why"]} for c in best[:3]]
+    out["alerts"] = alerts
+    out["caution"] = CAUTION
+    return out
+
+
+def _band(result, current, trial, minutes, n=200):
+    """Courses of up to ``n`` parameter draws that have a steady state at both settings, or None."""
+    draws = result.draws
+    ok = np.asarray(predict(draws, _tile(current, draws)).success) & np.asarray(predict(draws, _tile(trial, draws)).success)
+    idx = np.flatnonzero(ok)[:n]
+    if idx.size < 50:
+        return None
+    try:
+        course = simulate(_take(draws, idx), current, trial, minutes=minutes)
+    except ArithmeticError:
+        return None
+    return course if np.any(course.success) else None
+
+
+def _tile(settings, draws):
+    from physiology.fitting.fit import _tile_settings
+    return _tile_settings(settings, np.atleast_1d(draws.shunt_fixed).size)
+
+
+def _take(draws, idx):
+    """The parameter draws at positions ``idx`` (a PatientModel of arrays)."""
+    from dataclasses import fields, replace
+    sub = {}
+    for f in fields(draws):
+        v = getattr(draws, f.name)
+        if f.name == "mechanics":
+            sub["mechanics"] = replace(v, **{g.name: (np.asarray(getattr(v, g.name))[idx] if np.ndim(getattr(v, g.name))
+                                                      else getattr(v, g.name)) for g in fields(v)})
+        else:
+            sub[f.name] = np.asarray(v)[idx] if np.ndim(v) else v
+    return replace(draws, **sub)

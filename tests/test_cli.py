@@ -1,0 +1,232 @@
+"""The ventcast command line: predict/fit JSON contract, and a catalogue of bad input."""
+
+import copy
+import hashlib
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from app import casefile
+from app.cli import main
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture(scope="module")
+def predict_json():
+    out = subprocess.run([sys.executable, "-m", "app.cli", "predict", "--demo", "ards-moderate", "--set",
+                          "peep_cmh2o=12", "--format", "json"], capture_output=True, text=True, cwd=ROOT)
+    assert out.returncode == 0, out.stderr
+    return json.loads(out.stdout)
+
+
+NUM = (int, float)
+SCHEMA = {
+    "settings": {"mode": str, "fio2": NUM, "peep_cmh2o": NUM, "rr_per_min": NUM, "inspiratory_time_s": NUM},
+    "now": {"pf_ratio_mmhg": NUM, "aa_gradient_mmhg": NUM, "alveolar_po2_mmhg": NUM, "pbw_kg": NUM,
+            "vt_ml_per_kg_pbw": NUM, "driving_pressure_cmh2o": NUM, "compliance_ml_per_cmh2o": NUM,
+            "mechanical_power_j_min": NUM, "ventilatory_ratio": NUM, "oxygenation_index": NUM,
+            "berlin_category": str, "base_excess_mmol_l": NUM},
+    "fit": {"success": bool, "message": str, "shunt_fraction": NUM, "vq_log_sd": NUM,
+            "alveolar_dead_space_fraction": NUM, "vco2_ml_min": NUM, "vo2_ml_min": NUM,
+            "cardiac_output_l_min": NUM, "alveolar_ventilation_l_min": NUM, "hb_g_dl": NUM, "identifiability": list},
+    "steady": {k: NUM for k in ("pao2_mmhg", "paco2_mmhg", "ph", "sao2", "petco2_mmhg", "vd_vt", "shunt_fraction",
+                                "pplat_cmh2o", "ppeak_cmh2o", "driving_pressure_cmh2o", "mean_airway_pressure_cmh2o",
+                                "intrinsic_peep_cmh2o", "mechanical_power_j_min", "vt_ml_per_kg_pbw", "pf_ratio_mmhg",
+                                "cardiac_output_l_min", "minute_ventilation_l_min", "alveolar_ventilation_l_min")},
+    "likely_range": {k: list for k in ("pao2_mmhg", "paco2_mmhg", "ph", "sao2")},
+    "course": {k: list for k in ("minutes", "pao2_mmhg", "paco2_mmhg", "ph", "sao2", "pao2_low", "pao2_high",
+                                 "paco2_low", "paco2_high")},
+}
+
+
+def test_predict_json_keys_and_types(predict_json):
+    for block, keys in SCHEMA.items():
+        assert block in predict_json, block
+        for key, typ in keys.items():
+            assert isinstance(predict_json[block][key], typ), (block, key)
+    assert isinstance(predict_json["recheck_after_min"], NUM)
+    assert isinstance(predict_json["alerts"], list)
+    for a in predict_json["alerts"]:
+        assert set(a) == {"code", "severity", "message"} and a["severity"] in ("info", "caution", "danger")
+    assert "not a medical device" in predict_json["caution"]
+    assert predict_json["settings"]["peep_cmh2o"] == 12
+    for lo, hi in predict_json["likely_range"].values():
+        assert lo <= hi
+    c = predict_json["course"]
+    assert c["minutes"][0] == 0 and c["minutes"][-1] == 60
+    assert max(b - a for a, b in zip(c["minutes"], c["minutes"][1:])) <= 0.25 + 1e-9
+    assert len(c["pao2_mmhg"]) == len(c["minutes"]) == len(c["pao2_low"])
+
+
+def test_predict_fit_block_lets_a_reviewer_recompute(predict_json):
+    """The fit block gives the lung at the current settings; the steady block the trial."""
+    f = predict_json["fit"]
+    assert 0 < f["shunt_fraction"] < 0.8 and f["cardiac_output_l_min"] > 1
+    s = predict_json["steady"]
+    lo, hi = predict_json["likely_range"]["pao2_mmhg"]
+    assert lo - 1 <= s["pao2_mmhg"] <= hi + 1
+
+
+def test_predict_table_ends_with_caution():
+    out = subprocess.run([sys.executable, "-m", "app.cli", "predict", "--demo", "postop-wean", "--set", "fio2=0.35"],
+                         capture_output=True, text=True, cwd=ROOT)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip().splitlines()[-1].startswith("Caution: model estimate")
+    assert "PaO2" in out.stdout and "likely range" in out.stdout
+
+
+def test_fit_command(capsys):
+    assert main(["fit", "--demo", "refractory-shunt", "--format", "json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    assert data["fit"]["shunt_fraction"] > 0.25  # a high-shunt case
+
+
+def _case_text():
+    return casefile.demo_text("ards-moderate")
+
+
+def _mutate(fn):
+    doc = json.loads(_case_text())
+    fn(doc)
+    return json.dumps(doc)
+
+
+def _set(path, value):
+    def fn(doc):
+        node = doc
+        for p in path[:-1]:
+            node = node[p]
+        node[path[-1]] = value
+    return fn
+
+
+def _delete(path):
+    def fn(doc):
+        node = doc
+        for p in path[:-1]:
+            node = node[p]
+        del node[path[-1]]
+    return fn
+
+
+BAD_CASES = [
+    ("fio2 1.5", _set(["settings", "fio2"], 1.5), "settings.fio2"),
+    ("fio2 as percent", _set(["settings", "fio2"], 60), "did you mean 0.60"),
+    ("fio2 below air", _set(["settings", "fio2"], 0.1), "settings.fio2"),
+    ("fio2 string", _set(["settings", "fio2"], "0.6"), "settings.fio2"),
+    ("peep negative", _set(["settings", "peep_cmh2o"], -2), "settings.peep_cmh2o"),
+    ("peep 35", _set(["settings", "peep_cmh2o"], 35), "settings.peep_cmh2o"),
+    ("rr zero", _set(["settings", "rr_per_min"], 0), "settings.rr_per_min"),
+    ("rr 80", _set(["settings", "rr_per_min"], 80), "settings.rr_per_min"),
+    ("ti too long", _set(["settings", "inspiratory_time_s"], 3.5), "no time to breathe out"),
+    ("vt tiny", _set(["settings", "vt_ml"], 60), "settings.vt_ml"),
+    ("vt huge", _set(["settings", "vt_ml"], 1500), "settings.vt_ml"),
+    ("vt missing in volume", _set(["settings", "vt_ml"], None), "required in volume mode"),
+    ("mode unknown", _set(["settings", "mode"], "jet"), "settings.mode"),
+    ("pressure mode without pinsp", _set(["settings", "mode"], "pressure"), "inspiratory_pressure_cmh2o"),
+    ("pinsp 60", lambda d: (d["settings"].update(mode="pressure", inspiratory_pressure_cmh2o=60)), "inspiratory_pressure"),
+    ("apparatus dead space negative", _set(["settings", "apparatus_dead_space_ml"], -5), "apparatus_dead_space_ml"),
+    ("unknown settings key", _set(["settings", "pmax"], 40), "unknown key 'pmax'"),
+    ("unknown top key", _set(["colour"], "red"), "unknown key 'colour'"),
+    ("unknown observation key", _set(["observations", 0, "lactate"], 2.0), "unknown key 'lactate'"),
+    ("missing patient", _delete(["patient"]), "patient"),
+    ("missing height", _delete(["patient", "height_cm"]), "patient.height_cm"),
+    ("height 80 cm", _set(["patient", "height_cm"], 80), "patient.height_cm"),
+    ("sex unknown", _set(["patient", "sex"], "x"), "patient.sex"),
+    ("hb 30", _set(["patient", "hb_g_dl"], 30), "patient.hb_g_dl"),
+    ("temperature 45", _set(["patient", "temperature_c"], 45), "patient.temperature_c"),
+    ("no observations", _set(["observations"], []), "observations"),
+    ("pao2 missing", _delete(["observations", 1, "pao2_mmhg"]), "observations[1].pao2_mmhg"),
+    ("pao2 negative", _set(["observations", 1, "pao2_mmhg"], -4), "observations[1].pao2_mmhg"),
+    ("pao2 nan-like string", _set(["observations", 1, "pao2_mmhg"], "NaN"), "observations[1].pao2_mmhg"),
+    ("pao2 impossible at fio2", _set(["observations", 1, "pao2_mmhg"], 600), "impossible at FiO2"),
+    ("paco2 300", _set(["observations", 1, "paco2_mmhg"], 300), "observations[1].paco2_mmhg"),
+    ("ph 9", _set(["observations", 1, "ph"], 9.0), "observations[1].ph"),
+    ("sao2 as percent", _set(["observations", 1, "sao2"], 92), "did you mean 0.92"),
+    ("pplat negative", _set(["observations", 1, "pplat_cmh2o"], -1), "observations[1].pplat_cmh2o"),
+    ("bad timestamp", _set(["observations", 1, "taken_at"], "yesterday"), "observations[1].taken_at"),
+    ("observation fio2 percent", _set(["observations", 0, "settings", "fio2"], 50), "observations[0].settings.fio2"),
+    ("wrong format", _set(["format"], "other.case"), "format"),
+    ("newer version", _set(["version"], 9), "newer Ventcast"),
+    ("version string", _set(["version"], "1"), "version"),
+    ("label too long", _set(["label"], "x" * 500), "label"),
+    ("hco3 inconsistent", _set(["observations", 1, "hco3_mmol_l"], 35), "Henderson-Hasselbalch"),
+]
+
+
+def _hash(path):
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+@pytest.mark.parametrize("name,mutation,needle", BAD_CASES, ids=[b[0] for b in BAD_CASES])
+def test_bad_case_exits_2_names_the_field_and_changes_nothing(tmp_path, capsys, name, mutation, needle):
+    path = tmp_path / "case.ventcast.json"
+    path.write_text(_mutate(mutation))
+    before = _hash(path)
+    code = main(["predict", str(path), "--format", "json"])
+    err = capsys.readouterr().err
+    assert code == 2, err
+    assert needle in err
+    assert "Traceback" not in err
+    assert _hash(path) == before
+
+
+RAW_BAD = [
+    ("truncated json", lambda: _case_text()[:200], "not valid JSON"),
+    ("not an object", lambda: "[1, 2, 3]", "JSON object"),
+    ("empty file", lambda: "", "not valid JSON"),
+    ("binary", lambda: "\x00\x01\x02", "not valid JSON"),
+]
+
+
+@pytest.mark.parametrize("name,text,needle", RAW_BAD, ids=[b[0] for b in RAW_BAD])
+def test_raw_bad_files(tmp_path, capsys, name, text, needle):
+    path = tmp_path / "case.ventcast.json"
+    path.write_text(text())
+    assert main(["predict", str(path)]) == 2
+    assert needle in capsys.readouterr().err
+
+
+def test_ten_megabyte_file_is_refused(tmp_path, capsys):
+    path = tmp_path / "big.ventcast.json"
+    path.write_text(" " * 10_000_000 + _case_text())
+    assert main(["predict", str(path)]) == 2
+    assert "at most" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("args,needle", [
+    (["--set", "peep=12"], "key 'peep' is not a setting"),
+    (["--set", "peep_cmh2o=twelve"], "not a number"),
+    (["--set", "peep_cmh2o"], "KEY=VALUE"),
+    (["--set", "fio2=70"], "did you mean 0.70"),
+    (["--set", "rr_per_min=nan"], "finite"),
+    (["--minutes", "0"], "--minutes"),
+])
+def test_bad_set_values(capsys, args, needle):
+    assert main(["predict", "--demo", "ards-moderate", *args]) == 2
+    assert needle in capsys.readouterr().err
+
+
+def test_missing_file_and_no_case(capsys, tmp_path):
+    assert main(["predict", str(tmp_path / "none.ventcast.json")]) == 2
+    assert "cannot read" in capsys.readouterr().err
+    assert main(["predict"]) == 2
+    assert "case file is required" in capsys.readouterr().err
+
+
+def test_atomic_save_leaves_no_partial_file(tmp_path):
+    case = casefile.load_demo("ards-moderate")
+    target = tmp_path / "saved.ventcast.json"
+    casefile.save(target, case)
+    assert casefile.load(target)["label"] == case["label"]
+    bad = copy.deepcopy(case)
+    bad["settings"]["fio2"] = 3.0
+    before = target.read_bytes()
+    with pytest.raises(casefile.CaseError):
+        casefile.save(target, bad)
+    assert target.read_bytes() == before
+    assert [p.name for p in tmp_path.iterdir()] == ["saved.ventcast.json"]

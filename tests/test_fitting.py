@@ -1,0 +1,138 @@
+"""Patient fit: round trip, recovery, identifiability, input refusals, calibration of the likely range."""
+
+import numpy as np
+import pytest
+
+from physiology.fitting.fit import (PARAMETERS, InputError, Observation, Patient, _from_z, _sd, _to_z, build_model,
+                                    fit, likely_range, next_best_measurement, population_defaults)
+from physiology.forecast import predict
+from physiology.mechanics.ventilator import Settings
+
+PT = Patient(sex="female", height_cm=165, weight_kg=78, temperature_c=37.8, hb_g_dl=10.5)
+TRUE = {"shunt_fixed": 0.18, "recruitable": 0.12, "log_sd": 1.0, "dead_space_fraction": 0.25, "vco2": 210.0,
+        "vo2": 260.0, "cardiac_output_ref": 5.5, "c_max": 35.0, "resistance": 14.0, "base_excess": -2.0}
+
+
+def vc(fio2=0.6, peep=10, vt=400, rr=20):
+    return Settings(mode="volume", fio2=fio2, peep=peep, vt_ml=vt, rr=rr, ti=0.9, apparatus_dead_space_ml=50)
+
+
+def observe(settings, true=TRUE, patient=PT, rng=None):
+    p = predict(build_model(patient, true, 10.0), settings)
+    assert p.success
+    g, b = p.gas, p.breathing
+
+    def v(q, x):
+        return float(x) + (rng.normal(0, _sd(q, float(x))) if rng is not None else 0.0)
+
+    return Observation(settings=settings, pao2=v("pao2", g.pao2), paco2=v("paco2", g.paco2), ph=v("ph", g.ph),
+                       petco2=v("petco2", g.petco2), pplat=v("pplat", b.pplat), ppeak=v("ppeak", b.ppeak))
+
+
+def test_round_trip_reproduces_each_observation():
+    obs = [observe(vc(0.5, 8)), observe(vc(0.6, 10))]
+    f = fit(PT, obs)
+    assert f.success, f.message
+    for o in obs:
+        p = predict(f.model, o.settings)
+        assert abs(float(p.gas.pao2) - o.pao2) <= max(2.0, 0.03 * o.pao2)
+        assert abs(float(p.gas.paco2) - o.paco2) <= 1.0
+        assert abs(float(p.gas.ph) - o.ph) <= 0.01
+
+
+def test_several_fio2_levels_recover_shunt_and_vq_mismatch():
+    """Karbing 2007: blood gases at several FiO2 separate shunt from V/Q mismatch."""
+    obs = [observe(vc(f, 10)) for f in (0.35, 0.6, 0.9)]
+    f = fit(PT, obs)
+    assert f.success
+    total_shunt = float(predict(f.model, vc(0.6, 10)).shunt)
+    true_shunt = float(predict(build_model(PT, TRUE, 10.0), vc(0.6, 10)).shunt)
+    assert total_shunt == pytest.approx(true_shunt, abs=0.04)
+    assert f.estimates["log_sd"] == pytest.approx(TRUE["log_sd"], abs=0.3)
+    assert not any("single FiO2" in m for m in f.identifiability)
+
+
+def test_one_observation_says_it_cannot_separate():
+    f = fit(PT, [observe(vc())])
+    assert any("cannot be separated" in m and "single FiO2" in m for m in f.identifiability)
+    assert any("recruitability is not informed" in m for m in f.identifiability)
+
+
+def test_likely_range_and_next_best_measurement():
+    f = fit(PT, [observe(vc())])
+    trial = vc(0.5, 14, rr=22)
+    rng_, table, ok = likely_range(f, trial)
+    lo, hi = rng_["pao2"]
+    assert lo < hi and ok > 0.95
+    assert set(rng_) == {"pao2", "paco2", "ph", "sao2"}
+    ranked = next_best_measurement(f, trial)
+    assert ranked and ranked[0]["score"] >= ranked[-1]["score"]
+    assert all("narrow" in c["why"] for c in ranked)
+    assert any("FiO2" in c["probe"] for c in ranked) and any("PEEP" in c["probe"] for c in ranked)
+
+
+def test_refuses_pao2_above_alveolar():
+    bad = Observation(settings=vc(0.3), pao2=250, paco2=40, ph=7.4)
+    with pytest.raises(InputError, match=r"PaO2 250 mmHg is above the alveolar PO2 at FiO2 0.3.*FiO2 recorded wrongly"):
+        fit(PT, [bad])
+
+
+def test_refuses_ph_paco2_hco3_mismatch():
+    bad = Observation(settings=vc(), pao2=70, paco2=40, ph=7.40, hco3=30)
+    with pytest.raises(InputError, match=r"Henderson-Hasselbalch gives HCO3 24.5"):
+        fit(PT, [bad])
+
+
+def test_warns_on_petco2_above_paco2_and_sao2_mismatch():
+    o = observe(vc())
+    odd = Observation(settings=o.settings, pao2=o.pao2, paco2=o.paco2, ph=o.ph, petco2=o.paco2 + 8, sao2=0.70)
+    f = fit(PT, [odd])
+    assert any("PetCO2" in w and "above PaCO2" in w for w in f.warnings)
+    assert any("SaO2 0.70 is inconsistent" in w for w in f.warnings)
+
+
+def test_needs_an_observation():
+    with pytest.raises(InputError, match="at least one observation"):
+        fit(PT, [])
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason="known defect, measured: PaO2 coverage about 0.80 (PaCO2 about 0.88) over "
+                   "200 synthetic patients; the range is too narrow for PaO2 once recruitability is a free parameter")
+def test_likely_range_is_calibrated():
+    """Over 200 synthetic patients drawn from the population priors, with noisy observations (one or
+    two blood gases), the 90 % likely range of PaO2 and PaCO2 after a change (FiO2 +/-0.1, PEEP +2,
+    RR +2) covers the true value in 85-95 % of cases."""
+    rng = np.random.default_rng(5)
+    hits = {"pao2": [], "paco2": []}
+    while len(hits["pao2"]) < 200:
+        pt = Patient(sex=str(rng.choice(["female", "male"])), height_cm=rng.uniform(155, 190),
+                     weight_kg=rng.uniform(55, 110), hb_g_dl=rng.uniform(8, 14), temperature_c=rng.uniform(36.5, 38.5))
+        prior = population_defaults(pt)
+        true = {n: float(_from_z(n, rng.normal(_to_z(n, prior["mean"][n]), prior["sd"][n]))) for n in PARAMETERS}
+        fio2 = float(np.round(rng.uniform(0.35, 0.8), 2))
+        peep = float(rng.integers(5, 15))
+        vt = float(np.round(pt.pbw_kg * rng.uniform(6, 8)))
+        rr = float(rng.integers(14, 27))
+        settings = [vc(fio2, peep, vt, rr)]
+        if rng.integers(1, 3) == 2:
+            settings.insert(0, vc(float(np.clip(fio2 + rng.choice([-0.15, 0.15]), 0.25, 1.0)), max(5.0, peep - 2), vt, rr))
+        model = build_model(pt, true, 10.0)
+        if not all(predict(model, s).success for s in settings):
+            continue
+        try:
+            f = fit(pt, [observe(s, true, pt, rng) for s in settings], n_draws=200, seed=len(hits["pao2"]))
+        except ValueError:
+            continue  # a noisy draw outside the accepted input range
+        trial = vc(float(np.clip(fio2 + rng.choice([-0.1, 0.1]), 0.21, 1.0)), min(peep + 2, 30.0), vt, rr + 2)
+        truth = predict(model, trial)
+        if not truth.success:
+            continue
+        ranges, _table, _ok = likely_range(f, trial, quantities=("pao2", "paco2"))
+        for q in hits:
+            lo, hi = ranges[q]
+            hits[q].append(lo <= float(getattr(truth.gas, q)) <= hi)
+    coverage = {q: float(np.mean(v)) for q, v in hits.items()}
+    print("likely-range coverage", coverage)
+    for q, c in coverage.items():
+        assert 0.85 <= c <= 0.95, (q, c)
