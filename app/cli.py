@@ -20,7 +20,6 @@ EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_MODEL = 0, 1, 2, 3
 
 #: Verbs whose capability has not landed yet: they refuse honestly.
 NOT_YET = {
-    "open": "the window",
     "plan": "the goal search",
     "wean": "step-down plans",
     "walkthrough": "walkthroughs",
@@ -183,6 +182,30 @@ def _cmd_fit(args) -> int:
     return EXIT_OK
 
 
+def _cmd_open(args) -> int:
+    size = _parse_size(args.size)
+    case = load(args.case) if args.case else load_demo(args.demo or "ards-moderate")
+    # Refuse a bad file or --set here, with the field named, before any window opens.
+    from .engine import apply_sets
+    apply_sets(case, args.set)
+    if args.screenshot and not args.screenshot.lower().endswith(".png"):
+        raise CaseError("--screenshot", f"value {args.screenshot!r} must name a .png file")
+    from .window import run
+    quit_ms = None if args.quit_after is None else int(args.quit_after * 1000)
+    return run(case_path=args.case, demo=args.demo, screenshot=args.screenshot, size=size, quit_after_ms=quit_ms,
+               sets=args.set, tab=args.tab)
+
+
+def _parse_size(text: str) -> tuple[int, int]:
+    try:
+        w, h = (int(x) for x in text.lower().split("x"))
+    except ValueError:
+        raise CaseError("--size", f"value {text!r} is not of the form WIDTHxHEIGHT, e.g. 1600x1000") from None
+    if not (400 <= w <= 8000 and 300 <= h <= 8000):
+        raise CaseError("--size", f"value {text!r} is outside the accepted range 400x300 to 8000x8000")
+    return w, h
+
+
 def _not_yet(verb):
     def run(args) -> int:
         print(f"ventcast {verb}: not available yet ({NOT_YET[verb]} has not been built in this version).",
@@ -210,6 +233,16 @@ def build_parser() -> argparse.ArgumentParser:
                            help="change one setting for the trial (a case-file settings key)")
             p.add_argument("--minutes", type=float, default=60.0, help="length of the course [min]")
         p.set_defaults(run=run)
+    op = sub.add_parser("open", help="open the window on a case (the ards-moderate demo when none is given)")
+    op.add_argument("case", nargs="?", help="case file (.ventcast.json)")
+    op.add_argument("--demo", choices=DEMO_NAMES, help="open a built-in demo case instead of CASE")
+    op.add_argument("--screenshot", metavar="FILE.png", help="render the window offscreen to a PNG and exit")
+    op.add_argument("--size", default="1600x1000", metavar="WxH", help="screenshot size in pixels")
+    op.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                    help="start Trial A from the case settings with this change (a case-file settings key)")
+    op.add_argument("--tab", choices=("limits", "lung-fit"), default="limits", help="right-hand panel shown")
+    op.add_argument("--quit-after", type=float, default=None, metavar="SECONDS", help=argparse.SUPPRESS)
+    op.set_defaults(run=_cmd_open)
     for verb in NOT_YET:
         p = sub.add_parser(verb, help=f"{NOT_YET[verb]} (not available yet)")
         p.add_argument("rest", nargs=argparse.REMAINDER)

@@ -150,54 +150,109 @@ def now_block(case: dict) -> dict:
     return out
 
 
-def limit_alerts(steady: dict, goals: dict | None = None) -> list:
-    """Lung-protective and goal checks of a forecast: [{code, severity, message}], with the source."""
-    goals = goals or {}
-    alerts = []
+def limit_checks(steady: dict, goals: dict | None = None, fio2: float | None = None) -> list:
+    """Every lung-protective and goal check of a forecast, met or not (the window's Limits panel).
 
-    def add(code, severity, text, limit_key):
-        lim = LIMITS[limit_key]
-        alerts.append({"code": code, "severity": severity, "message": f"{text} ({lim.source})"})
+    Each line: ``code`` (set when the check is not met), ``what``, ``value`` and ``limit`` (text with
+    units), ``source``, ``status`` ('ok', 'info', 'caution' or 'danger') and ``message``.
+    """
+    goals = goals or {}
+    v = steady
+    lines = []
+
+    def line(key, what, value, limit_text, bad, code, severity, message, value_text):
+        source = LIMITS[key].source if key in LIMITS else key
+        if value is None:
+            lines.append({"code": None, "what": what, "value": "-", "limit": limit_text, "source": source,
+                          "status": "info", "message": f"{what}: not available"})
+            return
+        lines.append({"code": code if bad else None, "what": what, "value": value_text, "limit": limit_text,
+                      "source": source, "status": severity if bad else "ok",
+                      "message": f"{message} ({source})" if bad else f"{what} {value_text} within {limit_text}"})
 
     pplat_max = goals.get("pplat_max_cmh2o", LIMITS["pplat"].high)
     dp_max = goals.get("driving_pressure_max_cmh2o", LIMITS["driving_pressure"].high)
     vt_lo, vt_hi = goals.get("vt_ml_per_kg_pbw", (LIMITS["vt_per_kg"].low, LIMITS["vt_per_kg"].high))
     ph_lo, ph_hi = goals.get("ph", (LIMITS["ph"].low, LIMITS["ph"].high))
     o2_lo, o2_hi = goals.get("pao2_mmhg", (LIMITS["pao2"].low, LIMITS["pao2"].high))
-    v = steady
-    if v["pplat_cmh2o"] is not None and v["pplat_cmh2o"] > pplat_max:
-        add("pplat_high", "danger", f"Pplat {v['pplat_cmh2o']:.0f} cmH2O is above {pplat_max:g} cmH2O", "pplat")
-    if v["driving_pressure_cmh2o"] is not None and v["driving_pressure_cmh2o"] > dp_max:
-        add("driving_pressure_high", "caution",
-            f"driving pressure {v['driving_pressure_cmh2o']:.0f} cmH2O is above {dp_max:g} cmH2O", "driving_pressure")
-    if v["vt_ml_per_kg_pbw"] is not None and not vt_lo <= v["vt_ml_per_kg_pbw"] <= vt_hi:
-        add("vt_outside", "caution",
-            f"VT {v['vt_ml_per_kg_pbw']:.1f} mL/kg PBW is outside {vt_lo:g}-{vt_hi:g} mL/kg PBW", "vt_per_kg")
-    if v["ph"] is not None and v["ph"] < ph_lo:
-        add("ph_low", "danger" if v["ph"] < 7.15 else "caution", f"pH {v['ph']:.3f} is below {ph_lo:.2f}", "ph")
-    if v["ph"] is not None and v["ph"] > ph_hi:
-        add("ph_high", "caution", f"pH {v['ph']:.3f} is above {ph_hi:.2f}", "ph")
-    if v["pao2_mmhg"] is not None and v["pao2_mmhg"] < o2_lo:
-        add("pao2_low", "danger", f"PaO2 {v['pao2_mmhg']:.0f} mmHg is below {o2_lo:g} mmHg", "pao2")
-    if v["pao2_mmhg"] is not None and v["pao2_mmhg"] > o2_hi:
-        add("pao2_above_goal", "info", f"PaO2 {v['pao2_mmhg']:.0f} mmHg is above the {o2_hi:g} mmHg goal: FiO2 "
-                                       f"could likely come down", "pao2")
-    if v["intrinsic_peep_cmh2o"] is not None and v["intrinsic_peep_cmh2o"] > LIMITS["intrinsic_peep"].high:
-        add("intrinsic_peep", "caution", f"intrinsic PEEP {v['intrinsic_peep_cmh2o']:.1f} cmH2O: gas trapping; a "
-                                         f"longer expiration would help", "intrinsic_peep")
-    if v["mechanical_power_j_min"] is not None and v["mechanical_power_j_min"] > LIMITS["mechanical_power"].high:
-        add("mechanical_power_high", "caution",
-            f"mechanical power {v['mechanical_power_j_min']:.0f} J/min is above {LIMITS['mechanical_power'].high:g} J/min",
-            "mechanical_power")
-    return alerts
+    sp_lo, sp_hi = goals.get("spo2", (LIMITS["spo2"].low, LIMITS["spo2"].high))
+    fio2_max = min(goals.get("fio2_max", 1.0), LIMITS["fio2"].high)
+    x = v["pplat_cmh2o"]
+    line("pplat", "Pplat", x, f"<= {pplat_max:g} cmH2O", x is not None and x > pplat_max, "pplat_high", "danger",
+         f"Pplat {x or 0:.0f} cmH2O is above {pplat_max:g} cmH2O", f"{x or 0:.1f} cmH2O")
+    x = v["driving_pressure_cmh2o"]
+    line("driving_pressure", "Driving pressure", x, f"<= {dp_max:g} cmH2O", x is not None and x > dp_max,
+         "driving_pressure_high", "caution", f"driving pressure {x or 0:.0f} cmH2O is above {dp_max:g} cmH2O",
+         f"{x or 0:.1f} cmH2O")
+    x = v["vt_ml_per_kg_pbw"]
+    line("vt_per_kg", "VT", x, f"{vt_lo:g}-{vt_hi:g} mL/kg PBW", x is not None and not vt_lo <= x <= vt_hi,
+         "vt_outside", "caution", f"VT {x or 0:.1f} mL/kg PBW is outside {vt_lo:g}-{vt_hi:g} mL/kg PBW",
+         f"{x or 0:.1f} mL/kg PBW")
+    x = v["ph"]
+    low, high = x is not None and x < ph_lo, x is not None and x > ph_hi
+    line("ph", "pH", x, f"{ph_lo:.2f}-{ph_hi:.2f}", low or high, "ph_low" if low else "ph_high",
+         "danger" if (low and x < 7.15) else "caution",
+         f"pH {x or 0:.3f} is below {ph_lo:.2f}" if low else f"pH {x or 0:.3f} is above {ph_hi:.2f}", f"{x or 0:.2f}")
+    x = v["pao2_mmhg"]
+    low, high = x is not None and x < o2_lo, x is not None and x > o2_hi
+    line("pao2", "PaO2", x, f"{o2_lo:g}-{o2_hi:g} mmHg", low or high, "pao2_low" if low else "pao2_above_goal",
+         "danger" if low else "info",
+         f"PaO2 {x or 0:.0f} mmHg is below {o2_lo:g} mmHg" if low
+         else f"PaO2 {x or 0:.0f} mmHg is above the {o2_hi:g} mmHg goal: FiO2 could likely come down",
+         f"{x or 0:.0f} mmHg")
+    x = v["sao2"]
+    low = x is not None and x < sp_lo
+    line("spo2", "SaO2 (for the SpO2 goal)", x, f"{sp_lo:.2f}-{sp_hi:.2f}", low or (x is not None and x > sp_hi),
+         "sao2_low" if low else "sao2_above_goal", "caution" if low else "info",
+         f"SaO2 {x or 0:.2f} is below the {sp_lo:.2f} goal" if low else f"SaO2 {x or 0:.2f} is above the {sp_hi:.2f} goal",
+         f"{x or 0:.3f}")
+    if "paco2_mmhg" in goals:
+        c_lo, c_hi = goals["paco2_mmhg"]
+        x = v["paco2_mmhg"]
+        line("goal set for this case", "PaCO2", x, f"{c_lo:g}-{c_hi:g} mmHg", x is not None and not c_lo <= x <= c_hi,
+             "paco2_outside", "caution", f"PaCO2 {x or 0:.0f} mmHg is outside the {c_lo:g}-{c_hi:g} mmHg goal",
+             f"{x or 0:.1f} mmHg")
+    ipeep_max = goals.get("intrinsic_peep_max_cmh2o", LIMITS["intrinsic_peep"].high)
+    x = v["intrinsic_peep_cmh2o"]
+    line("intrinsic_peep", "Intrinsic PEEP", x, f"<= {ipeep_max:g} cmH2O", x is not None and x > ipeep_max,
+         "intrinsic_peep", "caution", f"intrinsic PEEP {x or 0:.1f} cmH2O: gas trapping; a longer expiration would help",
+         f"{x or 0:.1f} cmH2O")
+    mp_max = goals.get("mechanical_power_max_j_min", LIMITS["mechanical_power"].high)
+    x = v["mechanical_power_j_min"]
+    line("mechanical_power", "Mechanical power", x, f"<= {mp_max:g} J/min", x is not None and x > mp_max,
+         "mechanical_power_high", "caution", f"mechanical power {x or 0:.0f} J/min is above {mp_max:g} J/min",
+         f"{x or 0:.1f} J/min")
+    if fio2 is not None:
+        line("fio2", "FiO2", fio2, f"<= {fio2_max:.2f}", fio2 > fio2_max, "fio2_high", "caution",
+             f"FiO2 {fio2:.2f} is above {fio2_max:.2f}", f"{fio2:.2f}")
+    return lines
+
+
+def limit_alerts(steady: dict, goals: dict | None = None) -> list:
+    """Lung-protective and goal checks of a forecast that are not met: [{code, severity, message}], with the source.
+
+    The SaO2 goal line is left to the window (PaO2 carries the oxygenation goal here).
+    """
+    return [{"code": c["code"], "severity": c["status"], "message": c["message"]}
+            for c in limit_checks(steady, goals) if c["code"] and not c["code"].startswith("sao2")]
 
 
 def forecast_case(case: dict, sets=(), minutes: float = 60.0, with_course: bool = True) -> dict:
     """Fit the case and forecast its trial settings: the ``predict`` JSON of the README."""
     trial_dict = apply_sets(case, sets)
+    _patient, _observations, result = fit_case(case)
+    return forecast_fitted(case, result, trial_dict, minutes=minutes, with_course=with_course)
+
+
+def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0, with_course: bool = True,
+                    with_band: bool = True, with_next: bool = True) -> dict:
+    """Forecast checked trial settings (case-file keys) for an already fitted case (same blocks as ``predict``).
+
+    ``with_band`` adds the likely range of the course (200 parameter draws, the slowest part);
+    ``with_next`` the next best measurement. The window asks for them in a second, later pass.
+    """
     trial = to_settings(trial_dict)
     current = to_settings(case["settings"])
-    patient, observations, result = fit_case(case)
     pred = predict(result.model, trial)
     if not pred.success:
         raise ModelError(f"no steady state at the trial settings: {pred.message}")
@@ -224,11 +279,12 @@ def forecast_case(case: dict, sets=(), minutes: float = 60.0, with_course: bool 
         course = simulate(result.model, current, trial, minutes=minutes)
         if not course.success:
             raise ModelError(course.message)
-        band = _band(result, current, trial, minutes)
+        band = _band(result, current, trial, minutes) if with_band else None
         if band is None:
-            alerts.append({"code": "band_unavailable", "severity": "caution",
-                           "message": "the likely range of the course could not be computed; the steady-state range "
-                                      "above still holds"})
+            if with_band:
+                alerts.append({"code": "band_unavailable", "severity": "caution",
+                               "message": "the likely range of the course could not be computed; the steady-state "
+                                          "range above still holds"})
             lo_o2 = hi_o2 = lo_co2 = hi_co2 = np.full(course.minutes.size, np.nan)
         else:
             lo_o2, hi_o2 = np.nanpercentile(band.pao2, [5, 95], axis=0)
@@ -242,11 +298,14 @@ def forecast_case(case: dict, sets=(), minutes: float = 60.0, with_course: bool 
                          "paco2_low": r(lo_co2), "paco2_high": r(hi_co2)}
         recheck = float(course.recheck_after_min)
         out["recheck_after_min"] = None if not math.isfinite(recheck) else round(max(recheck, 0.0), 1)
-    try:
-        best = next_best_measurement(result, trial)
-    except (ValueError, np.linalg.LinAlgError):
-        best = []
-    out["next_best_measurement"] = [{"probe": c["probe"], "why": c["why"]} for c in best[:3]]
+    if with_next:
+        try:
+            best = next_best_measurement(result, trial)
+        except (ValueError, np.linalg.LinAlgError) as exc:
+            best = []
+            alerts.append({"code": "next_best_unavailable", "severity": "info",
+                           "message": f"the next best measurement could not be ranked: {exc}"})
+        out["next_best_measurement"] = [{"probe": c["probe"], "why": c["why"]} for c in best[:3]]
     out["alerts"] = alerts
     out["caution"] = CAUTION
     return out

@@ -1,0 +1,1286 @@
+"""The Ventcast window: Bedside, Trial settings, Outlook, Limits and Lung fit.
+
+Widgets write to plain data (the case dict and the trial settings dicts); every change is
+debounced, frozen into a request and computed on a worker (:mod:`app.worker`); the newest result
+wins and is drawn by updating plot items created once. Nothing here computes physiology.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import math
+import os
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6 import QtCore, QtGui, QtWidgets
+
+from physiology.fitting.fit import PARAMETERS
+from physiology.forecast import predict
+
+from . import CAUTION, __doc__ as _pkg_doc  # noqa: F401
+from .bedside import bedside_indices
+from .casefile import CaseError, check_settings, dumps, load, load_demo, loads, write_atomic
+from .engine import apply_sets, fit_case, forecast_fitted, limit_checks, now_block, steady_block, to_settings
+from .worker import EngineRunner
+
+APP_NAME = "Ventcast"
+ORG_NAME = "Ventcast"
+MMHG_PER_KPA = 7.50062
+DEBOUNCE_MS = 50
+AUTOSAVE_MS = 30_000
+TRIALS = ("A", "B", "C")
+
+#: Okabe & Ito 2008 colour-blind-safe palette; one colour per quantity in every chart.
+OKABE_ITO = {"black": "#000000", "orange": "#E69F00", "sky": "#56B4E9", "green": "#009E73",
+             "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "purple": "#CC79A7"}
+COLOUR = {"pao2": OKABE_ITO["blue"], "sao2": OKABE_ITO["blue"], "paco2": OKABE_ITO["vermillion"],
+          "ph": OKABE_ITO["green"], "pplat": OKABE_ITO["purple"], "dp": OKABE_ITO["orange"],
+          "vd_vt": OKABE_ITO["sky"], "ventilation": OKABE_ITO["sky"], "perfusion": OKABE_ITO["vermillion"]}
+#: Symbols for Limits lines, so that status never rests on colour alone.
+STATUS_SYMBOL = {"ok": "\u2713 ok", "info": "i note", "caution": "\u26a0 caution", "danger": "\u2716 danger"}
+
+#: The trial-setting controls: key, label, unit, minimum, maximum, step, decimals.
+CONTROLS = (
+    ("fio2", "FiO2", "", 0.21, 1.0, 0.05, 2),
+    ("peep_cmh2o", "PEEP", "cmH2O", 0.0, 30.0, 1.0, 0),
+    ("vt_ml", "VT", "mL", 100.0, 1200.0, 10.0, 0),
+    ("inspiratory_pressure_cmh2o", "Inspiratory pressure", "cmH2O", 1.0, 50.0, 1.0, 0),
+    ("rr_per_min", "RR", "/min", 4.0, 60.0, 1.0, 0),
+    ("inspiratory_time_s", "Ti", "s", 0.3, 3.0, 0.05, 2),
+)
+
+SHORTCUTS = (
+    ("Ctrl+O", "open a case file"), ("Ctrl+S", "save the case (trials and goals included)"),
+    ("Ctrl+Shift+S", "save as"), ("Ctrl+Z / Ctrl+Shift+Z", "undo / redo a trial change"),
+    ("Ctrl+1 / 2 / 3", "edit Trial A / B / C"), ("Ctrl+R", "reset the trial to the current settings"),
+    ("Ctrl+K", "switch mmHg / kPa"), ("Ctrl+Shift+O", "switch the oxygen chart PaO2 / SaO2"),
+    ("F1", "this list"), ("Ctrl+Q", "quit"),
+)
+
+SOURCES = (
+    "O2 dissociation: Severinghaus 1979 with Kelman 1966 corrections; CO2 content: Kelman 1967.",
+    "V/Q lung: shunt, log-normal V/Q distribution and dead space after West 1969.",
+    "Mechanics: equation of motion; mechanical power Gattinoni 2016 / Becher 2019; recruitment after "
+    "Crotti 2001 and Venegas 1998; venous return after Guyton.",
+    "Limits and tables: ARDS Network 2000; driving pressure Amato 2015; Berlin definition 2012.",
+    "Fit: maximum a posteriori with population priors; likely ranges from posterior draws (SMC sampler).",
+)
+
+
+def kpa_from_mmhg(x):
+    return x / MMHG_PER_KPA
+
+
+def data_dir() -> Path:
+    """Where recovery files live (``VENTCAST_DATA_DIR`` overrides, for tests)."""
+    env = os.environ.get("VENTCAST_DATA_DIR")
+    if env:
+        return Path(env)
+    loc = QtCore.QStandardPaths.writableLocation(QtCore.QStandardPaths.AppDataLocation)
+    return Path(loc or Path.home() / ".ventcast")
+
+
+def recovery_path() -> Path:
+    return data_dir() / "recovery.ventcast.json"
+
+
+@dataclass
+class TrialState:
+    """Plain-data state of the window: the case, the trials (A always set), the active trial."""
+
+    case: dict
+    trials: dict
+    active: str = "A"
+    path: str | None = None
+
+
+class TrialChange(QtGui.QUndoCommand):
+    """One trial-setting change (merged while the same control keeps moving)."""
+
+    def __init__(self, window: "MainWindow", trial: str, before: dict, after: dict, key: str):
+        super().__init__(f"Trial {trial}: {key}")
+        self.window, self.trial, self.before, self.after, self.key = window, trial, before, after, key
+
+    def id(self):
+        return 1
+
+    def mergeWith(self, other):
+        if other.trial != self.trial or other.key != self.key:
+            return False
+        self.after = other.after
+        return True
+
+    def redo(self):
+        self.window._apply_trial(self.trial, self.after)
+
+    def undo(self):
+        self.window._apply_trial(self.trial, self.before)
+
+
+def _axis(plot: pg.PlotItem, left: str, bottom: str = "minutes after the change [min]"):
+    plot.setLabel("left", left)
+    plot.setLabel("bottom", bottom)
+    for name in ("left", "bottom"):
+        plot.getAxis(name).enableAutoSIPrefix(False)
+    plot.showGrid(x=True, y=True, alpha=0.15)
+    plot.setMouseEnabled(x=False, y=False)
+    plot.hideButtons()
+
+
+class OutlookChart:
+    """One Outlook chart: current course (dashed), trial course (solid), likely-range band, re-check marker."""
+
+    def __init__(self, plot: pg.PlotItem, colour: str, min_span: float):
+        self.plot = plot
+        self.min_span = min_span  # smallest y span drawn, so solver-size wiggles never fill a chart
+        c = QtGui.QColor(colour)
+        self.now = plot.plot(pen=pg.mkPen(c, width=1, style=QtCore.Qt.DashLine), name="current settings")
+        self.trial = plot.plot(pen=pg.mkPen(c, width=1), name="trial")
+        band_colour = QtGui.QColor(c)
+        band_colour.setAlpha(50)
+        # FillBetweenItem follows PlotCurveItems (a PlotDataItem outside a view never builds its path).
+        self.low = pg.PlotCurveItem(pen=pg.mkPen(None))
+        self.high = pg.PlotCurveItem(pen=pg.mkPen(None))
+        self.band = pg.FillBetweenItem(self.low, self.high, brush=pg.mkBrush(band_colour))
+        plot.addItem(self.band)
+        self.recheck = pg.InfiniteLine(angle=90, movable=False, pen=pg.mkPen("#555555", width=1,
+                                                                           style=QtCore.Qt.DotLine),
+                                       label="re-check", labelOpts={"position": 0.92, "color": "#333333"})
+        plot.addItem(self.recheck)
+        self.recheck.hide()
+        self.hover = pg.TextItem(color="#222222", anchor=(0, 1))
+        plot.addItem(self.hover, ignoreBounds=True)
+        self.hover.hide()
+        self.x = np.array([])
+        self.y = np.array([])
+        plot.scene().sigMouseMoved.connect(self._moved)
+
+    def set(self, minutes, trial, now=None, low=None, high=None, recheck=None):
+        self.x = np.asarray(minutes, dtype=float)
+        self.y = np.asarray(trial, dtype=float)
+        self.trial.setData(self.x, self.y)
+        if now is not None:
+            self.now.setData(self.x, np.asarray(now, dtype=float))
+        if low is not None and high is not None and np.all(np.isfinite(low)) and np.all(np.isfinite(high)):
+            self.low.setData(self.x, np.asarray(low, dtype=float))
+            self.high.setData(self.x, np.asarray(high, dtype=float))
+            self.band.show()
+        else:
+            self.band.hide()
+        if recheck is not None and math.isfinite(recheck):
+            self.recheck.setValue(recheck)
+            self.recheck.show()
+        else:
+            self.recheck.hide()
+        if self.x.size:
+            self.plot.setXRange(0, float(self.x[-1]), padding=0.01)
+        ys = [self.y, np.asarray(now, dtype=float) if now is not None else self.y]
+        if low is not None and high is not None:
+            ys += [np.asarray(low, dtype=float), np.asarray(high, dtype=float)]
+        finite = np.concatenate([a[np.isfinite(a)] for a in ys]) if ys else np.array([])
+        if finite.size:
+            lo, hi = float(finite.min()), float(finite.max())
+            if hi - lo < self.min_span:
+                mid = 0.5 * (hi + lo)
+                lo, hi = mid - 0.5 * self.min_span, mid + 0.5 * self.min_span
+            pad = 0.08 * (hi - lo)
+            self.plot.setYRange(lo - pad, hi + pad, padding=0)
+
+    def _moved(self, pos):
+        vb = self.plot.getViewBox()
+        if self.x.size == 0 or not self.plot.sceneBoundingRect().contains(pos):
+            self.hover.hide()
+            return
+        p = vb.mapSceneToView(pos)
+        i = int(np.clip(np.searchsorted(self.x, p.x()), 0, self.x.size - 1))
+        self.hover.setText(f"{self.x[i]:.1f} min: {self.y[i]:.3g}")
+        self.hover.setPos(self.x[i], self.y[i])
+        self.hover.show()
+
+
+class MainWindow(QtWidgets.QMainWindow):
+    """The window. ``synchronous=True`` computes on the calling thread (tests, screenshots)."""
+
+    steady_shown = QtCore.Signal(object)     # stage 1: steady states and Limits on screen
+    forecast_shown = QtCore.Signal(object)   # stage 2: the course drawn
+    band_shown = QtCore.Signal(object)
+    fit_shown = QtCore.Signal(object)
+    failure_shown = QtCore.Signal(str)
+
+    def __init__(self, case: dict, path: str | None = None, synchronous: bool = False, trials: dict | None = None,
+                 parent=None):
+        super().__init__(parent)
+        self.setWindowTitle(APP_NAME)
+        self.settings_store = QtCore.QSettings(ORG_NAME, APP_NAME)
+        self.units = self.settings_store.value("units", "mmHg")
+        self.oxygen_view = self.settings_store.value("oxygen_view", "pao2")
+        self.runner = EngineRunner(self, synchronous=synchronous)
+        self.runner.finished.connect(self._on_result)
+        self.runner.failed.connect(self._on_failure)
+        self.runner.busy_changed.connect(self._on_busy)
+        self.undo_stack = QtGui.QUndoStack(self)
+        self.undo_stack.cleanChanged.connect(self._on_clean_changed)
+        self.fit_result = None
+        self.last_steady = None
+        self.last_forecast = None
+        self.last_band = None
+        self.now_prediction = None
+        self._loading = False
+        self.state = TrialState(case=case, trials={"A": dict(case["settings"]), "B": None, "C": None}, path=path)
+        self.debounce = QtCore.QTimer(self)
+        self.debounce.setSingleShot(True)
+        self.debounce.setInterval(DEBOUNCE_MS)
+        self.debounce.timeout.connect(self._request_forecast)
+        self.autosave = QtCore.QTimer(self)
+        self.autosave.setInterval(int(os.environ.get("VENTCAST_AUTOSAVE_MS", AUTOSAVE_MS)))
+        self.autosave.timeout.connect(self.write_recovery)
+        self._build()
+        self._build_menus()
+        self.resize(1500, 940)
+        self.load_case(case, path, trials=trials)
+        self.autosave.start()
+
+    # --- layout -------------------------------------------------------------------------------------
+    def _build(self):
+        pg.setConfigOptions(antialias=False, background="#fafafa", foreground="#222222")
+        central = QtWidgets.QWidget()
+        outer = QtWidgets.QVBoxLayout(central)
+        outer.setContentsMargins(6, 6, 6, 2)
+        split = QtWidgets.QSplitter(QtCore.Qt.Horizontal)
+        split.addWidget(self._build_bedside())
+        middle = QtWidgets.QWidget()
+        mid = QtWidgets.QVBoxLayout(middle)
+        mid.setContentsMargins(0, 0, 0, 0)
+        mid.addWidget(self._build_trial())
+        mid.addWidget(self._build_outlook(), 1)
+        split.addWidget(middle)
+        split.addWidget(self._build_right())
+        split.setStretchFactor(0, 0)
+        split.setStretchFactor(1, 3)
+        split.setStretchFactor(2, 1)
+        split.setSizes([280, 900, 420])
+        outer.addWidget(split, 1)
+        self.caution_label = QtWidgets.QLabel(CAUTION)
+        self.caution_label.setWordWrap(True)
+        self.caution_label.setObjectName("caution")
+        self.caution_label.setStyleSheet("QLabel#caution { background: #fff4dc; border: 1px solid #b07d00; "
+                                         "padding: 4px; font-weight: bold; color: #3a2a00; }")
+        outer.addWidget(self.caution_label)
+        self.setCentralWidget(central)
+        self.status = QtWidgets.QLabel("")
+        self.progress = QtWidgets.QProgressBar()
+        self.progress.setRange(0, 0)
+        self.progress.setMaximumWidth(160)
+        self.progress.hide()
+        self.cancel_button = QtWidgets.QPushButton("Cancel")
+        self.cancel_button.hide()
+        self.cancel_button.clicked.connect(self.cancel_fit)
+        self.statusBar().addWidget(self.status, 1)
+        self.statusBar().addPermanentWidget(self.progress)
+        self.statusBar().addPermanentWidget(self.cancel_button)
+
+    def _build_bedside(self):
+        box = QtWidgets.QGroupBox("Bedside")
+        lay = QtWidgets.QVBoxLayout(box)
+        self.case_label = QtWidgets.QLabel("")
+        self.case_label.setWordWrap(True)
+        lay.addWidget(self.case_label)
+        form = QtWidgets.QFormLayout()
+        self.bedside_values = {}
+        for key, label in (("pao2", "PaO2"), ("paco2", "PaCO2"), ("ph", "pH"), ("sao2", "SaO2"),
+                           ("settings", "Settings"), ("pf_ratio_mmhg", "P/F ratio"),
+                           ("aa_gradient_mmhg", "A\u2013a gradient"), ("vd_vt", "VD/VT (model)"),
+                           ("driving_pressure_cmh2o", "Driving pressure"), ("compliance_ml_per_cmh2o", "Crs"),
+                           ("pbw_kg", "PBW"), ("vt_ml_per_kg_pbw", "VT"), ("mechanical_power_j_min", "Mechanical power"),
+                           ("ventilatory_ratio", "Ventilatory ratio"), ("oxygenation_index", "Oxygenation index"),
+                           ("berlin_category", "Berlin category"), ("base_excess_mmol_l", "Base excess")):
+            w = QtWidgets.QLabel("-")
+            w.setTextInteractionFlags(QtCore.Qt.TextSelectableByMouse)
+            w.setWordWrap(True)
+            self.bedside_values[key] = w
+            form.addRow(label, w)
+        lay.addLayout(form)
+        lay.addWidget(QtWidgets.QLabel("Past observations"))
+        self.history = QtWidgets.QTableWidget(0, 5)
+        self.history.setHorizontalHeaderLabels(["taken", "FiO2", "PEEP", "PaO2", "PaCO2"])
+        self.history.verticalHeader().hide()
+        self.history.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
+        self.history.horizontalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeToContents)
+        lay.addWidget(self.history, 1)
+        box.setMinimumWidth(270)
+        return box
+
+    def _build_trial(self):
+        box = QtWidgets.QGroupBox("Trial settings")
+        lay = QtWidgets.QGridLayout(box)
+        self.trial_tabs = QtWidgets.QTabBar()
+        for t in TRIALS:
+            self.trial_tabs.addTab(f"Trial {t}")
+        self.trial_tabs.currentChanged.connect(self._on_trial_tab)
+        lay.addWidget(self.trial_tabs, 0, 0, 1, 3)
+        self.mode = QtWidgets.QComboBox()
+        self.mode.addItems(["volume control", "pressure control"])
+        self.mode.currentIndexChanged.connect(lambda _i: self._control_changed("mode"))
+        lay.addWidget(QtWidgets.QLabel("Mode"), 1, 0)
+        lay.addWidget(self.mode, 1, 1)
+        self.reset_button = QtWidgets.QPushButton("Reset to current")
+        self.reset_button.clicked.connect(self.reset_trial)
+        lay.addWidget(self.reset_button, 1, 2)
+        self.spins, self.sliders, self.rows = {}, {}, {}
+        for row, (key, label, unit, lo, hi, step, dec) in enumerate(CONTROLS, start=2):
+            spin = QtWidgets.QDoubleSpinBox()
+            spin.setRange(lo, hi)
+            spin.setSingleStep(step)
+            spin.setDecimals(dec)
+            spin.setSuffix(f" {unit}" if unit else "")
+            spin.setKeyboardTracking(False)
+            spin.setAccessibleName(label)
+            slider = QtWidgets.QSlider(QtCore.Qt.Horizontal)
+            slider.setRange(0, int(round((hi - lo) / step)))
+            slider.setPageStep(5)
+            slider.setMaximumWidth(150)
+            spin.valueChanged.connect(lambda _v, k=key: self._control_changed(k))
+            slider.valueChanged.connect(lambda i, k=key, lo=lo, step=step: self._slider_moved(k, lo + i * step))
+            name = QtWidgets.QLabel(label)
+            lay.addWidget(name, row, 0)
+            lay.addWidget(spin, row, 1)
+            lay.addWidget(slider, row, 2)
+            self.spins[key], self.sliders[key], self.rows[key] = spin, slider, (name, spin, slider)
+        self.vt_per_kg = QtWidgets.QLabel("")
+        lay.addWidget(self.vt_per_kg, 2 + len(CONTROLS), 1, 1, 2)
+        self.compare = QtWidgets.QTableWidget(0, 4)
+        self.compare.setHorizontalHeaderLabels(["now", "Trial A", "Trial B", "Trial C"])
+        self.compare.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
+        self.compare.horizontalHeader().setStretchLastSection(True)
+        self.compare.verticalHeader().setDefaultSectionSize(20)
+        self.compare.setMinimumHeight(236)
+        self.compare.setMinimumWidth(520)
+        lay.addWidget(self.compare, 0, 3, 3 + len(CONTROLS), 1)
+        lay.setColumnStretch(3, 1)
+        return box
+
+    def _build_outlook(self):
+        box = QtWidgets.QGroupBox("Outlook (next 60 min; dashed: current settings, solid: trial, band: likely range 90 %)")
+        lay = QtWidgets.QVBoxLayout(box)
+        self.graphics = pg.GraphicsLayoutWidget()
+        self.plots = {}
+        for i, key in enumerate(("oxygen", "paco2", "ph", "pressure")):
+            p = self.graphics.addPlot(row=i // 2, col=i % 2)
+            self.plots[key] = p
+        self.charts = {"oxygen": OutlookChart(self.plots["oxygen"], COLOUR["pao2"], 10.0),
+                       "paco2": OutlookChart(self.plots["paco2"], COLOUR["paco2"], 5.0),
+                       "ph": OutlookChart(self.plots["ph"], COLOUR["ph"], 0.05)}
+        _axis(self.plots["ph"], "pH")
+        pp = self.plots["pressure"]
+        _axis(pp, "pressure [cmH2O]")
+        pp.addLegend(offset=(-10, 10))
+        self.pressure_items = {
+            "pplat_now": pp.plot(pen=pg.mkPen(COLOUR["pplat"], width=1, style=QtCore.Qt.DashLine)),
+            "pplat": pp.plot(pen=pg.mkPen(COLOUR["pplat"], width=1), name="Pplat"),
+            "dp_now": pp.plot(pen=pg.mkPen(COLOUR["dp"], width=1, style=QtCore.Qt.DashLine)),
+            "dp": pp.plot(pen=pg.mkPen(COLOUR["dp"], width=1), name="driving pressure"),
+        }
+        self.pplat_limit = pg.InfiniteLine(angle=0, pos=30, movable=False,
+                                           pen=pg.mkPen("#555555", width=1, style=QtCore.Qt.DotLine),
+                                           label="Pplat limit", labelOpts={"position": 0.1})
+        pp.addItem(self.pplat_limit)
+        # VD/VT on its own right-hand axis of the pressure chart.
+        self.vdvt_view = pg.ViewBox()
+        pp.showAxis("right")
+        pp.scene().addItem(self.vdvt_view)
+        pp.getAxis("right").linkToView(self.vdvt_view)
+        pp.getAxis("right").setLabel("VD/VT [fraction]")
+        pp.getAxis("right").enableAutoSIPrefix(False)
+        self.vdvt_view.setXLink(pp)
+        self.vdvt_now = pg.PlotDataItem(pen=pg.mkPen(COLOUR["vd_vt"], width=1, style=QtCore.Qt.DashLine))
+        self.vdvt = pg.PlotDataItem(pen=pg.mkPen(COLOUR["vd_vt"], width=1))
+        self.vdvt_view.addItem(self.vdvt_now)
+        self.vdvt_view.addItem(self.vdvt)
+        pp.legend.addItem(self.vdvt, "VD/VT (right axis)")
+        pp.vb.sigResized.connect(lambda: self.vdvt_view.setGeometry(pp.vb.sceneBoundingRect()))
+        self._label_axes()
+        lay.addWidget(self.graphics)
+        return box
+
+    def _build_right(self):
+        tabs = QtWidgets.QTabWidget()
+        limits = QtWidgets.QWidget()
+        ll = QtWidgets.QVBoxLayout(limits)
+        self.limits_title = QtWidgets.QLabel("Limits of Trial A")
+        ll.addWidget(self.limits_title)
+        self.limits = QtWidgets.QTableWidget(0, 2)
+        self.limits.setHorizontalHeaderLabels(["status", "check: value, limit, why (source)"])
+        self.limits.verticalHeader().hide()
+        self.limits.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
+        self.limits.setWordWrap(True)
+        self.limits.horizontalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeToContents)
+        self.limits.horizontalHeader().setStretchLastSection(True)
+        ll.addWidget(self.limits, 1)
+        self.goals_button = QtWidgets.QPushButton("Edit goals and limits of this case...")
+        self.goals_button.clicked.connect(self.edit_goals)
+        ll.addWidget(self.goals_button)
+        self.recheck_label = QtWidgets.QLabel("")
+        self.recheck_label.setWordWrap(True)
+        ll.addWidget(self.recheck_label)
+        tabs.addTab(limits, "Limits")
+        fitw = QtWidgets.QWidget()
+        fl = QtWidgets.QVBoxLayout(fitw)
+        self.fit_message = QtWidgets.QLabel("fitting...")
+        self.fit_message.setWordWrap(True)
+        fl.addWidget(self.fit_message)
+        self.fit_table = QtWidgets.QTableWidget(0, 2)
+        self.fit_table.setHorizontalHeaderLabels(["parameter", "estimate (likely range 90 %)"])
+        self.fit_table.verticalHeader().hide()
+        self.fit_table.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
+        self.fit_table.horizontalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeToContents)
+        self.fit_table.horizontalHeader().setStretchLastSection(True)
+        self.fit_table.setMinimumHeight(250)
+        self.fit_table.verticalHeader().setDefaultSectionSize(22)
+        fl.addWidget(self.fit_table, 1)
+        self.ident_label = QtWidgets.QLabel("")
+        self.ident_label.setWordWrap(True)
+        fl.addWidget(self.ident_label)
+        self.next_label = QtWidgets.QLabel("")
+        self.next_label.setWordWrap(True)
+        fl.addWidget(self.next_label)
+        self.vq_widget = pg.PlotWidget()
+        vq = self.vq_widget.getPlotItem()
+        _axis(vq, "flow [L/min]", "V/Q of each lung unit [ratio, log scale]")
+        vq.setLogMode(x=True, y=False)
+        vq.addLegend(offset=(-10, 10))
+        self.vq_vent = vq.plot(pen=pg.mkPen(COLOUR["ventilation"], width=1), symbol="o", symbolSize=4,
+                               symbolBrush=COLOUR["ventilation"], name="ventilation")
+        self.vq_perf = vq.plot(pen=pg.mkPen(COLOUR["perfusion"], width=1), symbol="t", symbolSize=4,
+                               symbolBrush=COLOUR["perfusion"], name="perfusion")
+        vq.getAxis("bottom").setTicks([[(k, f"{10.0 ** k:g}") for k in (-2, -1, 0, 1, 2)], []])
+        self.vq_widget.setMinimumHeight(200)
+        fl.addWidget(self.vq_widget)
+        self.vq_text = QtWidgets.QLabel("")
+        self.vq_text.setWordWrap(True)
+        fl.addWidget(self.vq_text)
+        tabs.addTab(fitw, "Lung fit")
+        tabs.setMinimumWidth(380)
+        self.right_tabs = tabs
+        return tabs
+
+    def _build_menus(self):
+        bar = self.menuBar()
+        m = bar.addMenu("&File")
+        self.recent_menu = QtWidgets.QMenu("Open recent", self)
+        for text, seq, slot in (("&Open...", QtGui.QKeySequence.Open, self.open_dialog),
+                                ("&Save", QtGui.QKeySequence.Save, self.save),
+                                ("Save &as...", QtGui.QKeySequence("Ctrl+Shift+S"), self.save_as)):
+            a = m.addAction(text)
+            a.setShortcut(seq)
+            a.triggered.connect(slot)
+        m.addMenu(self.recent_menu)
+        demos = m.addMenu("Open demo case")
+        from .casefile import DEMO_NAMES
+        for name in DEMO_NAMES:
+            demos.addAction(name).triggered.connect(lambda _c=False, n=name: self.load_case(load_demo(n), None))
+        m.addSeparator()
+        q = m.addAction("&Quit")
+        q.setShortcut(QtGui.QKeySequence("Ctrl+Q"))
+        q.triggered.connect(self.close)
+        e = bar.addMenu("&Edit")
+        u = self.undo_stack.createUndoAction(self, "Undo")
+        u.setShortcut(QtGui.QKeySequence("Ctrl+Z"))
+        r = self.undo_stack.createRedoAction(self, "Redo")
+        r.setShortcut(QtGui.QKeySequence("Ctrl+Shift+Z"))
+        e.addAction(u)
+        e.addAction(r)
+        reset = e.addAction("Reset trial to current")
+        reset.setShortcut(QtGui.QKeySequence("Ctrl+R"))
+        reset.triggered.connect(self.reset_trial)
+        for i, t in enumerate(TRIALS):
+            a = e.addAction(f"Edit Trial {t}")
+            a.setShortcut(QtGui.QKeySequence(f"Ctrl+{i + 1}"))
+            a.triggered.connect(lambda _c=False, i=i: self.trial_tabs.setCurrentIndex(i))
+        v = bar.addMenu("&View")
+        self.kpa_action = v.addAction("Pressures of gases in kPa")
+        self.kpa_action.setCheckable(True)
+        self.kpa_action.setChecked(self.units == "kPa")
+        self.kpa_action.setShortcut(QtGui.QKeySequence("Ctrl+K"))
+        self.kpa_action.toggled.connect(lambda on: self.set_units("kPa" if on else "mmHg"))
+        self.sao2_action = v.addAction("Oxygen chart shows SaO2")
+        self.sao2_action.setCheckable(True)
+        self.sao2_action.setChecked(self.oxygen_view == "sao2")
+        self.sao2_action.setShortcut(QtGui.QKeySequence("Ctrl+Shift+O"))
+        self.sao2_action.toggled.connect(lambda on: self.set_oxygen_view("sao2" if on else "pao2"))
+        h = bar.addMenu("&Help")
+        keys = h.addAction("Keyboard shortcuts")
+        keys.setShortcut(QtGui.QKeySequence("F1"))
+        keys.triggered.connect(self.show_shortcuts)
+        h.addAction("About Ventcast").triggered.connect(self.show_about)
+        self._refresh_recent()
+
+    # --- case ---------------------------------------------------------------------------------------
+    def load_case(self, case: dict, path: str | None, trials: dict | None = None):
+        self.state = TrialState(case=case, trials=trials or {"A": dict(case["settings"]), "B": None, "C": None},
+                                path=path)
+        self.undo_stack.clear()
+        self.fit_result = None
+        self.last_forecast = None
+        self.last_band = None
+        self._fill_bedside()
+        self._loading = True
+        self.trial_tabs.setCurrentIndex(0)
+        self._loading = False
+        self._show_trial_controls()
+        self._update_title()
+        if path:
+            self._remember_recent(path)
+        self.status.setText("fitting the lung model to the observations...")
+        self._start_busy(cancellable=True)
+        case_copy = copy.deepcopy(case)
+        self.runner.submit("fit", lambda: self._fit_work(case_copy))
+
+    @staticmethod
+    def _fit_work(case):
+        _patient, _obs, result = fit_case(case)
+        now = predict(result.model, to_settings(case["settings"]))
+        return {"result": result, "now": now}
+
+    def _fill_bedside(self):
+        case = self.state.case
+        self.case_label.setText(f"<b>{_escape(case.get('label', ''))}</b>")
+        obs = case["observations"][-1]
+        s = obs["settings"]
+        idx = now_block(case)
+        u = self.units
+        self.bedside_values["pao2"].setText(self._gas(obs["pao2_mmhg"]))
+        self.bedside_values["paco2"].setText(self._gas(obs["paco2_mmhg"], 1))
+        self.bedside_values["ph"].setText(f"{obs['ph']:.2f}")
+        self.bedside_values["sao2"].setText("-" if obs.get("sao2") is None else f"{obs['sao2']:.2f}")
+        self.bedside_values["settings"].setText(_settings_text(s))
+        fmt = {"pf_ratio_mmhg": (0, "mmHg"), "aa_gradient_mmhg": (0, "mmHg"), "driving_pressure_cmh2o": (0, "cmH2O"),
+               "compliance_ml_per_cmh2o": (0, "mL/cmH2O"), "pbw_kg": (1, "kg"), "vt_ml_per_kg_pbw": (1, "mL/kg PBW"),
+               "mechanical_power_j_min": (1, "J/min"), "ventilatory_ratio": (2, ""), "oxygenation_index": (1, ""),
+               "base_excess_mmol_l": (1, "mmol/L")}
+        for key, (d, unit) in fmt.items():
+            v = idx.get(key)
+            if key in ("pf_ratio_mmhg", "aa_gradient_mmhg") and v is not None:
+                self.bedside_values[key].setText(self._gas(v, d))
+            else:
+                self.bedside_values[key].setText("-" if v is None else f"{v:.{d}f} {unit}".strip())
+        self.bedside_values["berlin_category"].setText(str(idx.get("berlin_category") or "-"))
+        self.bedside_values["vd_vt"].setText("after the fit")
+        rows = case["observations"]
+        self.history.setRowCount(len(rows))
+        for i, o in enumerate(reversed(rows)):
+            os_ = o["settings"]
+            for j, text in enumerate((o.get("taken_at", "")[5:16].replace("T", " "), f"{os_['fio2']:.2f}",
+                                      f"{os_['peep_cmh2o']:g}", self._gas(o["pao2_mmhg"]),
+                                      self._gas(o["paco2_mmhg"], 1))):
+                self.history.setItem(i, j, QtWidgets.QTableWidgetItem(text))
+        del u
+
+    def _gas(self, mmhg, digits=0):
+        if mmhg is None or not math.isfinite(mmhg):
+            return "-"
+        if self.units == "kPa":
+            return f"{kpa_from_mmhg(mmhg):.{max(digits, 1)}f} kPa"
+        return f"{mmhg:.{digits}f} mmHg"
+
+    # --- trial controls -----------------------------------------------------------------------------
+    @property
+    def trial(self) -> dict:
+        return self.state.trials[self.state.active]
+
+    def _on_trial_tab(self, index):
+        if self._loading:
+            return
+        t = TRIALS[index]
+        if self.state.trials[t] is None:
+            self.state.trials[t] = dict(self.state.trials["A"])
+        self.state.active = t
+        self._show_trial_controls()
+        self.debounce.start()
+
+    def _show_trial_controls(self):
+        s = self.trial
+        self._loading = True
+        try:
+            self.mode.setCurrentIndex(0 if s["mode"] == "volume" else 1)
+            for key, _label, _unit, lo, _hi, step, _dec in CONTROLS:
+                v = s.get(key)
+                spin, slider = self.spins[key], self.sliders[key]
+                active = v is not None
+                for w in self.rows[key]:
+                    w.setVisible(active or key in ("vt_ml", "inspiratory_pressure_cmh2o") and False)
+                if active:
+                    spin.setValue(float(v))
+                    slider.setValue(int(round((float(v) - lo) / step)))
+            pressure = s["mode"] == "pressure"
+            for w in self.rows["vt_ml"]:
+                w.setVisible(not pressure)
+            for w in self.rows["inspiratory_pressure_cmh2o"]:
+                w.setVisible(pressure)
+        finally:
+            self._loading = False
+        self.limits_title.setText(f"Limits of Trial {self.state.active}")
+        self._update_vt_per_kg()
+
+    def _slider_moved(self, key, value):
+        if self._loading:
+            return
+        self.spins[key].setValue(value)
+
+    def _control_changed(self, key):
+        if self._loading:
+            return
+        before = dict(self.trial)
+        after = dict(before)
+        if key == "mode":
+            mode = "volume" if self.mode.currentIndex() == 0 else "pressure"
+            after["mode"] = mode
+            if mode == "pressure" and after.get("inspiratory_pressure_cmh2o") is None:
+                after["inspiratory_pressure_cmh2o"] = self._pressure_for_volume(after)
+            if mode == "volume" and after.get("vt_ml") is None:
+                after["vt_ml"] = float(self.state.case["settings"].get("vt_ml") or 6.0 * self._pbw())
+        else:
+            after[key] = round(float(self.spins[key].value()), 2)
+        if after == before:
+            return
+        self.undo_stack.push(TrialChange(self, self.state.active, before, after, key))
+
+    def _pressure_for_volume(self, s):
+        """Inspiratory pressure that would deliver the trial VT with the fitted compliance [cmH2O]."""
+        c = 35.0
+        if self.fit_result is not None:
+            c = float(self.fit_result.estimates["c_max"])
+        vt = float(s.get("vt_ml") or 6.0 * self._pbw())
+        return float(np.clip(round(vt / max(c, 5.0)), 5, 40))
+
+    def _pbw(self):
+        from physiology.indices import predicted_body_weight
+        p = self.state.case["patient"]
+        return float(predicted_body_weight(p["height_cm"], p["sex"]))
+
+    def _apply_trial(self, trial: str, settings: dict):
+        """Set a trial's settings (from the undo stack) and ask for a new forecast."""
+        self.state.trials[trial] = dict(settings)
+        if trial != self.state.active:
+            self.trial_tabs.setCurrentIndex(TRIALS.index(trial))
+        self._show_trial_controls()
+        self.debounce.start()
+
+    def reset_trial(self):
+        before = dict(self.trial)
+        after = dict(self.state.case["settings"])
+        if before != after:
+            self.undo_stack.push(TrialChange(self, self.state.active, before, after, "reset"))
+
+    def set_trial_value(self, key: str, value):
+        """Programmatic control change (tests, walkthroughs): as if the user had typed it."""
+        if key == "mode":
+            self.mode.setCurrentIndex(0 if value == "volume" else 1)
+        else:
+            self.spins[key].setValue(float(value))
+
+    def _update_vt_per_kg(self):
+        s = self.trial
+        pbw = self._pbw()
+        if s["mode"] == "volume" and s.get("vt_ml"):
+            self.vt_per_kg.setText(f"VT {s['vt_ml'] / pbw:.1f} mL/kg PBW (PBW {pbw:.1f} kg)")
+        else:
+            self.vt_per_kg.setText(f"PBW {pbw:.1f} kg; VT follows from the inspiratory pressure")
+
+    # --- requests -----------------------------------------------------------------------------------
+    def _checked_trials(self):
+        pbw = self._pbw()
+        out = {}
+        for t in TRIALS:
+            s = self.state.trials[t]
+            if s is not None:
+                out[t] = check_settings(f"Trial {t}", dict(s), pbw)
+        return out
+
+    def _request_forecast(self):
+        """Stage 1 of a forecast: steady states of every trial and the Limits (fast); stages 2 (course and
+        likely range) and 3 (band of the course, next best measurement) follow as each result lands."""
+        if self.fit_result is None:
+            return
+        try:
+            trials = self._checked_trials()
+        except CaseError as exc:
+            self._on_failure(None, str(exc))
+            return
+        case, result, active = copy.deepcopy(self.state.case), self.fit_result, self.state.active
+        self.status.setText(f"forecasting Trial {active}...")
+        self.runner.cancel("course")
+        self.runner.cancel("band")
+        self.runner.submit("steady", lambda: self._steady_work(case, result, trials, active))
+
+    @staticmethod
+    def _steady_work(case, result, trials, active):
+        compare, reasons = {}, {}
+        for t, s in trials.items():
+            p = predict(result.model, to_settings(s))
+            compare[t] = steady_block(p) if bool(np.all(p.success)) else None
+            reasons[t] = p.message
+        if compare[active] is None:
+            raise ArithmeticError(f"Trial {active}: the model has no steady state at these settings ({reasons[active]})")
+        return {"active": active, "trial_settings": trials[active], "compare": compare, "steady": compare[active],
+                "limit_lines": limit_checks(compare[active], case.get("goals"), fio2=float(trials[active]["fio2"])),
+                "case": case}
+
+    def _request_course(self, steady):
+        case, result, trial = steady["case"], self.fit_result, steady["trial_settings"]
+
+        def work():
+            out = forecast_fitted(case, result, trial, with_band=False, with_next=False)
+            out.update(active=steady["active"], trial_settings=trial, compare=steady["compare"],
+                       limit_lines=steady["limit_lines"])
+            return out
+
+        self.runner.submit("course", work)
+
+    def _request_band(self, forecast):
+        case, result = copy.deepcopy(self.state.case), self.fit_result
+        trial = forecast["trial_settings"]
+        self.runner.submit("band", lambda: forecast_fitted(case, result, trial, with_band=True, with_next=True))
+
+    # --- results ------------------------------------------------------------------------------------
+    def _on_result(self, request, result):
+        if request.kind == "fit":
+            self._stop_busy()
+            self.fit_result = result["result"]
+            self.now_prediction = result["now"]
+            self._show_fit()
+            self.fit_shown.emit(self.fit_result)
+            self._request_forecast()
+        elif request.kind == "steady":
+            self.last_steady = result
+            self._show_steady(result)
+            self.status.setText(f"Trial {result['active']}: steady state shown; computing the course...")
+            self.steady_shown.emit(result)
+            self._request_course(result)
+        elif request.kind == "course":
+            self.last_forecast = result
+            self.last_band = None
+            self._show_forecast(result)
+            self.status.setText(f"Trial {result['active']}: course shown; computing its likely range...")
+            self.forecast_shown.emit(result)
+            self._request_band(result)
+        elif request.kind == "band":
+            self.last_band = result
+            self._show_band(result)
+            self.status.setText("forecast and likely range shown")
+            self.band_shown.emit(result)
+
+    def _on_failure(self, request, message):
+        if request is not None and request.kind == "fit":
+            self._stop_busy()
+            self.fit_message.setText(f"<b>The model could not be fitted:</b> {_escape(message)}")
+        self.status.setText(f"\u2716 {message}")
+        self.failure_shown.emit(message)
+
+    def _show_fit(self):
+        f = self.fit_result
+        names = {"shunt_fixed": ("shunt (not recruitable)", "", 2), "recruitable": ("recruitable lung", "", 2),
+                 "log_sd": ("V/Q mismatch (log SD)", "", 2), "dead_space_fraction": ("alveolar dead space", "", 2),
+                 "vco2": ("VCO2", "mL/min", 0), "vo2": ("VO2", "mL/min", 0),
+                 "cardiac_output_ref": ("cardiac output at mean Paw 10 cmH2O", "L/min", 1),
+                 "c_max": ("compliance of aerated lung", "mL/cmH2O", 0), "resistance": ("resistance", "cmH2O/L/s", 1),
+                 "base_excess": ("base excess", "mmol/L", 1)}
+        self.fit_table.setRowCount(len(PARAMETERS))
+        for i, n in enumerate(PARAMETERS):
+            label, unit, d = names[n]
+            lo, hi = f.ranges[n]
+            for j, text in enumerate((label, f"{f.estimates[n]:.{d}f} ({lo:.{d}f}\u2013{hi:.{d}f}) {unit}".strip())):
+                self.fit_table.setItem(i, j, QtWidgets.QTableWidgetItem(text))
+        symbol = "\u2713" if f.success else "\u2716"
+        self.fit_message.setText(f"{symbol} {_escape(f.message)}")
+        self.ident_label.setText("<b>What the data cannot tell apart:</b><br>" + "<br>".join(
+            "\u2022 " + _escape(m) for m in f.identifiability) if f.identifiability else "")
+        now = self.now_prediction
+        if now is not None and bool(np.all(now.success)):
+            g = now.gas
+            self.bedside_values["vd_vt"].setText(f"{float(g.vd_vt):.2f} (model, current settings)")
+            self._show_vq(now)
+
+    def _show_vq(self, pred):
+        g = pred.gas
+        vq = np.asarray(g.unit_vq, dtype=float).ravel()
+        q = np.asarray(g.unit_perfusion, dtype=float).ravel()
+        v = np.asarray(g.unit_ventilation, dtype=float).ravel()
+        keep = np.isfinite(vq) & (vq > 0)
+        order = np.argsort(vq[keep])
+        self.vq_vent.setData(vq[keep][order], v[keep][order])
+        self.vq_perf.setData(vq[keep][order], q[keep][order])
+        shunt = float(pred.shunt)
+        ads = float(pred.alveolar_dead_space)
+        co = float(pred.cardiac_output)
+        self.vq_text.setText(f"Not on the V/Q axis: shunt (V/Q 0) {shunt:.2f} of cardiac output ({shunt * co:.1f} L/min); "
+                             f"alveolar dead space (V/Q \u221e) {ads:.2f} of alveolar ventilation "
+                             f"(at the current settings).")
+
+    def _show_steady(self, out):
+        self._fill_compare(out["compare"])
+        self._fill_limits(out["limit_lines"])
+
+    def _show_forecast(self, out):
+        self._draw_course(out)
+        self._fill_compare(out["compare"], out["likely_range"], out["active"])
+        self._fill_limits(out["limit_lines"])
+        r = out.get("recheck_after_min")
+        unchanged = out["trial_settings"] == check_settings("settings", dict(self.state.case["settings"]), self._pbw())
+        self.recheck_label.setText(
+            "The trial equals the current settings: no change is expected." if unchanged else
+            "" if r is None else f"Re-check a blood gas after about {max(r, 1):.0f} min (90 % of the PaO2 and "
+                                 f"PaCO2 change).")
+
+    def _draw_course(self, out, band=None):
+        c = out["course"]
+        m = np.asarray(c["minutes"], dtype=float)
+
+        def arr(key):
+            return np.array([np.nan if x is None else x for x in c[key]], dtype=float)
+
+        now = self.now_prediction
+        g = now.gas
+        steady = out["steady"]
+        conv = kpa_from_mmhg if self.units == "kPa" else (lambda x: x)
+        lr = (band or {}).get("course") if band else None
+
+        def band_of(key):
+            if lr is None:
+                return None, None
+            return (np.array([np.nan if x is None else x for x in lr[f"{key}_low"]], dtype=float),
+                    np.array([np.nan if x is None else x for x in lr[f"{key}_high"]], dtype=float))
+
+        flat = np.ones_like(m)
+        recheck = out.get("recheck_after_min")
+        if self.oxygen_view == "sao2":
+            self.charts["oxygen"].set(m, arr("sao2"), flat * float(g.sao2), recheck=recheck)
+        else:
+            lo, hi = band_of("pao2")
+            self.charts["oxygen"].set(m, conv(arr("pao2_mmhg")), flat * conv(float(g.pao2)),
+                                      None if lo is None else conv(lo), None if hi is None else conv(hi), recheck)
+        lo, hi = band_of("paco2")
+        self.charts["paco2"].set(m, conv(arr("paco2_mmhg")), flat * conv(float(g.paco2)),
+                                 None if lo is None else conv(lo), None if hi is None else conv(hi), recheck)
+        self.charts["ph"].set(m, arr("ph"), flat * float(g.ph), recheck=recheck)
+        b = now.breathing
+        # Pressures follow a setting change at once (recruitment adds a small drift not drawn here).
+        self.pressure_items["pplat_now"].setData(m, flat * float(b.pplat))
+        self.pressure_items["pplat"].setData(m, flat * (steady["pplat_cmh2o"] or np.nan))
+        self.pressure_items["dp_now"].setData(m, flat * float(b.driving_pressure))
+        self.pressure_items["dp"].setData(m, flat * (steady["driving_pressure_cmh2o"] or np.nan))
+        self.pplat_limit.setValue((self.state.case.get("goals") or {}).get("pplat_max_cmh2o", 30))
+        pp = self.plots["pressure"]
+        pp.setXRange(0, float(m[-1]), padding=0.01)
+        ys = [float(b.pplat), float(b.driving_pressure), steady["pplat_cmh2o"] or 0, steady["driving_pressure_cmh2o"] or 0, 30]
+        pp.setYRange(0, max(ys) * 1.15, padding=0)
+        vd = arr("vd_vt") if "vd_vt" in c else flat * (steady["vd_vt"] or np.nan)
+        self.vdvt.setData(m, vd)
+        self.vdvt_now.setData(m, flat * float(g.vd_vt))
+        allv = np.concatenate([vd[np.isfinite(vd)], [float(g.vd_vt)]])
+        self.vdvt_view.setYRange(max(0.0, allv.min() - 0.1), min(1.0, allv.max() + 0.1), padding=0)
+
+    def _show_band(self, out):
+        if self.last_forecast is None:
+            return
+        self._draw_course(self.last_forecast, band=out)
+        nb = out.get("next_best_measurement") or []
+        self.next_label.setText("<b>Next best measurement:</b><br>" + "<br>".join(
+            f"{i + 1}. {_escape(c['probe'])}: {_escape(c['why'])}" for i, c in enumerate(nb)) if nb else
+            "<b>Next best measurement:</b> none could be ranked")
+        self._fill_compare(self.last_forecast["compare"], out["likely_range"], self.last_forecast["active"])
+        for line in out.get("alerts", []):
+            if line["code"] in ("band_unavailable", "range_incomplete"):
+                self.status.setText(f"\u26a0 {line['message']}")
+
+    COMPARE_ROWS = (("PaO2", "pao2_mmhg", "gas", 0), ("PaCO2", "paco2_mmhg", "gas", 1), ("pH", "ph", "", 2),
+                    ("SaO2", "sao2", "", 3), ("VD/VT", "vd_vt", "", 2), ("Pplat", "pplat_cmh2o", "cmH2O", 1),
+                    ("Driving pressure", "driving_pressure_cmh2o", "cmH2O", 1),
+                    ("Mechanical power", "mechanical_power_j_min", "J/min", 1),
+                    ("VT", "vt_ml_per_kg_pbw", "mL/kg PBW", 1), ("Cardiac output", "cardiac_output_l_min", "L/min", 1))
+    RANGE_KEYS = {"pao2_mmhg", "paco2_mmhg", "ph", "sao2"}
+
+    def _compare_value(self, v, unit, digits):
+        if v is None or not math.isfinite(float(v)):
+            return "-"
+        if unit == "gas" and self.units == "kPa":
+            return f"{kpa_from_mmhg(v):.{max(digits, 1)}f}"
+        return f"{v:.{digits}f}"
+
+    def _fill_compare(self, compare, ranges=None, ranges_trial=None):
+        now = steady_block(self.now_prediction) if self.now_prediction is not None else None
+        gas_unit = "kPa" if self.units == "kPa" else "mmHg"
+        self.compare.setRowCount(len(self.COMPARE_ROWS))
+        self.compare.setVerticalHeaderLabels(
+            [f"{name} [{gas_unit if unit == 'gas' else unit}]" if unit else name for name, _k, unit, _d in self.COMPARE_ROWS])
+        for r, (_name, key, unit, digits) in enumerate(self.COMPARE_ROWS):
+            for col, (label, block) in enumerate([("now", now)] + [(t, compare.get(t)) for t in TRIALS]):
+                text = "-" if block is None else self._compare_value(block.get(key), unit, digits)
+                if ranges and label == ranges_trial and key in self.RANGE_KEYS and text != "-":
+                    lo, hi = ranges[key]
+                    text += f" ({self._compare_value(lo, unit, digits)}–{self._compare_value(hi, unit, digits)})"
+                self.compare.setItem(r, col, QtWidgets.QTableWidgetItem(text))
+        self.compare.resizeColumnsToContents()
+
+    def _fill_limits(self, lines):
+        self.limits.setRowCount(len(lines))
+        for i, line in enumerate(lines):
+            value = line["value"]
+            if self.units == "kPa" and value.endswith(" mmHg"):
+                value = self._gas(float(value.split()[0]))
+            limit = line["limit"].replace("<=", "\u2264")
+            check = f"{line['what']} {value}, limit {limit}\nwhy: {line['source']}"
+            for j, text in enumerate((STATUS_SYMBOL[line["status"]], check)):
+                item = QtWidgets.QTableWidgetItem(text)
+                item.setToolTip(line["message"])
+                self.limits.setItem(i, j, item)
+        self.limits.resizeRowsToContents()
+
+    def edit_goals(self):
+        dialog = GoalsDialog(self.state.case.get("goals") or {}, self)
+        dialog.accepted.connect(lambda: self.set_goals(dialog.goals()))
+        dialog.open()
+        return dialog
+
+    def set_goals(self, goals: dict):
+        """New goals for this case (kept in the case file on Save); the Limits are checked again."""
+        self.state.case["goals"] = goals
+        self.undo_stack.resetClean()
+        self._update_title()
+        self.debounce.start()
+
+    # --- units and views ----------------------------------------------------------------------------
+    def _label_axes(self):
+        u = "kPa" if self.units == "kPa" else "mmHg"
+        if self.oxygen_view == "sao2":
+            _axis(self.plots["oxygen"], "SaO2 [fraction]")
+        else:
+            _axis(self.plots["oxygen"], f"PaO2 [{u}]")
+        _axis(self.plots["paco2"], f"PaCO2 [{u}]")
+
+    def set_units(self, units: str):
+        self.units = units
+        self.settings_store.setValue("units", units)
+        self._label_axes()
+        self._fill_bedside()
+        if self.fit_result is not None:
+            self._show_fit()
+        self._redraw()
+
+    def set_oxygen_view(self, view: str):
+        self.oxygen_view = view
+        self.charts["oxygen"].min_span = 0.05 if view == "sao2" else 10.0
+        self.settings_store.setValue("oxygen_view", view)
+        self._label_axes()
+        self._redraw()
+
+    def _redraw(self):
+        if self.last_forecast is None and self.last_steady is not None:
+            self._show_steady(self.last_steady)
+        if self.last_forecast is not None:
+            self._show_forecast(self.last_forecast)
+            if self.last_band is not None:
+                self._show_band(self.last_band)
+
+    # --- busy ---------------------------------------------------------------------------------------
+    def _start_busy(self, cancellable):
+        self.progress.show()
+        self.cancel_button.setVisible(cancellable)
+
+    def _stop_busy(self):
+        self.progress.hide()
+        self.cancel_button.hide()
+
+    def _on_busy(self, busy):
+        pass
+
+    def cancel_fit(self):
+        self.runner.cancel("fit")
+        self._stop_busy()
+        self.fit_message.setText("\u2716 fit cancelled: no forecast is shown. Open the case again to fit it.")
+        self.status.setText("fit cancelled")
+
+    # --- files --------------------------------------------------------------------------------------
+    def case_with_trials(self) -> dict:
+        """The case as saved: trial settings B and C are not part of the case-file format (A is kept in
+        the recovery file only), so the saved case is the case itself with its goals."""
+        return copy.deepcopy(self.state.case)
+
+    def open_dialog(self):
+        path, _ = QtWidgets.QFileDialog.getOpenFileName(self, "Open case", "", "Ventcast case (*.ventcast.json)")
+        if path:
+            self.open_path(path)
+
+    def open_path(self, path: str):
+        try:
+            case = load(path)
+        except CaseError as exc:
+            self._on_failure(None, str(exc))
+            return False
+        self.load_case(case, str(path))
+        return True
+
+    def save(self):
+        if not self.state.path:
+            return self.save_as()
+        return self._save_to(self.state.path)
+
+    def save_as(self):
+        path, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Save case as", "", "Ventcast case (*.ventcast.json)")
+        if not path:
+            return False
+        if not path.endswith(".ventcast.json"):
+            path += ".ventcast.json"
+        return self._save_to(path)
+
+    def _save_to(self, path):
+        from .casefile import save
+        try:
+            save(path, self.case_with_trials())
+        except (CaseError, OSError) as exc:
+            self._on_failure(None, f"not saved: {exc}")
+            return False
+        self.state.path = str(path)
+        self.undo_stack.setClean()
+        self._remember_recent(str(path))
+        self._update_title()
+        self.status.setText(f"saved {path}")
+        return True
+
+    def _remember_recent(self, path):
+        recent = [p for p in (self.settings_store.value("recent", []) or []) if p != path]
+        recent.insert(0, path)
+        self.settings_store.setValue("recent", recent[:8])
+        self._refresh_recent()
+
+    def _refresh_recent(self):
+        if not hasattr(self, "recent_menu"):
+            return
+        self.recent_menu.clear()
+        recent = self.settings_store.value("recent", []) or []
+        if isinstance(recent, str):
+            recent = [recent]
+        for p in recent:
+            self.recent_menu.addAction(p).triggered.connect(lambda _c=False, p=p: self.open_path(p))
+        self.recent_menu.setEnabled(bool(recent))
+
+    def _on_clean_changed(self, _clean):
+        self._update_title()
+
+    def _update_title(self):
+        name = Path(self.state.path).name if self.state.path else "unsaved case"
+        dirty = "" if self.undo_stack.isClean() else " *"
+        self.setWindowTitle(f"{APP_NAME} \u2014 {name}{dirty}")
+
+    # --- recovery -----------------------------------------------------------------------------------
+    def recovery_document(self) -> dict:
+        return {"format": "ventcast.recovery", "version": 1, "path": self.state.path, "case": self.state.case,
+                "trials": self.state.trials, "active": self.state.active}
+
+    def write_recovery(self):
+        """Autosave: the case and every trial as on screen, atomically, to the recovery file."""
+        try:
+            recovery_path().parent.mkdir(parents=True, exist_ok=True)
+            write_atomic(recovery_path(), json.dumps(self.recovery_document(), indent=1))
+        except OSError as exc:
+            self.status.setText(f"\u26a0 autosave failed: {exc}")
+
+    def restore(self, doc: dict):
+        self.load_case(doc["case"], doc.get("path"), trials=doc["trials"])
+        self.trial_tabs.setCurrentIndex(TRIALS.index(doc.get("active", "A")))
+
+    def closeEvent(self, event):
+        self.autosave.stop()
+        self.debounce.stop()
+        self.undo_stack.cleanChanged.disconnect(self._on_clean_changed)  # it fires while being destroyed
+        try:
+            recovery_path().unlink()
+        except OSError:
+            pass
+        self.runner.cancel("fit")
+        self.runner.wait(60000)
+        super().closeEvent(event)
+
+    # --- help ---------------------------------------------------------------------------------------
+    def show_shortcuts(self):
+        text = "\n".join(f"{k:24s} {v}" for k, v in SHORTCUTS)
+        box = QtWidgets.QMessageBox(QtWidgets.QMessageBox.Information, "Keyboard shortcuts", text, parent=self)
+        box.setFont(QtGui.QFontDatabase.systemFont(QtGui.QFontDatabase.FixedFont))
+        box.open()
+
+    def show_about(self):
+        from importlib.metadata import PackageNotFoundError, version
+        try:
+            v = version("ventcast")
+        except PackageNotFoundError:
+            v = "development"
+        QtWidgets.QMessageBox.about(self, "About Ventcast", f"<b>Ventcast {v}</b><p>{_escape(CAUTION)}</p><p>Model sources:</p><ul>"
+                                    + "".join(f"<li>{_escape(s)}</li>" for s in SOURCES) + "</ul>")
+
+
+#: Goals the dialog edits: key, label, unit, default (low, high) or maximum, minimum, maximum, step, decimals.
+GOAL_FIELDS = (
+    ("pao2_mmhg", "PaO2 goal", "mmHg", (55.0, 80.0), 40.0, 150.0, 1.0, 0),
+    ("spo2", "SpO2 goal", "fraction", (0.88, 0.95), 0.80, 1.0, 0.01, 2),
+    ("paco2_mmhg", "PaCO2 goal", "mmHg", (35.0, 60.0), 25.0, 90.0, 1.0, 0),
+    ("ph", "pH goal", "", (7.30, 7.45), 7.10, 7.60, 0.01, 2),
+    ("vt_ml_per_kg_pbw", "VT", "mL/kg PBW", (4.0, 8.0), 3.0, 12.0, 0.5, 1),
+    ("pplat_max_cmh2o", "Pplat at most", "cmH2O", 30.0, 15.0, 40.0, 1.0, 0),
+    ("driving_pressure_max_cmh2o", "Driving pressure at most", "cmH2O", 15.0, 5.0, 25.0, 1.0, 0),
+    ("intrinsic_peep_max_cmh2o", "Intrinsic PEEP at most", "cmH2O", 5.0, 0.0, 10.0, 0.5, 1),
+    ("mechanical_power_max_j_min", "Mechanical power at most", "J/min", 17.0, 5.0, 40.0, 1.0, 0),
+    ("fio2_max", "FiO2 at most", "", 1.0, 0.21, 1.0, 0.05, 2),
+)
+
+
+class GoalsDialog(QtWidgets.QDialog):
+    """Per-case goals and limits (the case file's ``goals``); defaults are the published ones."""
+
+    def __init__(self, goals: dict, parent=None):
+        super().__init__(parent)
+        self.setWindowTitle("Goals and limits of this case")
+        form = QtWidgets.QFormLayout(self)
+        self.fields = {}
+        for key, label, unit, default, lo, hi, step, dec in GOAL_FIELDS:
+            value = goals.get(key, default)
+            spins = []
+            for v in (value if isinstance(default, tuple) else (value,)):
+                sp = QtWidgets.QDoubleSpinBox()
+                sp.setRange(lo, hi)
+                sp.setSingleStep(step)
+                sp.setDecimals(dec)
+                sp.setValue(float(v))
+                sp.setSuffix(f" {unit}" if unit and unit != "fraction" else "")
+                spins.append(sp)
+            row = QtWidgets.QHBoxLayout()
+            for i, sp in enumerate(spins):
+                if i:
+                    row.addWidget(QtWidgets.QLabel("to"))
+                row.addWidget(sp)
+            form.addRow(label, row)
+            self.fields[key] = spins
+        buttons = QtWidgets.QDialogButtonBox(QtWidgets.QDialogButtonBox.Ok | QtWidgets.QDialogButtonBox.Cancel)
+        buttons.accepted.connect(self._accept)
+        buttons.rejected.connect(self.reject)
+        self.error = QtWidgets.QLabel("")
+        form.addRow(self.error)
+        form.addRow(buttons)
+
+    def goals(self) -> dict:
+        out = {}
+        for key, spins in self.fields.items():
+            vals = [round(sp.value(), 4) for sp in spins]
+            out[key] = vals if len(vals) == 2 else vals[0]
+        return out
+
+    def _accept(self):
+        for key, label, *_ in GOAL_FIELDS:
+            spins = self.fields[key]
+            if len(spins) == 2 and spins[0].value() >= spins[1].value():
+                self.error.setText(f"\u2716 {label}: the low end {spins[0].value():g} must be below the high end "
+                                   f"{spins[1].value():g}")
+                return
+        self.accept()
+
+
+def _escape(text: str) -> str:
+    return (str(text).replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;"))
+
+
+def _settings_text(s: dict) -> str:
+    mode = "VC" if s["mode"] == "volume" else "PC"
+    size = f"VT {s['vt_ml']:g} mL" if s["mode"] == "volume" else f"Pinsp {s['inspiratory_pressure_cmh2o']:g} cmH2O"
+    return f"{mode}, FiO2 {s['fio2']:.2f}, PEEP {s['peep_cmh2o']:g}, {size}, RR {s['rr_per_min']:g}, Ti {s['inspiratory_time_s']:g} s"
+
+
+def read_recovery() -> dict | None:
+    """The recovery document left by a window that did not close cleanly, or None."""
+    p = recovery_path()
+    if not p.exists():
+        return None
+    try:
+        doc = json.loads(p.read_text(encoding="utf-8"))
+        if doc.get("format") != "ventcast.recovery":
+            return None
+        doc["case"] = loads(json.dumps(doc["case"]))
+        return doc
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+
+
+def _quiet_offscreen_warnings(mode, context, message):
+    # The offscreen platform warns that it cannot size windows to their hints; that is expected there.
+    if "propagateSizeHints" in message:
+        return
+    print(message, file=sys.stderr)
+
+
+def offer_recovery(window: MainWindow) -> bool:
+    """If a window did not close cleanly, offer its autosaved case and trials; True when restored."""
+    recovered = read_recovery()
+    if recovered is None:
+        return False
+    answer = QtWidgets.QMessageBox.question(
+        window, "Recover unsaved work?",
+        "Ventcast did not close cleanly last time. Recover the case and trials as they were on screen?")
+    if answer != QtWidgets.QMessageBox.Yes:
+        return False
+    window.restore(recovered)
+    return True
+
+
+def run(case_path: str | None = None, demo: str | None = None, screenshot: str | None = None,
+        size: tuple[int, int] = (1600, 1000), quit_after_ms: int | None = None, ask_recovery: bool = True,
+        sets=(), tab: str | None = None) -> int:
+    """Start the window (``ventcast open``). With ``screenshot``, render offscreen to a PNG and exit.
+
+    ``sets`` (KEY=VALUE, as in ``predict --set``) make Trial A; ``tab`` picks the right-hand panel
+    ('limits' or 'lung-fit') for the screenshot.
+    """
+    if screenshot:
+        os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+    QtCore.qInstallMessageHandler(_quiet_offscreen_warnings)
+    app = QtWidgets.QApplication.instance() or QtWidgets.QApplication([APP_NAME])
+    app.setOrganizationName(ORG_NAME)
+    app.setApplicationName(APP_NAME)
+    case = load(case_path) if case_path else load_demo(demo or "ards-moderate")
+    trials = {"A": apply_sets(case, sets), "B": None, "C": None} if sets else None
+    window = MainWindow(case, path=case_path, synchronous=bool(screenshot), trials=trials)
+    if tab == "lung-fit":
+        window.right_tabs.setCurrentIndex(1)
+    if ask_recovery and not screenshot:
+        offer_recovery(window)
+    if screenshot:
+        window.resize(*size)
+        window.show()
+        app.processEvents()
+        if window.fit_result is None:
+            print(f"ventcast open: the case could not be fitted: {window.status.text()}", file=sys.stderr)
+        image = window.grab()
+        if image.size().width() != size[0] or image.size().height() != size[1]:
+            image = image.scaled(size[0], size[1])
+        tmp = f"{screenshot}.tmp"
+        if not image.save(tmp, "PNG"):
+            raise OSError(f"could not write {screenshot}")
+        os.replace(tmp, screenshot)
+        window.close()
+        _dispose(window, app)
+        return 0
+    window.show()
+    if quit_after_ms is not None:
+        QtCore.QTimer.singleShot(quit_after_ms, window.close)
+    code = app.exec()
+    _dispose(window, app)
+    return code
+
+
+def _dispose(window, app):
+    """Delete the window's C++ objects while Python still holds the interpreter: left to interpreter
+    shutdown, pyqtgraph's scene items can be destroyed after their views, which crashes."""
+    window.deleteLater()
+    app.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
+    app.processEvents()

@@ -1,0 +1,362 @@
+"""The window, offscreen with pytest-qt: controls drive the engine, charts and Limits follow it,
+the newest request wins, nothing blocks the event loop, work survives a crash.
+
+The expected numbers come from the engine itself (``app.engine``), called directly: the window
+must show what the engine says, not compute anything of its own.
+"""
+
+import json
+import os
+import signal
+import struct
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+pytest.importorskip("pytestqt")
+from PySide6 import QtCore, QtWidgets  # noqa: E402
+
+from app.casefile import check_settings, load, load_demo  # noqa: E402
+from app.engine import fit_case, forecast_fitted, limit_checks, steady_block, to_settings  # noqa: E402
+from app import window as win  # noqa: E402
+from physiology.forecast import predict  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[1]
+WAIT_MS = 120_000
+
+
+@pytest.fixture(autouse=True)
+def isolated_settings(tmp_path, monkeypatch):
+    """Preferences and recovery files go to a temporary folder, never the user's."""
+    monkeypatch.setenv("VENTCAST_DATA_DIR", str(tmp_path / "data"))
+    QtCore.QSettings.setPath(QtCore.QSettings.NativeFormat, QtCore.QSettings.UserScope, str(tmp_path / "settings"))
+    yield
+
+
+@pytest.fixture(autouse=True)
+def no_leftovers(qapp):
+    """Fail any test that leaves windows, worker threads or running timers alive."""
+    yield
+    QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
+    qapp.processEvents()
+    left = [w for w in qapp.topLevelWidgets() if isinstance(w, (win.MainWindow, win.GoalsDialog))]
+    assert not left, f"windows left alive: {left}"
+    assert QtCore.QThreadPool.globalInstance().activeThreadCount() == 0
+
+
+def _close(w, qapp):
+    w.close()
+    assert not w.autosave.isActive() and not w.debounce.isActive()
+    assert w.runner.pool.activeThreadCount() == 0
+    w.deleteLater()
+    QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
+    qapp.processEvents()
+
+
+@pytest.fixture
+def window(qtbot, qapp):
+    w = win.MainWindow(load_demo("ards-moderate"))
+    w.resize(1400, 900)
+    w.show()
+    with qtbot.waitSignal(w.band_shown, timeout=WAIT_MS):
+        pass
+    yield w
+    _close(w, qapp)
+
+
+def _change(qtbot, w, key, value, stage="forecast_shown"):
+    with qtbot.waitSignal(getattr(w, stage), timeout=WAIT_MS) as blocker:
+        w.set_trial_value(key, value)
+    return blocker.args[0]
+
+
+def _expected(w, trial_settings):
+    """The engine's own forecast for these settings, at the window's fit."""
+    return forecast_fitted(w.state.case, w.fit_result, trial_settings, with_band=False, with_next=False)
+
+
+def test_opens_the_demo_with_bedside_fit_and_caution(window):
+    assert window.caution_label.isVisible()
+    assert "not a medical device" in window.caution_label.text()
+    assert window.bedside_values["pao2"].text() == "68 mmHg"
+    assert window.bedside_values["berlin_category"].text() == "moderate"
+    assert window.fit_result is not None and window.fit_result.success
+    assert window.fit_table.rowCount() == 10
+    assert "cannot tell apart" in window.ident_label.text()
+    assert "Next best measurement" in window.next_label.text()
+    assert window.history.rowCount() == 2
+    # The V/Q picture: ventilation and perfusion for every perfused unit, shunt and dead space apart.
+    x = window.vq_perf.xData  # the data as given (getData() answers on the log axis)
+    assert x.size >= 50 and np.all(x > 0)
+    assert "shunt (V/Q 0)" in window.vq_text.text() and "dead space" in window.vq_text.text()
+
+
+def test_peep_change_moves_outlook_and_limits_as_the_engine_says(window, qtbot):
+    out = _change(qtbot, window, "peep_cmh2o", 16)
+    trial = check_settings("t", dict(window.state.case["settings"], peep_cmh2o=16.0), window._pbw())
+    assert out["trial_settings"] == trial
+    expected = _expected(window, trial)
+    x, y = window.charts["oxygen"].trial.getData()
+    assert np.allclose(y, expected["course"]["pao2_mmhg"], atol=0.01)
+    _x, yc = window.charts["paco2"].trial.getData()
+    assert np.allclose(yc, expected["course"]["paco2_mmhg"], atol=0.01)
+    # The dashed line is the current settings' steady state (no change).
+    now = predict(window.fit_result.model, to_settings(window.state.case["settings"]))
+    _x, yn = window.charts["oxygen"].now.getData()
+    assert np.allclose(yn, float(now.gas.pao2))
+    # Limits: one line per check, each with a symbol and the engine's status.
+    lines = limit_checks(expected["steady"], window.state.case["goals"], fio2=0.6)
+    assert window.limits.rowCount() == len(lines)
+    for i, line in enumerate(lines):
+        assert window.limits.item(i, 0).text() == win.STATUS_SYMBOL[line["status"]]
+        assert line["what"] in window.limits.item(i, 1).text() and line["source"] in window.limits.item(i, 1).text()
+    pplat_row = next(i for i, ln in enumerate(lines) if ln["what"] == "Pplat")
+    assert f"{expected['steady']['pplat_cmh2o']:.1f} cmH2O" in window.limits.item(pplat_row, 1).text()
+    # PEEP 16 in this lung pushes Pplat over 30: a danger line with its symbol, not colour alone.
+    assert expected["steady"]["pplat_cmh2o"] > 30
+    assert window.limits.item(pplat_row, 0).text().startswith("\u2716")
+
+
+@pytest.mark.parametrize("key,value", [("fio2", 0.75), ("vt_ml", 360), ("rr_per_min", 24), ("inspiratory_time_s", 0.8)])
+def test_each_control_drives_a_forecast(window, qtbot, key, value):
+    out = _change(qtbot, window, key, value)
+    assert out["trial_settings"][key] == pytest.approx(value)
+    expected = _expected(window, out["trial_settings"])
+    assert out["steady"]["pao2_mmhg"] == pytest.approx(expected["steady"]["pao2_mmhg"], abs=1e-6)
+    row = [r[1] for r in window.COMPARE_ROWS].index("pao2_mmhg")
+    assert window.compare.item(row, 1).text().startswith(f"{expected['steady']['pao2_mmhg']:.0f}")
+    if key == "fio2":
+        assert expected["steady"]["pao2_mmhg"] > float(window.now_prediction.gas.pao2)
+    if key == "rr_per_min":
+        assert expected["steady"]["paco2_mmhg"] < float(window.now_prediction.gas.paco2)
+
+
+def test_mode_switch_to_pressure_control(window, qtbot):
+    out = _change(qtbot, window, "mode", "pressure")
+    assert out["trial_settings"]["mode"] == "pressure"
+    assert out["trial_settings"]["inspiratory_pressure_cmh2o"] is not None
+    assert window.spins["inspiratory_pressure_cmh2o"].isVisible() and not window.spins["vt_ml"].isVisible()
+
+
+def test_slider_moves_the_spin_box(window, qtbot):
+    lo, step = 0.0, 1.0
+    with qtbot.waitSignal(window.forecast_shown, timeout=WAIT_MS):
+        window.sliders["peep_cmh2o"].setValue(int((12 - lo) / step))
+    assert window.spins["peep_cmh2o"].value() == 12
+    assert window.last_forecast["trial_settings"]["peep_cmh2o"] == 12
+
+
+def test_undo_redo_and_reset(window, qtbot):
+    _change(qtbot, window, "peep_cmh2o", 14)
+    _change(qtbot, window, "fio2", 0.5)
+    with qtbot.waitSignal(window.forecast_shown, timeout=WAIT_MS):
+        window.undo_stack.undo()
+    assert window.trial["fio2"] == 0.6 and window.trial["peep_cmh2o"] == 14
+    with qtbot.waitSignal(window.forecast_shown, timeout=WAIT_MS):
+        window.undo_stack.redo()
+    assert window.trial["fio2"] == 0.5 and window.spins["fio2"].value() == 0.5
+    with qtbot.waitSignal(window.forecast_shown, timeout=WAIT_MS):
+        window.reset_trial()
+    assert window.trial == window.state.case["settings"]
+    assert "no change is expected" in window.recheck_label.text()
+
+
+def test_three_trials_side_by_side(window, qtbot):
+    _change(qtbot, window, "peep_cmh2o", 14)
+    with qtbot.waitSignal(window.forecast_shown, timeout=WAIT_MS):
+        window.trial_tabs.setCurrentIndex(1)
+    out = _change(qtbot, window, "fio2", 0.8)
+    assert out["active"] == "B"
+    assert window.state.trials["A"]["peep_cmh2o"] == 14 and window.state.trials["B"]["fio2"] == 0.8
+    row = [r[1] for r in window.COMPARE_ROWS].index("pplat_cmh2o")
+    a = steady_block(predict(window.fit_result.model, to_settings(window.state.trials["A"])))
+    assert window.compare.item(row, 1).text() == f"{a['pplat_cmh2o']:.1f}"
+    assert window.compare.item(row, 3).text() == "-"  # Trial C not started
+    assert window.limits_title.text() == "Limits of Trial B"
+
+
+def test_units_switch_to_kpa(window, qtbot):
+    window.kpa_action.setChecked(True)
+    assert "kPa" in window.plots["oxygen"].getAxis("left").labelText
+    assert window.bedside_values["pao2"].text() == f"{68 / win.MMHG_PER_KPA:.1f} kPa"
+    _x, y = window.charts["oxygen"].trial.getData()
+    assert np.allclose(y * win.MMHG_PER_KPA, window.last_forecast["course"]["pao2_mmhg"], atol=0.02)
+    window.sao2_action.setChecked(True)
+    _x, y = window.charts["oxygen"].trial.getData()
+    assert np.all((y > 0.5) & (y <= 1.0))
+    window.kpa_action.setChecked(False)
+    window.sao2_action.setChecked(False)
+
+
+def test_goals_are_editable_and_checked(window, qtbot):
+    dialog = window.edit_goals()
+    dialog.fields["pplat_max_cmh2o"][0].setValue(25)
+    with qtbot.waitSignal(window.steady_shown, timeout=WAIT_MS):
+        dialog._accept()
+    dialog.deleteLater()
+    assert window.state.case["goals"]["pplat_max_cmh2o"] == 25
+    pplat_row = next(i for i in range(window.limits.rowCount()) if window.limits.item(i, 1).text().startswith("Pplat"))
+    assert "\u2264 25 cmH2O" in window.limits.item(pplat_row, 1).text()
+    assert window.limits.item(pplat_row, 0).text().startswith("\u2716")  # 26.7 cmH2O now breaks it
+
+
+def test_save_and_reopen_keeps_goals(window, qtbot, tmp_path):
+    window.set_goals(dict(window.state.case["goals"], pplat_max_cmh2o=28))
+    target = tmp_path / "saved.ventcast.json"
+    assert window._save_to(str(target))
+    assert load(target)["goals"]["pplat_max_cmh2o"] == 28
+    assert window.windowTitle().endswith("saved.ventcast.json")
+
+
+def test_bad_trial_value_is_reported_not_computed(window, qtbot):
+    window.state.trials["A"]["inspiratory_time_s"] = 3.5  # longer than the breath at RR 20
+    with qtbot.waitSignal(window.failure_shown, timeout=WAIT_MS) as blocker:
+        window._request_forecast()
+    assert "Trial A.inspiratory_time_s" in blocker.args[0] and "breathe out" in blocker.args[0]
+    assert window.status.text().startswith("\u2716")
+    # Accepted settings where the model finds no steady state: the failure and its reason, never numbers.
+    window.state.trials["A"]["inspiratory_time_s"] = 2.9
+    before = window.last_forecast
+    with qtbot.waitSignal(window.failure_shown, timeout=WAIT_MS) as blocker:
+        window._request_forecast()
+    assert "no steady state" in blocker.args[0] and "(" in blocker.args[0]
+    assert window.last_forecast is before
+
+
+def test_rapid_changes_never_block_and_the_newest_wins(window, qtbot):
+    """200 rapid changes: the event loop never stalls more than 100 ms, and the last result shown is the
+    newest request's. A QTimer heartbeat measures the longest gap between its ticks."""
+    gaps, last = [], [time.perf_counter()]
+
+    def beat():
+        t = time.perf_counter()
+        gaps.append(t - last[0])
+        last[0] = t
+
+    heartbeat = QtCore.QTimer()
+    heartbeat.setInterval(10)
+    heartbeat.timeout.connect(beat)
+    heartbeat.start()
+    rng = np.random.default_rng(0)
+    values = rng.integers(6, 16, 200).astype(float)
+    values[-1] = 13.0
+    for v in values:
+        window.set_trial_value("peep_cmh2o", v)
+        qtbot.wait(3)
+    qtbot.waitUntil(lambda: window.last_band is not None
+                    and window.last_forecast["trial_settings"]["peep_cmh2o"] == 13.0, timeout=WAIT_MS)
+    heartbeat.stop()
+    assert window.last_forecast["trial_settings"]["peep_cmh2o"] == 13.0
+    assert window.spins["peep_cmh2o"].value() == 13.0
+    assert max(gaps) < 0.100, f"event loop blocked for {max(gaps) * 1000:.0f} ms"
+
+
+def test_signal_soak(qtbot):
+    """10,000 emits through a queued cross-object signal (PySide6 6.12.0 aborted after about 1,000)."""
+    class Emitter(QtCore.QObject):
+        ping = QtCore.Signal(int)
+
+    e = Emitter()
+    got = []
+    e.ping.connect(got.append, QtCore.Qt.QueuedConnection)
+    for i in range(10_000):
+        e.ping.emit(i)
+    qtbot.waitUntil(lambda: len(got) == 10_000, timeout=10_000)
+    assert got[-1] == 9_999
+
+
+def test_runner_drops_stale_results_and_reports_failures(qtbot):
+    runner = win.EngineRunner()
+    seen, failed = [], []
+    runner.finished.connect(lambda r, x: seen.append(x))
+    runner.failed.connect(lambda r, m: failed.append(m))
+    gate = QtCore.QSemaphore(0)
+
+    def slow():
+        gate.acquire()
+        return "old"
+
+    runner.submit("steady", slow)
+    runner.submit("steady", lambda: "new")
+    gate.release()
+    qtbot.waitUntil(lambda: runner.pool.activeThreadCount() == 0 and bool(seen), timeout=10_000)
+    qtbot.wait(50)
+    assert seen == ["new"]
+    runner.submit("steady", lambda: {}["missing"])
+    qtbot.waitUntil(lambda: bool(failed), timeout=10_000)
+    assert "internal error" in failed[0] and "KeyError" in failed[0]
+    runner.wait()
+    runner.deleteLater()
+
+
+def test_recovery_is_offered_and_identical(qtbot, qapp, monkeypatch, tmp_path):
+    """Kill a running window after an autosave; the next start offers the case and trials as they were."""
+    env = dict(os.environ, VENTCAST_AUTOSAVE_MS="300", QT_QPA_PLATFORM="offscreen")
+    script = (
+        "import os, signal, sys\n"
+        "from PySide6 import QtCore, QtWidgets\n"
+        "from app.casefile import load_demo\n"
+        "from app.window import MainWindow, recovery_path\n"
+        "app = QtWidgets.QApplication([])\n"
+        "w = MainWindow(load_demo('copd-trapping'), synchronous=True)\n"
+        "w.set_trial_value('rr_per_min', 14)\n"
+        "w.trial_tabs.setCurrentIndex(1)\n"
+        "w.set_trial_value('fio2', 0.45)\n"
+        "def check():\n"
+        "    if recovery_path().exists():\n"
+        "        print('autosaved', flush=True)\n"
+        "        os.kill(os.getpid(), signal.SIGKILL)\n"
+        "t = QtCore.QTimer(); t.timeout.connect(check); t.start(100)\n"
+        "app.exec()\n")
+    proc = subprocess.run([sys.executable, "-c", script], cwd=ROOT, env=env, capture_output=True, text=True,
+                          timeout=300)
+    assert proc.returncode == -signal.SIGKILL, proc.stderr
+    assert "autosaved" in proc.stdout
+    doc = win.read_recovery()
+    assert doc is not None and doc["trials"]["A"]["rr_per_min"] == 14 and doc["trials"]["B"]["fio2"] == 0.45
+    monkeypatch.setattr(QtWidgets.QMessageBox, "question", staticmethod(lambda *a, **k: QtWidgets.QMessageBox.Yes))
+    w = win.MainWindow(load_demo("ards-moderate"), synchronous=True)
+    assert win.offer_recovery(w)
+    assert w.state.case == load_demo("copd-trapping")
+    assert w.state.trials["A"]["rr_per_min"] == 14 and w.state.trials["B"]["fio2"] == 0.45
+    assert w.state.active == "B" and w.spins["fio2"].value() == 0.45
+    _close(w, qapp)
+    assert not win.recovery_path().exists()  # a clean close removes it
+
+
+def _png_size(path):
+    with open(path, "rb") as fh:
+        head = fh.read(24)
+    assert head[:8] == b"\x89PNG\r\n\x1a\n"
+    return struct.unpack(">II", head[16:24])
+
+
+def test_screenshot_command_writes_a_png_of_the_size_asked(tmp_path):
+    out = tmp_path / "shot.png"
+    proc = subprocess.run([sys.executable, "-m", "app.cli", "open", "--demo", "postop-wean", "--set", "fio2=0.35",
+                           "--screenshot", str(out), "--size", "1200x800"], cwd=ROOT, capture_output=True, text=True,
+                          timeout=300, env=dict(os.environ, QT_QPA_PLATFORM="offscreen"))
+    assert proc.returncode == 0, proc.stderr
+    assert out.stat().st_size > 10_000
+    assert _png_size(out) == (1200, 800)
+    assert proc.stderr == ""
+
+
+def test_open_refuses_bad_input_before_any_window(tmp_path):
+    from app.cli import main
+    assert main(["open", "--demo", "ards-moderate", "--size", "10x10", "--screenshot", str(tmp_path / "a.png")]) == 2
+    assert main(["open", "--demo", "ards-moderate", "--set", "fio2=60", "--screenshot", str(tmp_path / "a.png")]) == 2
+    assert not any(tmp_path.iterdir())
+
+
+def test_window_starts_and_quits(tmp_path):
+    """Smoke test: the real command starts the window and quits after a second."""
+    env = dict(os.environ, QT_QPA_PLATFORM="offscreen", VENTCAST_DATA_DIR=str(tmp_path))
+    proc = subprocess.run([sys.executable, "-m", "app.cli", "open", "--demo", "ards-moderate", "--quit-after", "1"],
+                          cwd=ROOT, capture_output=True, text=True, timeout=300, env=env)
+    assert proc.returncode == 0, proc.stderr
+    assert "Traceback" not in proc.stderr
