@@ -287,8 +287,14 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
                                           "range above still holds"})
             lo_o2 = hi_o2 = lo_co2 = hi_co2 = np.full(course.minutes.size, np.nan)
         else:
-            lo_o2, hi_o2 = np.nanpercentile(band.pao2, [5, 95], axis=0)
-            lo_co2, hi_co2 = np.nanpercentile(band.paco2, [5, 95], axis=0)
+            band_pao2, band_paco2, left_out = band
+            lo_o2, hi_o2 = np.nanpercentile(band_pao2, [5, 95], axis=0)
+            lo_co2, hi_co2 = np.nanpercentile(band_paco2, [5, 95], axis=0)
+            if left_out:
+                alerts.append({"code": "band_draws_left_out", "severity": "info",
+                               "message": f"{left_out} of {left_out + band_pao2.shape[0]} parameter draws could not be "
+                                          f"followed over time (close to an unsustainable state) and are left out of "
+                                          f"the course's likely range"})
 
         def r(a, d=2):
             return [None if not math.isfinite(float(x)) else round(float(x), d) for x in a]
@@ -312,17 +318,38 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
 
 
 def _band(result, current, trial, minutes, n=200):
-    """Courses of up to ``n`` parameter draws that have a steady state at both settings, or None."""
+    """Courses of up to ``n`` parameter draws that have a steady state at both settings, or None.
+
+    Returns ``(pao2, paco2, left_out)``: arrays (draws, time) and the number of draws whose course
+    could not be integrated (near the edge of a sustainable state); those are left out of the band,
+    found by halving the batch, and the caller says how many.
+    """
     draws = result.draws
     ok = np.asarray(predict(draws, _tile(current, draws)).success) & np.asarray(predict(draws, _tile(trial, draws)).success)
     idx = np.flatnonzero(ok)[:n]
     if idx.size < 50:
         return None
-    try:
-        course = simulate(_take(draws, idx), current, trial, minutes=minutes)
-    except ArithmeticError:
+    parts = _courses(draws, idx, current, trial, minutes)
+    kept = sum(p[0].shape[0] for p in parts)
+    if kept < 50:
         return None
-    return course if np.any(course.success) else None
+    return (np.vstack([p[0] for p in parts]), np.vstack([p[1] for p in parts]), int(idx.size - kept))
+
+
+def _courses(draws, idx, current, trial, minutes):
+    """[(pao2, paco2)] of the draws at ``idx`` whose course integrates; failing draws found by halving."""
+    try:
+        with np.errstate(invalid="ignore"):  # a failing draw's NaNs are reported through success, not warnings
+            course = simulate(_take(draws, idx), current, trial, minutes=minutes)
+    except ArithmeticError:
+        course = None
+    if course is not None and np.all(course.success):
+        return [(np.atleast_2d(course.pao2), np.atleast_2d(course.paco2))]
+    if idx.size == 1:
+        return []
+    half = idx.size // 2
+    return (_courses(draws, idx[:half], current, trial, minutes)
+            + _courses(draws, idx[half:], current, trial, minutes))
 
 
 def _tile(settings, draws):

@@ -354,7 +354,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self.vt_per_kg = QtWidgets.QLabel("")
         lay.addWidget(self.vt_per_kg, 2 + len(CONTROLS), 1, 1, 2)
         self.compare = QtWidgets.QTableWidget(0, 4)
-        self.compare.setHorizontalHeaderLabels(["now", "Trial A", "Trial B", "Trial C"])
+        self.compare.setHorizontalHeaderLabels(["now (model)", "Trial A", "Trial B", "Trial C"])
         self.compare.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
         self.compare.horizontalHeader().setStretchLastSection(True)
         self.compare.verticalHeader().setDefaultSectionSize(20)
@@ -378,7 +378,7 @@ class MainWindow(QtWidgets.QMainWindow):
         _axis(self.plots["ph"], "pH")
         pp = self.plots["pressure"]
         _axis(pp, "pressure [cmH2O]")
-        pp.addLegend(offset=(-10, 10))
+        pp.addLegend(offset=(10, -10))  # bottom left, below the pressure lines
         self.pressure_items = {
             "pplat_now": pp.plot(pen=pg.mkPen(COLOUR["pplat"], width=1, style=QtCore.Qt.DashLine)),
             "pplat": pp.plot(pen=pg.mkPen(COLOUR["pplat"], width=1), name="Pplat"),
@@ -525,6 +525,7 @@ class MainWindow(QtWidgets.QMainWindow):
                                 path=path)
         self.undo_stack.clear()
         self.fit_result = None
+        self.last_steady = None
         self.last_forecast = None
         self.last_band = None
         self._fill_bedside()

@@ -230,3 +230,32 @@ def test_atomic_save_leaves_no_partial_file(tmp_path):
         casefile.save(target, bad)
     assert target.read_bytes() == before
     assert [p.name for p in tmp_path.iterdir()] == ["saved.ventcast.json"]
+
+
+def test_course_band_leaves_out_draws_it_cannot_follow(monkeypatch):
+    """A draw whose course cannot be integrated is found by halving the batch and left out (and counted),
+    instead of losing the whole band."""
+    import numpy as np
+    from app import engine
+    from physiology.dynamics import course as course_module
+
+    case = casefile.load_demo("ards-moderate")
+    _p, _o, result = engine.fit_case(case)
+    current = engine.to_settings(case["settings"])
+    trial = engine.to_settings(engine.apply_sets(case, ["peep_cmh2o=12"]))
+    bad_shunt = float(np.asarray(result.draws.shunt_fixed)[7])
+    real = course_module.simulate
+    _o2, _co2, left_before = engine._band(result, current, trial, 60.0)  # draws the model itself cannot follow
+
+    def flaky(draws, *args, **kwargs):
+        c = real(draws, *args, **kwargs)
+        if np.any(np.isclose(np.atleast_1d(draws.shunt_fixed), bad_shunt)):
+            return course_module._failed(c.final, "the time-course integration failed (test)")
+        return c
+
+    monkeypatch.setattr(engine, "simulate", flaky)
+    pao2, paco2, left_out = engine._band(result, current, trial, 60.0)
+    # Resampled draws can repeat: every copy of the failing draw is left out, besides those left out before.
+    copies = int(np.sum(np.isclose(np.asarray(result.draws.shunt_fixed), bad_shunt)))
+    assert left_before < left_out <= left_before + copies
+    assert pao2.shape == paco2.shape and pao2.shape[0] == 200 - left_out

@@ -96,13 +96,32 @@ def test_needs_an_observation():
         fit(PT, [])
 
 
+def test_sampler_that_cannot_finish_says_so(monkeypatch):
+    """Honest failure: a sampler that does not reach the posterior gives no likely range and no success."""
+    import physiology.fitting.fit as fitting
+    monkeypatch.setattr(fitting, "MAX_STAGES", 1)
+    f = fit(PT, [observe(vc(0.5, 8)), observe(vc(0.6, 10))])
+    assert not f.success
+    assert "no likely range could be computed" in f.message and "did not reach the posterior" in f.message
+
+
+def test_sampler_reports_its_work():
+    f = fit(PT, [observe(vc())])
+    s = f.sampler
+    assert s["stages"] >= 2 and s["moves"] >= 5 * s["stages"]
+    final = [a for a in s["acceptance"] if a[0] == 1.0]
+    assert final and all(0.0 < np.nanmean(a[1:]) < 1.0 for a in final)
+
+
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="known defect, measured: PaO2 coverage about 0.80 (PaCO2 about 0.88) over "
-                   "200 synthetic patients; the range is too narrow for PaO2 once recruitability is a free parameter")
 def test_likely_range_is_calibrated():
     """Over 200 synthetic patients drawn from the population priors, with noisy observations (one or
     two blood gases), the 90 % likely range of PaO2 and PaCO2 after a change (FiO2 +/-0.1, PEEP +2,
-    RR +2) covers the true value in 85-95 % of cases."""
+    RR +2) covers the true value in 85-95 % of cases (the issue's criterion; a range that is exact
+    covers 90 %, with a binomial SD of about 2 % over 200 cases).
+
+    Measured with the tempered SMC sampler: about 0.88-0.90 (PaO2) and 0.89-0.91 (PaCO2) on this
+    set; importance sampling around the Laplace Gaussian gave 0.82 (PaO2) before it was replaced."""
     rng = np.random.default_rng(5)
     hits = {"pao2": [], "paco2": []}
     while len(hits["pao2"]) < 200:

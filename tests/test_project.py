@@ -92,3 +92,11 @@ def test_unbuilt_verbs_say_so_and_exit_2():
     assert out.returncode == 2
     assert "not available yet" in out.stderr
     assert "Traceback" not in out.stderr
+
+
+def test_readme_screenshot_exists():
+    text = (ROOT / "README.md").read_text()
+    images = re.findall(r"!\[[^\]]*\]\(([^)]+\.png)\)", text)
+    assert images, "the README shows a screenshot of the window"
+    for image in images:
+        assert (ROOT / image).stat().st_size > 10_000

@@ -179,6 +179,16 @@ def test_three_trials_side_by_side(window, qtbot):
     assert window.limits_title.text() == "Limits of Trial B"
 
 
+def test_hover_reads_out_the_trial_curve(window, qtbot):
+    chart = window.charts["paco2"]
+    x, y = chart.trial.getData()
+    i = len(x) // 2
+    scene_pos = chart.plot.getViewBox().mapViewToScene(QtCore.QPointF(float(x[i]), float(y[i])))
+    chart._moved(scene_pos)
+    assert chart.hover.isVisible()
+    assert chart.hover.toPlainText() == f"{x[i]:.1f} min: {y[i]:.3g}"
+
+
 def test_units_switch_to_kpa(window, qtbot):
     window.kpa_action.setChecked(True)
     assert "kPa" in window.plots["oxygen"].getAxis("left").labelText

@@ -531,9 +531,12 @@ def simulate(patient: PatientModel, settings_now: Settings, changes=(), minutes:
         t_eval = solve_grid[(solve_grid >= t0) & (solve_grid <= t1)]
         if t_eval.size == 0 or t_eval[0] > t0:
             t_eval = np.concatenate([[t0], t_eval])
-        sol = solve_ivp(lambda t, y, u=u: rhs(t, y, u), (t0, t1), x, method=method, t_eval=t_eval,
-                        jac=(lambda t, y, u=u: _jacobian(y, u, structure)) if method in ("BDF", "Radau") else None,
-                        **opts)
+        try:
+            sol = solve_ivp(lambda t, y, u=u: rhs(t, y, u), (t0, t1), x, method=method, t_eval=t_eval,
+                            jac=(lambda t, y, u=u: _jacobian(y, u, structure)) if method in ("BDF", "Radau") else None,
+                            **opts)
+        except (RuntimeError, np.linalg.LinAlgError) as exc:  # e.g. a singular Newton matrix in the stiff solver
+            return _failed(target, f"the time-course integration failed between minute {t0:g} and {t1:g}: {exc}")
         if not sol.success:
             return _failed(target, f"the time-course integration failed at minute {sol.t[-1]:.2f}: {sol.message}")
         x = sol.y[:, -1]

@@ -11,8 +11,13 @@ with ``scipy.optimize.least_squares`` (maximum a posteriori with Gaussian priors
 transformed scale). The Jacobian is taken by forward differences, all perturbations
 of all observations solved in one batched call of the engine. The posterior is
 approximated by a Gaussian on the transformed scale with covariance ``(J^T J)^-1``
-(Laplace / Gauss-Newton), and parameter draws from it give the 90 % likely range of any
-forecast (5th to 95th percentile).
+(Laplace / Gauss-Newton) for the identifiability messages and the next best measurement. The
+likely ranges come from posterior draws by a likelihood-tempered sequential Monte Carlo sampler
+(:func:`_posterior_draws`): the 90 % likely range of any forecast is the 5th to 95th percentile
+over the draws. Measured on 200 synthetic patients drawn from the priors (one or two blood gases,
+a forecast after an FiO2, PEEP and rate change): the range covers the truth in about 0.9 of cases
+for PaO2 and PaCO2 (``tests/test_fitting.py``); draws around the Laplace Gaussian instead covered
+PaO2 in only about 0.82.
 
 Cardiac output and VO2 are unknown nuisance parameters with population priors (not
 fixed): their uncertainty reaches the likely range. When measured, they enter as
@@ -50,7 +55,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.optimize import least_squares
-from scipy.special import expit, logit
+from scipy.special import expit, gammaln, logit
 
 from .._checks import check_fio2, check_range
 from ..bloodgas.acidbase import _ph_invivo, bicarbonate_henderson_hasselbalch
@@ -228,6 +233,7 @@ class FitResult:
     patient: Patient = field(repr=False)
     observations: tuple = field(repr=False)
     free: tuple = ()
+    sampler: dict = field(default_factory=dict, repr=False)
 
 
 def _settings_batch(settings_list):
@@ -323,16 +329,30 @@ class _Problem:
                     out[:, col] = table[q].reshape(K, m)[:, pos]
         return out
 
+    def _data_sd(self, out):
+        # Measurement SD at the model's value (the generative error model), not at the observed one.
+        return np.where(np.isfinite(out), self.sd_abs + self.sd_rel * np.abs(np.where(np.isfinite(out), out, 0.0)),
+                        self.sd)
+
     def residuals(self, Z):
         """Stacked standardised residuals (data then prior) for rows of Z: (K, n_keys + p)."""
         out = self.model_outputs(Z)
-        # Measurement SD at the model's value (the generative error model), not at the observed one.
-        sd = np.where(np.isfinite(out), self.sd_abs + self.sd_rel * np.abs(np.where(np.isfinite(out), out, 0.0)),
-                      self.sd)
-        r = (out - self.y) / sd
+        r = (out - self.y) / self._data_sd(out)
         r = np.where(np.isfinite(r), r, 1e3)  # no steady state at these parameters: far from the data
         prior = (Z - self.pm) / self.ps
         return np.concatenate([r, prior], axis=1)
+
+    def log_posterior(self, Z):
+        """Unnormalised log posterior density of rows of Z (K,) on the transformed scale.
+
+        The measurement SD depends on the model's value, so the Gaussian likelihood keeps its
+        ``-log(sd)`` term; without it the density would favour parameters that predict larger values.
+        """
+        out = self.model_outputs(Z)
+        sd = self._data_sd(out)
+        r = np.where(np.isfinite(out), (out - self.y) / sd, 1e3)
+        prior = (Z - self.pm) / self.ps
+        return -0.5 * (np.sum(r ** 2, axis=1) + np.sum(prior ** 2, axis=1)) - np.sum(np.log(sd), axis=1)
 
 
 def _fill_optional(s: Settings) -> Settings:
@@ -357,7 +377,7 @@ def _quantities(pred: Prediction) -> dict:
             "cardiac_output": np.atleast_1d(pred.cardiac_output)}
 
 
-def fit(patient: Patient, observations, n_draws: int = 400, seed: int = 0, max_nfev: int = 60) -> FitResult:
+def fit(patient: Patient, observations, n_draws: int = 200, seed: int = 0, max_nfev: int = 60) -> FitResult:
     """Fit the patient model to one or more observations (see module notes).
 
     Parameters
@@ -365,7 +385,7 @@ def fit(patient: Patient, observations, n_draws: int = 400, seed: int = 0, max_n
     patient : Patient
     observations : sequence of Observation (each with the settings in force when taken)
     n_draws : int
-        Parameter draws kept for likely ranges [count], >= 200.
+        Parameter draws kept for likely ranges [count], >= 200 (the calibration test uses 200).
     seed : int
         Seed of the draws (fits are reproducible).
     max_nfev : int
@@ -420,7 +440,11 @@ def fit(patient: Patient, observations, n_draws: int = 400, seed: int = 0, max_n
     values_hat = problem.values(sol.x[None, :])
     estimates = {n: float(v[0]) for n, v in values_hat.items()}
     rng = np.random.default_rng(seed)
-    Zd, ess = _posterior_draws(problem, sol.x, cov, n_draws, rng)
+    try:
+        Zd, sampler = _posterior_draws(problem, cov, n_draws, rng)
+        sampled = ""
+    except ArithmeticError as exc:  # no likely range can be given: say so, never a made-up one
+        Zd, sampled, sampler = np.repeat(sol.x[None, :], n_draws, axis=0), str(exc), {}
     vd = problem.values(Zd)
     ranges = {n: (float(np.percentile(vd[n], 5)), float(np.percentile(vd[n], 95))) for n in free}
     model = build_model(patient, {n: float(v[0]) for n, v in values_hat.items()}, problem.mean_paw_ref)
@@ -433,6 +457,9 @@ def fit(patient: Patient, observations, n_draws: int = 400, seed: int = 0, max_n
     converged = bool(sol.success) and np.all(np.abs(data_r) < 1e2)
     if not converged:
         message = f"the fit did not converge: {sol.message}"
+    elif sampled:
+        converged = False
+        message = f"fitted, but no likely range could be computed: {sampled}"
     elif poor:
         message = "fitted, but the model does not reproduce " + ", ".join(
             f"{q} of observation {i + 1} ({v:+.1f} SD)" for i, q, v in poor)
@@ -441,27 +468,29 @@ def fit(patient: Patient, observations, n_draws: int = 400, seed: int = 0, max_n
     return FitResult(success=converged, message=message, model=model, estimates=estimates, ranges=ranges,
                      draws=draws, z_hat=sol.x, covariance=cov, identifiability=ident, warnings=warnings,
                      residuals=residuals, cost=float(sol.cost), patient=patient, observations=observations,
-                     free=tuple(free))
+                     free=tuple(free), sampler=sampler)
 
 
-#: Importance sampling: proposals per kept draw, and the defensive mixture used as proposal
-#: (share, kind, widening): a Student-t around the mode, a wider Gaussian, and the prior itself.
-PROPOSALS_PER_DRAW = 5
-PROPOSAL_MIXTURE = ((0.5, "t", 1.0), (0.2, "gauss", 2.0), (0.3, "prior", 1.0))
-PROPOSAL_DF = 4.0
+#: Sequential Monte Carlo sampler: effective sample size kept at each tempering stage (share of the
+#: draws); moves per stage; the most moves at the final stage, which moves until a draw has stayed
+#: put with at most STAY_PROBABILITY; the share of moves that are independence proposals and how
+#: much wider than the draws those proposals are; the most stages before the sampler gives up.
+STAGE_ESS = 0.5
+MOVES_PER_STAGE = 4
+MOVES_FINAL_MAX = 40
+STAY_PROBABILITY = 0.03
+INDEPENDENT_SHARE = 0.5
+INDEPENDENT_WIDEN = 1.3
+INDEPENDENT_DF = 4.0
+MAX_STAGES = 30
 
 
 def _log_mvt(d, inv_cov, logdet, df):
+    """Log density of a multivariate Student-t (location already subtracted in ``d``)."""
     p = d.shape[1]
     q = np.einsum("ij,jk,ik->i", d, inv_cov, d)
-    from scipy.special import gammaln
     return (gammaln((df + p) / 2) - gammaln(df / 2) - 0.5 * p * np.log(df * np.pi) - 0.5 * logdet
             - 0.5 * (df + p) * np.log1p(q / df))
-
-
-def _log_mvn(d, inv_cov, logdet):
-    p = d.shape[1]
-    return -0.5 * (np.einsum("ij,jk,ik->i", d, inv_cov, d) + logdet + p * np.log(2 * np.pi))
 
 
 def _sqrt_psd(c):
@@ -469,52 +498,108 @@ def _sqrt_psd(c):
     return v * np.sqrt(np.maximum(w, 1e-12))
 
 
-def _posterior_draws(problem: "_Problem", z_hat, cov, n_draws, rng):
-    """Draws from the posterior by defensive importance sampling.
+def _next_beta(beta, increment, target_ess):
+    """Largest tempering step from ``beta`` whose weights keep an effective sample size >= target."""
+    def ess(b):
+        lw = (b - beta) * increment
+        lw = lw - lw.max()
+        w = np.exp(lw)
+        return w.sum() ** 2 / np.sum(w ** 2)
 
-    The Laplace (Gauss-Newton) Gaussian misjudges the posterior where the model is strongly
-    nonlinear (recruitability whose effect vanishes once the lung is open, for instance), so it
-    only seeds a defensive mixture proposal: a Student-t around the mode, a twice-as-wide Gaussian,
-    and the prior. Importance weights come from the exact (unnormalised) posterior over the whole
-    mixture density; systematic resampling gives ``n_draws`` equally weighted draws.
+    if ess(1.0) >= target_ess:
+        return 1.0
+    lo, hi = beta, 1.0
+    for _ in range(40):
+        mid = 0.5 * (lo + hi)
+        lo, hi = (mid, hi) if ess(mid) >= target_ess else (lo, mid)
+    return max(lo, beta + 1e-6)
 
-    Returns the draws (n_draws, p) and the effective sample size of the weighted proposals.
+
+def _posterior_draws(problem: "_Problem", cov, n_draws, rng):
+    """Draws from the posterior by a likelihood-tempered sequential Monte Carlo sampler.
+
+    The draws start as exact draws from the prior and travel to the posterior through the tempered
+    densities prior x likelihood^beta. At each stage beta rises as far as the importance weights
+    allow (effective sample size >= half the draws); the draws are resampled (systematic) and moved
+    by Metropolis steps that leave the tempered density unchanged: half random-walk steps with the
+    draws' own covariance, half independence proposals from a Student-t fitted to the draws (so a
+    draw can cross the whole posterior in one move). At beta = 1 the moves go on until a draw has
+    stayed put with probability below ``STAY_PROBABILITY``, judged from the acceptance measured there.
+
+    Why not the Laplace approximation: with one blood gas the posterior is a curved ridge (shunt
+    against V/Q mismatch, recruitable against fixed shunt). Measured on synthetic patients, draws
+    from importance sampling around the Laplace Gaussian, even followed by 20 random-walk moves,
+    gave PaO2 likely ranges covering the truth in only about 0.82 of cases; starting from the
+    prior covers the ridge.
+
+    ``cov`` (the Laplace covariance) only stands in for the draws' covariance if that is singular.
+    Returns the draws (n_draws, p) and a dict: stages, moves, acceptance per move
+    (beta, independence share accepted, random-walk share accepted).
+
+    References: Del Moral P, Doucet A, Jasra A. Sequential Monte Carlo samplers. J R Stat Soc B
+    2006;68:411-436. South LF, Pettitt AN, Drovandi CC. Sequential Monte Carlo samplers with
+    independent Markov chain Monte Carlo proposals. Bayesian Anal 2019;14:753-776.
     """
-    m = PROPOSALS_PER_DRAW * n_draws
-    p = z_hat.size
-    prior_cov = np.diag(problem.ps ** 2)
-    comps = []
-    for share, kind, widen in PROPOSAL_MIXTURE:
-        if kind == "prior":
-            mean, c = problem.pm, prior_cov
-        else:
-            mean, c = z_hat, widen ** 2 * cov
-        c = 0.5 * (c + c.T) + 1e-9 * np.eye(p)
-        sign, logdet = np.linalg.slogdet(c)
-        comps.append((share, kind, mean, c, np.linalg.inv(c), logdet))
-    counts = rng.multinomial(m, [cp[0] for cp in comps])
-    parts = []
-    for (share, kind, mean, c, inv, logdet), k in zip(comps, counts):
-        y = rng.standard_normal((k, p)) @ _sqrt_psd(c).T
-        if kind == "t":
-            y = y / np.sqrt(rng.chisquare(PROPOSAL_DF, size=(k, 1)) / PROPOSAL_DF)
-        parts.append(mean + y)
-    Z = np.vstack(parts)
-    log_q_parts = []
-    for share, kind, mean, c, inv, logdet in comps:
+    p = problem.pm.size
+    Z = problem.pm + rng.standard_normal((n_draws, p)) * problem.ps
+
+    def log_prior(Zs):
+        return -0.5 * np.sum(((Zs - problem.pm) / problem.ps) ** 2, axis=1)
+
+    lprior = log_prior(Z)
+    loglik = problem.log_posterior(Z) - lprior
+    beta, stages, moves = 0.0, 0, 0
+    acceptance = []
+    while beta < 1.0:
+        if stages >= MAX_STAGES:
+            raise ArithmeticError(f"the posterior sampler did not reach the posterior in {MAX_STAGES} stages")
+        stages += 1
+        new_beta = _next_beta(beta, loglik, STAGE_ESS * n_draws)
+        lw = (new_beta - beta) * loglik
+        w = np.exp(lw - lw.max())
+        w /= w.sum()
+        mean = w @ Z
         d = Z - mean
-        lq = _log_mvt(d, inv, logdet, PROPOSAL_DF) if kind == "t" else _log_mvn(d, inv, logdet)
-        log_q_parts.append(np.log(share) + lq)
-    log_q = np.logaddexp.reduce(np.vstack(log_q_parts), axis=0)
-    R = problem.residuals(Z)
-    log_w = -0.5 * np.sum(R ** 2, axis=1) - log_q
-    log_w -= log_w.max()
-    w = np.exp(log_w)
-    w /= w.sum()
-    ess = 1.0 / np.sum(w ** 2)
-    positions = (rng.uniform() + np.arange(n_draws)) / n_draws
-    idx = np.minimum(np.searchsorted(np.cumsum(w), positions), m - 1)
-    return Z[idx], float(ess)
+        pop_cov = (d * w[:, None]).T @ d
+        if not _is_pd(pop_cov + 1e-10 * np.eye(p)):
+            pop_cov = cov
+        beta = new_beta
+        positions = (rng.uniform() + np.arange(n_draws)) / n_draws
+        idx = np.minimum(np.searchsorted(np.cumsum(w), positions), n_draws - 1)
+        Z, lprior, loglik = Z[idx], lprior[idx], loglik[idx]
+        step = _sqrt_psd((2.38 ** 2 / p) * pop_cov + 1e-10 * np.eye(p))
+        ind_cov = INDEPENDENT_WIDEN ** 2 * pop_cov + 1e-10 * np.eye(p)
+        ind_root, ind_inv = _sqrt_psd(ind_cov), np.linalg.inv(ind_cov)
+        ind_logdet = np.linalg.slogdet(ind_cov)[1]
+        n_moves = MOVES_PER_STAGE if beta < 1.0 else MOVES_FINAL_MAX
+        for move in range(n_moves):
+            if beta >= 1.0 and move >= MOVES_PER_STAGE and move >= _moves_needed(acceptance[-move:]):
+                break
+            independent = rng.uniform(size=n_draws) < INDEPENDENT_SHARE
+            walk = Z + rng.standard_normal(Z.shape) @ step.T
+            jump = mean + (rng.standard_normal(Z.shape) @ ind_root.T) / np.sqrt(
+                rng.chisquare(INDEPENDENT_DF, size=(n_draws, 1)) / INDEPENDENT_DF)
+            prop = np.where(independent[:, None], jump, walk)
+            lprior_new = log_prior(prop)
+            loglik_new = problem.log_posterior(prop) - lprior_new
+            log_ratio = (lprior_new - lprior) + beta * (loglik_new - loglik)
+            # Hastings correction for the independence proposals (the random walk is symmetric).
+            log_ratio += np.where(independent, _log_mvt(Z - mean, ind_inv, ind_logdet, INDEPENDENT_DF)
+                                  - _log_mvt(prop - mean, ind_inv, ind_logdet, INDEPENDENT_DF), 0.0)
+            accept = np.log(rng.uniform(size=n_draws)) < log_ratio
+            Z[accept], lprior[accept], loglik[accept] = prop[accept], lprior_new[accept], loglik_new[accept]
+            acceptance.append((beta, float(np.mean(accept[independent])) if independent.any() else np.nan,
+                               float(np.mean(accept[~independent])) if (~independent).any() else np.nan))
+        moves += move + 1
+    return Z, {"stages": stages, "moves": moves, "acceptance": acceptance}
+
+
+def _moves_needed(acceptance) -> int:
+    """Moves after which a draw has stayed put with probability below ``STAY_PROBABILITY``, at the
+    acceptance rate measured so far in the final stage (South, Pettitt & Drovandi 2019)."""
+    rates = [np.nanmean([a, b]) for _beta, a, b in acceptance]
+    rate = float(np.clip(np.mean(rates), 0.02, 0.99)) if rates else 0.5
+    return int(np.ceil(np.log(STAY_PROBABILITY) / np.log1p(-rate)))
 
 
 def _is_pd(c):
