@@ -137,8 +137,10 @@ def _cmd_predict(args) -> int:
             lo, hi = rng[short]
             band = f"{lo:.{d}f} to {hi:.{d}f}"
         print(f"  {title:<22} {_num(out['steady'][key], d):>9} {unit:<9} {band}")
-    if out.get("recheck_after_min") is not None:
-        print(f"\nRe-check a blood gas after about {out['recheck_after_min']:.0f} min (90 % of the change).")
+    if out["settings"] == out.get("current_settings"):
+        print("\nThe trial equals the current settings: no change is expected.")
+    elif out.get("recheck_after_min") is not None:
+        print(f"\nRe-check a blood gas after about {max(out['recheck_after_min'], 1):.0f} min (90 % of the change).")
     if out["next_best_measurement"]:
         nb = out["next_best_measurement"][0]
         print(f"Next best measurement: {nb['probe']} - {nb['why']}.")

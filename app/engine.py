@@ -260,6 +260,7 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
     ranges, _table, ok_share = likely_range(result, trial)
     out = {
         "settings": trial_dict,
+        "current_settings": check_settings("settings", dict(case["settings"]), float(result.patient.pbw_kg)),
         "now": now_block(case),
         "fit": fit_block(result, current),
         "steady": steady,
@@ -317,6 +318,10 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
     return out
 
 
+#: Parameter draws integrated together when computing a course's likely range.
+BAND_CHUNK = 25
+
+
 def _band(result, current, trial, minutes, n=200):
     """Courses of up to ``n`` parameter draws that have a steady state at both settings, or None.
 
@@ -329,7 +334,10 @@ def _band(result, current, trial, minutes, n=200):
     idx = np.flatnonzero(ok)[:n]
     if idx.size < 50:
         return None
-    parts = _courses(draws, idx, current, trial, minutes)
+    # In chunks: one batch of 200 courses holds per-unit arrays of every draw at every output time
+    # (about 170 MB at its peak); chunks of 25 keep the window's memory in bounds at about the same speed.
+    parts = [p for start in range(0, idx.size, BAND_CHUNK)
+             for p in _courses(draws, idx[start:start + BAND_CHUNK], current, trial, minutes)]
     kept = sum(p[0].shape[0] for p in parts)
     if kept < 50:
         return None

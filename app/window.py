@@ -831,7 +831,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self._fill_compare(out["compare"], out["likely_range"], out["active"])
         self._fill_limits(out["limit_lines"])
         r = out.get("recheck_after_min")
-        unchanged = out["trial_settings"] == check_settings("settings", dict(self.state.case["settings"]), self._pbw())
+        unchanged = out["settings"] == out["current_settings"]
         self.recheck_label.setText(
             "The trial equals the current settings: no change is expected." if unchanged else
             "" if r is None else f"Re-check a blood gas after about {max(r, 1):.0f} min (90 % of the PaO2 and "

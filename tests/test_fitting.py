@@ -120,7 +120,7 @@ def test_likely_range_is_calibrated():
     RR +2) covers the true value in 85-95 % of cases (the issue's criterion; a range that is exact
     covers 90 %, with a binomial SD of about 2 % over 200 cases).
 
-    Measured with the tempered SMC sampler: about 0.88-0.90 (PaO2) and 0.89-0.91 (PaCO2) on this
+    Measured with the tempered SMC sampler: 0.88 (PaO2) and 0.905 (PaCO2) on this
     set; importance sampling around the Laplace Gaussian gave 0.82 (PaO2) before it was replaced."""
     rng = np.random.default_rng(5)
     hits = {"pao2": [], "paco2": []}

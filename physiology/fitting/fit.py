@@ -15,8 +15,8 @@ approximated by a Gaussian on the transformed scale with covariance ``(J^T J)^-1
 likely ranges come from posterior draws by a likelihood-tempered sequential Monte Carlo sampler
 (:func:`_posterior_draws`): the 90 % likely range of any forecast is the 5th to 95th percentile
 over the draws. Measured on 200 synthetic patients drawn from the priors (one or two blood gases,
-a forecast after an FiO2, PEEP and rate change): the range covers the truth in about 0.9 of cases
-for PaO2 and PaCO2 (``tests/test_fitting.py``); draws around the Laplace Gaussian instead covered
+a forecast after an FiO2, PEEP and rate change): the range covers the truth in 0.88 (PaO2) and
+0.905 (PaCO2) of cases (``tests/test_fitting.py``); draws around the Laplace Gaussian instead covered
 PaO2 in only about 0.82.
 
 Cardiac output and VO2 are unknown nuisance parameters with population priors (not

@@ -140,7 +140,7 @@ def bench_fit(results: dict) -> None:
 
 
 WINDOW_PROBE = r"""
-import os, resource, sys, time
+import os, sys, time
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
 from PySide6 import QtWidgets
 from app.casefile import load_demo
@@ -155,7 +155,9 @@ w.band_shown.connect(lambda _r: done.append(1))
 while not done:
     app.processEvents()
     time.sleep(0.005)
-print(shown, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0)
+# VmHWM, not ru_maxrss: Linux carries ru_maxrss over from the forking parent across exec.
+hwm = next(line for line in open("/proc/self/status") if line.startswith("VmHWM:"))
+print(shown, float(hwm.split()[1]) / 1024.0)
 w.close()
 os._exit(0)
 """
