@@ -510,8 +510,9 @@ def simulate(patient: PatientModel, settings_now: Settings, changes=(), minutes:
     pieces, outs, target = [], [], start
     u = u0
     first_change_t = None
-    # A batch of draws feeds a likely-range band: a looser tolerance (PaO2 within ~0.2 mmHg) is enough.
-    opts = {"rtol": 1e-4 if b == 1 else 1e-3, "atol": _atol(b), **solver_options}
+    # rtol 1e-3: measured against rtol 1e-6 on a PEEP/FiO2/mode change, the course differs by at most
+    # 0.08 mmHg (PaO2) and 0.01 mmHg (PaCO2) and the re-check time by 0.02 min; 1e-4 cost 30 % more time.
+    opts = {"rtol": 1e-3, "atol": _atol(b), **solver_options}
     for s_i in range(len(bounds) - 1):
         t0, t1 = bounds[s_i], bounds[s_i + 1]
         if s_i > 0:
