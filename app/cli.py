@@ -20,8 +20,6 @@ EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_MODEL = 0, 1, 2, 3
 
 #: Verbs whose capability has not landed yet: they refuse honestly.
 NOT_YET = {
-    "plan": "the goal search",
-    "wean": "step-down plans",
     "walkthrough": "walkthroughs",
     "report": "PDF reports",
     "import-fhir": "FHIR import",
@@ -208,6 +206,78 @@ def _parse_size(text: str) -> tuple[int, int]:
     return w, h
 
 
+def _settings_line(s: dict) -> str:
+    drive = f"VT {s['vt_ml']:g} mL" if s["mode"] == "volume" else f"Pinsp {s['inspiratory_pressure_cmh2o']:g} cmH2O"
+    return (f"{s['mode']} control, FiO2 {s['fio2']:.2f}, PEEP {s['peep_cmh2o']:g} cmH2O, {drive}, "
+            f"RR {s['rr_per_min']:g}/min, Ti {s['inspiratory_time_s']:g} s")
+
+
+def _cmd_plan(args) -> int:
+    from .engine import plan_case
+    case = _load_case(args)
+    if not 0.5 <= args.probability < 1.0:
+        raise CaseError("--probability", f"value {args.probability:g} is outside the accepted range 0.5 to below 1")
+    out = plan_case(case, required_probability=args.probability)
+    if args.format == "json":
+        print(json.dumps(out))
+        return EXIT_OK
+    print(f"Options for the case's goals ({out['message']}).")
+    print(f"Screened {out['screened']} candidate settings; gas exchange for {out['gas_exchange_evaluated']}; "
+          f"probability over the fit's parameter draws for {out['probability_evaluated']}.")
+    if out["binding_constraint"]:
+        print(f"Binding constraint: {out['binding_constraint']}.")
+    for i, o in enumerate(out["options"], 1):
+        st = o["steady"]
+        mark = "meets every goal" if o["probability_all_goals"] >= out["required_probability"] else "closest"
+        print(f"\n{i}. {_settings_line(o['settings'])}")
+        print(f"   changes: {', '.join(o['changes']) or 'none'}")
+        print(f"   PaO2 {st['pao2_mmhg']:.0f} mmHg, SaO2 {st['sao2']:.3f}, PaCO2 {st['paco2_mmhg']:.1f} mmHg, pH "
+              f"{st['ph']:.2f}, Pplat {st['pplat_cmh2o']:.1f}, driving pressure {st['driving_pressure_cmh2o']:.1f} cmH2O, "
+              f"mechanical power {st['mechanical_power_j_min']:.1f} J/min")
+        misses = ", ".join(f"{k} {100 * v:.0f} %" for k, v in o["misses"].items())
+        print(f"   probability of meeting every goal and limit: {100 * o['probability_all_goals']:.0f} % ({mark})"
+              + (f"; misses in the draws: {misses}" if misses else ""))
+    print()
+    print(CAUTION)
+    return EXIT_OK
+
+
+def _cmd_wean(args) -> int:
+    from .engine import wean_case
+    case = _load_case(args)
+    if not 0.21 <= args.target_fio2 <= 1.0:
+        raise CaseError("--target-fio2", f"value {args.target_fio2:g} is outside the accepted range 0.21 to 1.0")
+    if not 0 <= args.target_peep <= 30:
+        raise CaseError("--target-peep", f"value {args.target_peep:g} is outside the accepted range 0 to 30 cmH2O")
+    for name, v, lo, hi in (("--spontaneous-rr", args.spontaneous_rr, 1, 80),
+                            ("--spontaneous-vt-ml", args.spontaneous_vt_ml, 50, 2000)):
+        if v is not None and not lo <= v <= hi:
+            raise CaseError(name, f"value {v:g} is outside the accepted range {lo} to {hi}")
+    out = wean_case(case, table=args.table, target_fio2=args.target_fio2, target_peep=args.target_peep,
+                    spontaneous_rr=args.spontaneous_rr, spontaneous_vt_ml=args.spontaneous_vt_ml)
+    if args.format == "json":
+        print(json.dumps(out))
+        return EXIT_OK
+    how = f"following the ARDS Network {args.table} table" if args.table else "model-driven"
+    print(f"Step-down plan ({how}) toward FiO2 <= {args.target_fio2:.2f} and PEEP <= {args.target_peep:g} cmH2O: "
+          f"{out['message']}.")
+    for i, st in enumerate(out["steps"], 1):
+        v, r = st["steady"], st["likely_range"]
+        print(f"\n{i}. {st['change']} ({st['why']})")
+        print(f"   SaO2 {v['sao2']:.3f} ({r['sao2'][0]:.3f} to {r['sao2'][1]:.3f}), PaO2 {v['pao2_mmhg']:.0f} mmHg "
+              f"({r['pao2_mmhg'][0]:.0f} to {r['pao2_mmhg'][1]:.0f}), PaCO2 {v['paco2_mmhg']:.1f} mmHg, pH {v['ph']:.2f}")
+        hold = "-" if st["hold_min"] is None else f"{st['hold_min']:.0f} min"
+        print(f"   hold at least {hold} (90 % of the change), then check; {st['stop_if']}")
+    print("\nReadiness for a spontaneous breathing trial at the last step:")
+    for c in out["readiness"]:
+        mark = {True: "[ok]", False: "[no]", None: "[ ?]"}[c["met"]]
+        value = "" if c["value"] is None else f" (value {c['value']:g})"
+        print(f"  {mark} {c['criterion']}{value} - {c['source']}" + (f"; {c['note']}" if c.get("note") else ""))
+    print()
+    print(CAUTION)
+    return EXIT_OK
+
+
 def _not_yet(verb):
     def run(args) -> int:
         print(f"ventcast {verb}: not available yet ({NOT_YET[verb]} has not been built in this version).",
@@ -234,6 +304,23 @@ def build_parser() -> argparse.ArgumentParser:
             p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                            help="change one setting for the trial (a case-file settings key)")
             p.add_argument("--minutes", type=float, default=60.0, help="length of the course [min]")
+        p.set_defaults(run=run)
+    for verb, run, help_ in (("plan", _cmd_plan, "options: settings that meet the case's goals within the limits"),
+                             ("wean", _cmd_wean, "a step-down plan toward readiness for a spontaneous breathing trial")):
+        p = sub.add_parser(verb, help=help_)
+        p.add_argument("case", nargs="?", help="case file (.ventcast.json)")
+        p.add_argument("--demo", choices=DEMO_NAMES, help="use a built-in demo case instead of CASE")
+        p.add_argument("--format", choices=("table", "json"), default="table")
+        if verb == "plan":
+            p.add_argument("--probability", type=float, default=0.9,
+                           help="probability of meeting every goal an option needs (default 0.9)")
+        else:
+            p.add_argument("--table", choices=("lower-peep", "higher-peep"), default=None,
+                           help="follow this ARDS Network PEEP/FiO2 table (default: model-driven)")
+            p.add_argument("--target-fio2", type=float, default=0.4)
+            p.add_argument("--target-peep", type=float, default=8.0)
+            p.add_argument("--spontaneous-rr", type=float, default=None, help="spontaneous rate for the RSBI [/min]")
+            p.add_argument("--spontaneous-vt-ml", type=float, default=None, help="spontaneous VT for the RSBI [mL]")
         p.set_defaults(run=run)
     op = sub.add_parser("open", help="open the window on a case (the ards-moderate demo when none is given)")
     op.add_argument("case", nargs="?", help="case file (.ventcast.json)")

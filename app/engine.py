@@ -16,6 +16,8 @@ from physiology.forecast import predict
 from physiology.indices import oxygenation_index
 from physiology.mechanics.motion import mean_airway_pressure, mechanical_power_simplified
 from physiology.mechanics.ventilator import Settings
+from physiology.planning.search import Goals, search
+from physiology.planning.stepdown import step_down
 from physiology.protocols import LIMITS
 
 from . import CAUTION
@@ -377,3 +379,60 @@ def _take(draws, idx):
         else:
             sub[f.name] = np.asarray(v)[idx] if np.ndim(v) else v
     return replace(draws, **sub)
+
+
+def settings_dict(s: Settings) -> dict:
+    """Engine Settings (scalars) as case-file settings keys."""
+    return {"mode": s.mode, "fio2": round(float(s.fio2), 2), "peep_cmh2o": float(s.peep),
+            "vt_ml": None if s.vt_ml is None else float(s.vt_ml),
+            "inspiratory_pressure_cmh2o": None if s.inspiratory_pressure is None else float(s.inspiratory_pressure),
+            "rr_per_min": float(s.rr), "inspiratory_time_s": float(s.ti),
+            "apparatus_dead_space_ml": float(s.apparatus_dead_space_ml or 0.0)}
+
+
+def case_goals(case: dict) -> Goals:
+    try:
+        return Goals.from_case(case.get("goals"))
+    except ValueError as exc:
+        raise CaseError("goals", str(exc)) from None
+
+
+def plan_case(case: dict, result=None, required_probability: float = 0.9, progress=None) -> dict:
+    """Options that meet the case's goals: the ``plan`` JSON of the README."""
+    if result is None:
+        _p, _o, result = fit_case(case)
+    goals = case_goals(case)
+    now = to_settings(case["settings"])
+    res = search(result.model, result.draws, now, goals, float(result.patient.pbw_kg),
+                 required_probability=required_probability, progress=progress)
+    options = []
+    for i, c in enumerate(res.options):
+        steady = steady_block(predict(result.model, c.settings))
+        options.append({"settings": settings_dict(c.settings), "steady": steady,
+                        "probability_all_goals": round(c.probability, 3), "changes": list(c.changes),
+                        "meets_goals_at_fit": c.map_meets,
+                        "misses": {k: round(v, 3) for k, v in sorted(c.failures.items(), key=lambda kv: -kv[1])}})
+    return {"goals": goals.as_dict(), "success": res.success, "message": res.message, "met": res.met,
+            "required_probability": required_probability, "options": options,
+            "binding_constraint": res.binding_constraint,
+            "screened": res.screened, "gas_exchange_evaluated": res.evaluated, "probability_evaluated": res.ranked,
+            "caution": CAUTION}
+
+
+def wean_case(case: dict, result=None, table: str | None = None, target_fio2: float = 0.4, target_peep: float = 8.0,
+              spontaneous_rr: float | None = None, spontaneous_vt_ml: float | None = None) -> dict:
+    """A step-down plan for the case: the ``wean`` JSON of the README."""
+    if result is None:
+        _p, _o, result = fit_case(case)
+    goals = case_goals(case)
+    now = to_settings(case["settings"])
+    res = step_down(result.model, result.draws, now, goals, target_fio2=target_fio2, target_peep=target_peep,
+                    table=table, spontaneous_rr=spontaneous_rr, spontaneous_vt_ml=spontaneous_vt_ml)
+    steps = [{"settings": settings_dict(st.settings), "change": st.change, "why": st.why,
+              "steady": steady_block(st.forecast),
+              "likely_range": {"pao2_mmhg": list(st.likely_range["pao2"]), "paco2_mmhg": list(st.likely_range["paco2"]),
+                               "ph": list(st.likely_range["ph"]), "sao2": list(st.likely_range["sao2"])},
+              "hold_min": _f(st.hold_min), "stop_if": st.stop_if} for st in res.steps]
+    return {"goals": goals.as_dict(), "table": table, "target": {"fio2": target_fio2, "peep_cmh2o": target_peep},
+            "success": res.success, "message": res.message, "steps": steps, "reached_target": res.reached_target,
+            "stopped_because": res.stopped_because, "readiness": res.readiness, "caution": CAUTION}

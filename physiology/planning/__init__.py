@@ -1,0 +1,1 @@
+"""Options (goal search over a grid of settings) and step-down plans."""
