@@ -329,7 +329,8 @@ def build_parser() -> argparse.ArgumentParser:
     op.add_argument("--size", default="1600x1000", metavar="WxH", help="screenshot size in pixels")
     op.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                     help="start Trial A from the case settings with this change (a case-file settings key)")
-    op.add_argument("--tab", choices=("limits", "lung-fit"), default="limits", help="right-hand panel shown")
+    op.add_argument("--tab", choices=("limits", "lung-fit", "options", "step-down"), default="limits",
+                    help="right-hand panel shown (with --screenshot, options and step-down are computed first)")
     op.add_argument("--quit-after", type=float, default=None, metavar="SECONDS", help=argparse.SUPPRESS)
     op.set_defaults(run=_cmd_open)
     for verb in NOT_YET:

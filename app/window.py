@@ -25,7 +25,8 @@ from physiology.forecast import predict
 from . import CAUTION, __doc__ as _pkg_doc  # noqa: F401
 from .bedside import bedside_indices
 from .casefile import CaseError, check_settings, dumps, load, load_demo, loads, write_atomic
-from .engine import apply_sets, fit_case, forecast_fitted, limit_checks, now_block, steady_block, to_settings
+from .engine import (apply_sets, fit_case, forecast_fitted, limit_checks, now_block, plan_case, steady_block,
+                     to_settings, wean_case)
 from .worker import EngineRunner
 
 APP_NAME = "Ventcast"
@@ -209,6 +210,8 @@ class MainWindow(QtWidgets.QMainWindow):
     steady_shown = QtCore.Signal(object)     # stage 1: steady states and Limits on screen
     forecast_shown = QtCore.Signal(object)   # stage 2: the course drawn
     band_shown = QtCore.Signal(object)
+    plan_shown = QtCore.Signal(object)
+    wean_shown = QtCore.Signal(object)
     fit_shown = QtCore.Signal(object)
     failure_shown = QtCore.Signal(str)
 
@@ -464,9 +467,153 @@ class MainWindow(QtWidgets.QMainWindow):
         self.vq_text.setWordWrap(True)
         fl.addWidget(self.vq_text)
         tabs.addTab(fitw, "Lung fit")
+        tabs.addTab(self._build_options(), "Options")
+        tabs.addTab(self._build_stepdown(), "Step-down plan")
         tabs.setMinimumWidth(380)
         self.right_tabs = tabs
         return tabs
+
+    def _build_options(self):
+        w = QtWidgets.QWidget()
+        lay = QtWidgets.QVBoxLayout(w)
+        self.options_button = QtWidgets.QPushButton("Find settings that meet the goals")
+        self.options_button.clicked.connect(self.find_options)
+        lay.addWidget(self.options_button)
+        self.options_message = QtWidgets.QLabel("Searches tens of thousands of settings within the Limits, then checks "
+                                                "the best 50 against the fit's parameter draws.")
+        self.options_message.setWordWrap(True)
+        lay.addWidget(self.options_message)
+        self.options_table = QtWidgets.QTableWidget(0, 3)
+        self.options_table.setHorizontalHeaderLabels(["probability", "changes from now", "forecast"])
+        self.options_table.verticalHeader().hide()
+        self.options_table.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
+        self.options_table.setSelectionBehavior(QtWidgets.QAbstractItemView.SelectRows)
+        self.options_table.setWordWrap(True)
+        self.options_table.horizontalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeToContents)
+        self.options_table.horizontalHeader().setStretchLastSection(True)
+        self.options_table.cellDoubleClicked.connect(lambda row, _col: self.use_option(row))
+        lay.addWidget(self.options_table, 1)
+        self.use_option_button = QtWidgets.QPushButton("Try the selected option in the current trial")
+        self.use_option_button.clicked.connect(lambda: self.use_option(self.options_table.currentRow()))
+        lay.addWidget(self.use_option_button)
+        self.last_plan = None
+        return w
+
+    def _build_stepdown(self):
+        w = QtWidgets.QWidget()
+        lay = QtWidgets.QVBoxLayout(w)
+        form = QtWidgets.QFormLayout()
+        self.wean_table_choice = QtWidgets.QComboBox()
+        self.wean_table_choice.addItems(["model-driven", "ARDS Network lower-PEEP table", "ARDS Network higher-PEEP table"])
+        form.addRow("Steps", self.wean_table_choice)
+        self.wean_fio2 = QtWidgets.QDoubleSpinBox()
+        self.wean_fio2.setRange(0.21, 1.0)
+        self.wean_fio2.setSingleStep(0.05)
+        self.wean_fio2.setValue(0.4)
+        form.addRow("Target FiO2 at most", self.wean_fio2)
+        self.wean_peep = QtWidgets.QDoubleSpinBox()
+        self.wean_peep.setRange(0, 30)
+        self.wean_peep.setDecimals(0)
+        self.wean_peep.setValue(8)
+        self.wean_peep.setSuffix(" cmH2O")
+        form.addRow("Target PEEP at most", self.wean_peep)
+        self.spont_rr = QtWidgets.QDoubleSpinBox()
+        self.spont_rr.setRange(0, 80)
+        self.spont_rr.setDecimals(0)
+        self.spont_rr.setSpecialValueText("not entered")
+        self.spont_rr.setSuffix(" /min")
+        form.addRow("Spontaneous rate (for RSBI)", self.spont_rr)
+        self.spont_vt = QtWidgets.QDoubleSpinBox()
+        self.spont_vt.setRange(0, 2000)
+        self.spont_vt.setDecimals(0)
+        self.spont_vt.setSingleStep(10)
+        self.spont_vt.setSpecialValueText("not entered")
+        self.spont_vt.setSuffix(" mL")
+        form.addRow("Spontaneous VT (for RSBI)", self.spont_vt)
+        lay.addLayout(form)
+        self.wean_button = QtWidgets.QPushButton("Plan the step-down")
+        self.wean_button.clicked.connect(self.plan_step_down)
+        lay.addWidget(self.wean_button)
+        self.wean_message = QtWidgets.QLabel("")
+        self.wean_message.setWordWrap(True)
+        lay.addWidget(self.wean_message)
+        self.wean_steps = QtWidgets.QTableWidget(0, 3)
+        self.wean_steps.setHorizontalHeaderLabels(["step", "forecast (likely range 90 %)", "hold"])
+        self.wean_steps.verticalHeader().hide()
+        self.wean_steps.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
+        self.wean_steps.setWordWrap(True)
+        self.wean_steps.horizontalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeToContents)
+        self.wean_steps.horizontalHeader().setStretchLastSection(True)
+        lay.addWidget(self.wean_steps, 1)
+        self.wean_readiness = QtWidgets.QLabel("")
+        self.wean_readiness.setWordWrap(True)
+        lay.addWidget(self.wean_readiness)
+        self.last_wean = None
+        return w
+
+    def find_options(self):
+        if self.fit_result is None:
+            self.status.setText("\u2716 the lung model is not fitted yet")
+            return
+        case, result = copy.deepcopy(self.state.case), self.fit_result
+        self.options_message.setText("searching...")
+        self._start_busy(cancellable=True, kind="plan")
+        self.runner.submit("plan", lambda: plan_case(case, result))
+
+    def plan_step_down(self):
+        if self.fit_result is None:
+            self.status.setText("\u2716 the lung model is not fitted yet")
+            return
+        case, result = copy.deepcopy(self.state.case), self.fit_result
+        table = (None, "lower-peep", "higher-peep")[self.wean_table_choice.currentIndex()]
+        fio2, peep = float(self.wean_fio2.value()), float(self.wean_peep.value())
+        rr = float(self.spont_rr.value()) or None
+        vt = float(self.spont_vt.value()) or None
+        self.wean_message.setText("planning...")
+        self._start_busy(cancellable=True, kind="wean")
+        self.runner.submit("wean", lambda: wean_case(case, result, table=table, target_fio2=fio2, target_peep=peep,
+                                                     spontaneous_rr=rr, spontaneous_vt_ml=vt))
+
+    def _show_plan(self, out):
+        self.last_plan = out
+        head = f"\u2713 {out['message']}" if out["met"] else f"\u26a0 {out['message']}"
+        self.options_message.setText(f"{_escape(head)}<br>Screened {out['screened']} settings. Double-click an option "
+                                     f"to try it in the current trial.")
+        self.options_table.setRowCount(len(out["options"]))
+        for i, o in enumerate(out["options"]):
+            st = o["steady"]
+            forecast = (f"{self._gas(st['pao2_mmhg'])}, SaO2 {st['sao2']:.2f}, PaCO2 {self._gas(st['paco2_mmhg'], 1)}, "
+                        f"pH {st['ph']:.2f}, Pplat {st['pplat_cmh2o']:.0f}, \u0394P {st['driving_pressure_cmh2o']:.0f} cmH2O")
+            for j, text in enumerate((f"{100 * o['probability_all_goals']:.0f} %", "\n".join(o["changes"]) or "none",
+                                      forecast)):
+                self.options_table.setItem(i, j, QtWidgets.QTableWidgetItem(text))
+        self.options_table.resizeRowsToContents()
+
+    def _show_wean(self, out):
+        self.last_wean = out
+        head = "\u2713" if out["reached_target"] else "\u26a0"
+        self.wean_message.setText(f"{head} {_escape(out['message'])}")
+        self.wean_steps.setRowCount(len(out["steps"]))
+        for i, st in enumerate(out["steps"]):
+            v, r = st["steady"], st["likely_range"]
+            forecast = (f"SaO2 {v['sao2']:.3f} ({r['sao2'][0]:.3f}\u2013{r['sao2'][1]:.3f}), {self._gas(v['pao2_mmhg'])}, "
+                        f"PaCO2 {self._gas(v['paco2_mmhg'], 1)}, pH {v['ph']:.2f}\n{st['stop_if']}")
+            hold = "-" if st["hold_min"] is None else f"{st['hold_min']:.0f} min"
+            for j, text in enumerate((f"{i + 1}. {st['change']}\n({st['why']})", forecast, hold)):
+                self.wean_steps.setItem(i, j, QtWidgets.QTableWidgetItem(text))
+        self.wean_steps.resizeRowsToContents()
+        marks = {True: "\u2713", False: "\u2716", None: "?"}
+        self.wean_readiness.setText("<b>Readiness at the last step:</b><br>" + "<br>".join(
+            f"{marks[c['met']]} {_escape(c['criterion'])} ({_escape(c['source'])})" for c in out["readiness"]))
+
+    def use_option(self, row):
+        """Put an option's settings into the current trial (undoable)."""
+        if self.last_plan is None or not 0 <= row < len(self.last_plan["options"]):
+            return
+        before = dict(self.trial)
+        after = dict(self.last_plan["options"][row]["settings"])
+        if after != before:
+            self.undo_stack.push(TrialChange(self, self.state.active, before, after, f"option {row + 1}"))
 
     def _build_menus(self):
         bar = self.menuBar()
@@ -769,6 +916,16 @@ class MainWindow(QtWidgets.QMainWindow):
             self.status.setText(f"Trial {result['active']}: course shown; computing its likely range...")
             self.forecast_shown.emit(result)
             self._request_band(result)
+        elif request.kind == "plan":
+            self._stop_busy()
+            self._show_plan(result)
+            self.status.setText("options shown")
+            self.plan_shown.emit(result)
+        elif request.kind == "wean":
+            self._stop_busy()
+            self._show_wean(result)
+            self.status.setText("step-down plan shown")
+            self.wean_shown.emit(result)
         elif request.kind == "band":
             self.last_band = result
             self._show_band(result)
@@ -776,8 +933,13 @@ class MainWindow(QtWidgets.QMainWindow):
             self.band_shown.emit(result)
 
     def _on_failure(self, request, message):
-        if request is not None and request.kind == "fit":
+        if request is not None and request.kind in ("fit", "plan", "wean"):
             self._stop_busy()
+        if request is not None and request.kind == "plan":
+            self.options_message.setText(f"\u2716 {_escape(message)}")
+        if request is not None and request.kind == "wean":
+            self.wean_message.setText(f"\u2716 {_escape(message)}")
+        if request is not None and request.kind == "fit":
             self.fit_message.setText(f"<b>The model could not be fitted:</b> {_escape(message)}")
         self.status.setText(f"\u2716 {message}")
         self.failure_shown.emit(message)
@@ -857,7 +1019,7 @@ class MainWindow(QtWidgets.QMainWindow):
                     np.array([np.nan if x is None else x for x in lr[f"{key}_high"]], dtype=float))
 
         flat = np.ones_like(m)
-        recheck = out.get("recheck_after_min")
+        recheck = None if out["settings"] == out["current_settings"] else out.get("recheck_after_min")
         if self.oxygen_view == "sao2":
             self.charts["oxygen"].set(m, arr("sao2"), flat * float(g.sao2), recheck=recheck)
         else:
@@ -988,7 +1150,8 @@ class MainWindow(QtWidgets.QMainWindow):
                 self._show_band(self.last_band)
 
     # --- busy ---------------------------------------------------------------------------------------
-    def _start_busy(self, cancellable):
+    def _start_busy(self, cancellable, kind="fit"):
+        self.busy_kind = kind
         self.progress.show()
         self.cancel_button.setVisible(cancellable)
 
@@ -1000,10 +1163,17 @@ class MainWindow(QtWidgets.QMainWindow):
         pass
 
     def cancel_fit(self):
-        self.runner.cancel("fit")
+        """Cancel the long work under way (fit, options or step-down plan): its result is discarded."""
+        kind = getattr(self, "busy_kind", "fit")
+        self.runner.cancel(kind)
         self._stop_busy()
-        self.fit_message.setText("\u2716 fit cancelled: no forecast is shown. Open the case again to fit it.")
-        self.status.setText("fit cancelled")
+        if kind == "fit":
+            self.fit_message.setText("\u2716 fit cancelled: no forecast is shown. Open the case again to fit it.")
+        elif kind == "plan":
+            self.options_message.setText("\u2716 search cancelled")
+        else:
+            self.wean_message.setText("\u2716 planning cancelled")
+        self.status.setText(f"{ {'fit': 'fit', 'plan': 'search', 'wean': 'step-down planning'}[kind]} cancelled")
 
     # --- files --------------------------------------------------------------------------------------
     def case_with_trials(self) -> dict:
@@ -1240,7 +1410,7 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
     """Start the window (``ventcast open``). With ``screenshot``, render offscreen to a PNG and exit.
 
     ``sets`` (KEY=VALUE, as in ``predict --set``) make Trial A; ``tab`` picks the right-hand panel
-    ('limits' or 'lung-fit') for the screenshot.
+    ('limits', 'lung-fit', 'options' or 'step-down'; with a screenshot the last two are computed first).
     """
     if screenshot:
         os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
@@ -1253,6 +1423,14 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
     window = MainWindow(case, path=case_path, synchronous=bool(screenshot), trials=trials)
     if tab == "lung-fit":
         window.right_tabs.setCurrentIndex(1)
+    elif tab == "options":
+        window.right_tabs.setCurrentIndex(2)
+        if screenshot:
+            window.find_options()
+    elif tab == "step-down":
+        window.right_tabs.setCurrentIndex(3)
+        if screenshot:
+            window.plan_step_down()
     if ask_recovery and not screenshot:
         offer_recovery(window)
     if screenshot:

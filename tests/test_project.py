@@ -59,6 +59,7 @@ def test_wheel_ships_resources(tmp_path):
         assert f"resources/demo/{demo}.ventcast.json" in names
     assert "resources/schema/case.schema.json" in names
     assert "physiology/gasexchange/compartments.py" in names
+    assert "physiology/planning/search.py" in names and "app/window.py" in names
 
 
 def _ventcast(*args, cwd=None):

@@ -265,6 +265,50 @@ def test_rapid_changes_never_block_and_the_newest_wins(window, qtbot):
     assert max(gaps) < 0.100, f"event loop blocked for {max(gaps) * 1000:.0f} ms"
 
 
+def test_options_panel_finds_settings_and_tries_one(window, qtbot):
+    with qtbot.waitSignal(window.plan_shown, timeout=WAIT_MS) as blocker:
+        window.find_options()
+    out = blocker.args[0]
+    assert window.options_table.rowCount() == len(out["options"]) > 0
+    assert window.options_table.item(0, 0).text().endswith("%")
+    assert not window.progress.isVisible()
+    with qtbot.waitSignal(window.forecast_shown, timeout=WAIT_MS):
+        window.use_option(0)
+    expected = check_settings("t", dict(out["options"][0]["settings"]), window._pbw())
+    assert window.last_forecast["trial_settings"] == expected
+    with qtbot.waitSignal(window.forecast_shown, timeout=WAIT_MS):
+        window.undo_stack.undo()
+    assert window.trial == window.state.case["settings"]
+
+
+def test_step_down_panel_follows_the_table(window, qtbot):
+    from physiology.protocols import table_steps
+    window.wean_table_choice.setCurrentIndex(1)
+    window.spont_rr.setValue(24)
+    window.spont_vt.setValue(300)
+    with qtbot.waitSignal(window.wean_shown, timeout=WAIT_MS) as blocker:
+        window.plan_step_down()
+    out = blocker.args[0]
+    assert out["table"] == "lower-peep"
+    assert window.wean_steps.rowCount() == len(out["steps"])
+    for st in out["steps"]:
+        assert (st["settings"]["fio2"], st["settings"]["peep_cmh2o"]) in table_steps("lower-peep")
+    assert "Readiness" in window.wean_readiness.text() and "Boles 2007" in window.wean_readiness.text()
+    rsbi = next(c for c in out["readiness"] if "RSBI" in c["criterion"])
+    assert rsbi["value"] == pytest.approx(80.0) and rsbi["met"] is True  # 24 / 0.3 L, below 105
+
+
+def test_long_work_can_be_cancelled(window, qtbot):
+    window.find_options()
+    assert window.progress.isVisible() and window.cancel_button.isVisible()
+    window.cancel_fit()
+    assert not window.progress.isVisible()
+    assert "cancelled" in window.options_message.text()
+    window.runner.wait()
+    qtbot.wait(50)
+    assert window.last_plan is None  # the discarded result is never shown
+
+
 def test_signal_soak(qtbot):
     """10,000 emits through a queued cross-object signal (PySide6 6.12.0 aborted after about 1,000)."""
     class Emitter(QtCore.QObject):

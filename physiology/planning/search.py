@@ -7,7 +7,9 @@ Method
    breathed through the fitted mechanics in one batch; a combination that breaks a limit (Pplat,
    driving pressure, VT per kg PBW, rate, intrinsic PEEP, mechanical power) fails at every FiO2, so
    each candidate (combination x FiO2 in 0.05 steps) is screened without its gas exchange.
-2. **Gas exchange at the fitted patient** for every candidate that passed, in one batched call.
+2. **Gas exchange at the fitted patient** for every candidate that passed, in one batched call, after
+   a pass at the current FiO2 that drops breaths whose pH or PaCO2 misses its goal by more than a
+   tolerance (CO2 exchange barely depends on FiO2).
 3. **Probability** of meeting every goal and limit, from the fit's parameter draws, for the best
    ``n_best`` candidates (those meeting the goals at the fitted patient first, then the closest).
 4. **Ranking**: probability >= ``required_probability`` first; then lowest FiO2, lowest driving
@@ -142,6 +144,10 @@ def _margin(pred: Prediction, goals: Goals) -> np.ndarray:
     m = np.minimum.reduce(terms) if terms else np.full(np.shape(g.pao2), 10.0)
     return np.where(np.asarray(pred.success), np.nan_to_num(m, nan=-np.inf), -np.inf)
 
+
+#: Tolerances of the CO2 pre-screen at the current FiO2 (pH units, mmHg).
+CO2_TOLERANCE_PH = 0.03
+CO2_TOLERANCE_MMHG = 3.0
 
 #: Cost of a candidate among those that meet the goals: one point per 0.05 of FiO2, per 2 cmH2O of
 #: driving pressure, per 3 J/min of mechanical power, per setting changed, and per 2 cmH2O of PEEP
@@ -284,6 +290,24 @@ def search(model: PatientModel, draws: PatientModel, now: Settings, goals: Goals
         return SearchResult(False, f"no setting on the grid keeps within the limits; binding: {CONSTRAINT_NAMES[worst]}",
                             (), False, CONSTRAINT_NAMES[worst], screened, 0, 0, goals, None)
     idx = np.flatnonzero(mech_ok)
+    # CO2 and pH barely depend on FiO2 (the Haldane effect moves PaCO2 by well under 1 mmHg per 0.1 of
+    # FiO2): one pass at the current FiO2 drops the breaths that cannot meet the pH or PaCO2 goal at any
+    # FiO2, with a tolerance, before the full FiO2 grid. If that leaves nothing, all are kept so that the
+    # closest options can still be shown.
+    if goals.ph is not None or goals.paco2_mmhg is not None:
+        probe = Settings(mode=now.mode, fio2=np.full(idx.size, float(now.fio2)), peep=P[idx], rr=R[idx],
+                         ti=np.full(idx.size, float(now.ti)), apparatus_dead_space_ml=np.full(idx.size, apparatus),
+                         pause=np.zeros(idx.size), **{key: v[idx] for key, v in size.items()})
+        g1 = predict(model, probe).gas
+        with np.errstate(invalid="ignore"):
+            near = np.ones(idx.size, dtype=bool)
+            if goals.ph is not None:
+                near &= (g1.ph >= goals.ph[0] - CO2_TOLERANCE_PH) & (g1.ph <= goals.ph[1] + CO2_TOLERANCE_PH)
+            if goals.paco2_mmhg is not None:
+                near &= ((g1.paco2 >= goals.paco2_mmhg[0] - CO2_TOLERANCE_MMHG)
+                         & (g1.paco2 <= goals.paco2_mmhg[1] + CO2_TOLERANCE_MMHG))
+        if np.any(near):
+            idx = idx[near]
     k = idx.size
     F = np.repeat(fio2s[None, :], k, axis=0).ravel()
     rep = np.repeat(idx, fio2s.size)

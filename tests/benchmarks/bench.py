@@ -139,6 +139,50 @@ def bench_fit(results: dict) -> None:
     results["range_draws_200_ms"] = median_ms(lambda: likely_range(f, trial), repeats=7, warmup=1)
 
 
+def bench_planning(results: dict) -> None:
+    """Goal search (every candidate of the grid screened, the best 50 against 200 parameter draws) and a
+    step-down plan, on the fitted ards-moderate demo case."""
+    from app.casefile import load_demo
+    from app.engine import fit_case, to_settings
+    from physiology.planning.search import Goals, search
+    from physiology.planning.stepdown import step_down
+
+    case = load_demo("ards-moderate")
+    patient, _obs, fitted = fit_case(case)
+    goals = Goals.from_case(case["goals"])
+    now = to_settings(case["settings"])
+    screened = {}
+
+    def run_search():
+        res = search(fitted.model, fitted.draws, now, goals, patient.pbw_kg)
+        screened["n"] = res.screened
+
+    results["plan_search_ms"] = median_ms(run_search, repeats=3, warmup=1)
+    results["plan_candidates_screened"] = screened["n"]
+    # A step-down plan with several steps: an invented patient with a modest shunt, fitted from one blood
+    # gas at FiO2 0.7 and PEEP 14 (the demo case stops after one step: its SpO2 is near the goal).
+    from physiology.fitting.fit import Observation, Patient, build_model, fit
+    from physiology.forecast import predict
+    from physiology.mechanics.ventilator import Settings
+
+    pt = Patient(sex="male", height_cm=178, weight_kg=84, hb_g_dl=12.0)
+    truth = build_model(pt, {"shunt_fixed": 0.08, "recruitable": 0.1, "log_sd": 0.7, "dead_space_fraction": 0.2,
+                             "vco2": 200.0, "vo2": 250.0, "cardiac_output_ref": 5.5, "c_max": 45.0,
+                             "resistance": 12.0, "base_excess": 0.0}, 10.0)
+    start = Settings(mode="volume", fio2=0.7, peep=14.0, vt_ml=450.0, rr=18.0, ti=0.9, apparatus_dead_space_ml=50.0)
+    p = predict(truth, start)
+    obs = Observation(settings=start, pao2=float(p.gas.pao2), paco2=float(p.gas.paco2), ph=float(p.gas.ph),
+                      pplat=float(p.breathing.pplat), ppeak=float(p.breathing.ppeak))
+    f2 = fit(pt, [obs])
+    plan = {}
+
+    def run_wean():
+        plan["steps"] = len(step_down(f2.model, f2.draws, start, Goals()).steps)
+
+    results["wean_plan_ms"] = median_ms(run_wean, repeats=5, warmup=1)
+    results["wean_plan_steps"] = plan["steps"]
+
+
 WINDOW_PROBE = r"""
 import os, sys, time
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
@@ -215,7 +259,7 @@ def bench_window(results: dict) -> None:
     results["window_rss_mb"] = statistics.median(rss)
 
 
-BENCHES = [bench_steady, bench_prediction, bench_course, bench_fit, bench_window]
+BENCHES = [bench_steady, bench_prediction, bench_course, bench_fit, bench_planning, bench_window]
 
 
 def _available(bench) -> bool:
@@ -224,6 +268,7 @@ def _available(bench) -> bool:
                        "bench_prediction": "physiology.forecast",
                        "bench_course": "physiology.dynamics.course",
                        "bench_fit": "physiology.fitting.fit",
+                       "bench_planning": "physiology.planning.search",
                        "bench_window": "app.window"}[bench.__name__]
         __import__(bench_probe)
         return True

@@ -1,0 +1,160 @@
+"""Options and step-down plans: goals met in the true model, table steps exactly as published,
+the binding constraint named, the plan never stepping below the SpO2 goal in the true model."""
+
+import json
+
+import numpy as np
+import pytest
+
+from app.cli import main
+from physiology.fitting.fit import PARAMETERS, Patient, _from_z, _to_z, build_model, fit, population_defaults
+from physiology.forecast import predict
+from physiology.mechanics.ventilator import Settings
+from physiology.planning.search import Goals, evaluate, search
+from physiology.planning.stepdown import step_down
+from physiology.protocols import PEEP_FIO2_HIGHER, PEEP_FIO2_LOWER, table_steps
+
+from test_fitting import PT, TRUE, observe, vc
+
+GOALS = Goals(paco2_mmhg=(35.0, 60.0))
+
+
+def _truth(true=TRUE, patient=PT):
+    return build_model(patient, true, 10.0)
+
+
+def test_options_meet_the_goals_at_the_patient():
+    """With the true patient as its own single draw, every option reported as meeting the goals meets
+    every goal and limit in the true model."""
+    model = _truth()
+    res = search(model, model, vc(0.6, 10), GOALS, PT.pbw_kg)
+    assert res.success and res.met and res.options
+    assert res.screened >= 20_000
+    for o in res.options:
+        assert o.probability == 1.0
+        checks = evaluate(predict(model, o.settings), GOALS)
+        assert bool(checks["all"]), o.changes
+
+
+def test_goals_that_cannot_be_met_name_the_binding_constraint():
+    model = _truth()
+    res = search(model, model, vc(0.6, 10), Goals(pplat_max_cmh2o=12.0), PT.pbw_kg)
+    assert not res.met and res.binding_constraint == "Pplat limit" and res.options == ()
+    res = search(model, model, vc(0.6, 10), Goals(pao2_mmhg=(250.0, 300.0), spo2=None, fio2_max=0.5), PT.pbw_kg)
+    assert not res.met and res.options  # the closest are still shown
+    assert res.binding_constraint == "oxygenation goal (SpO2 or PaO2)"
+    assert "binding" in res.message
+
+
+@pytest.mark.parametrize("table,published", [("lower-peep", PEEP_FIO2_LOWER), ("higher-peep", PEEP_FIO2_HIGHER)])
+def test_table_steps_follow_the_ards_network_table_exactly(table, published):
+    """ARDS Network 2000 (lower PEEP) and Brower 2004 (higher PEEP) tables: every step is the next rung
+    down, one rung per step, from the current rung."""
+    model = _truth({**TRUE, "shunt_fixed": 0.03, "recruitable": 0.05, "log_sd": 0.5})
+    rungs = table_steps(table)
+    start = rungs[8]
+    now = vc(start[0], start[1])
+    res = step_down(model, model, now, Goals(paco2_mmhg=None, ph=None), table=table, target_fio2=0.3, target_peep=5)
+    assert res.steps
+    positions = [rungs.index((round(float(s.settings.fio2), 2), int(s.settings.peep))) for s in res.steps]
+    assert positions == list(range(7, 7 - len(positions), -1))
+    assert len(table_steps(table)) >= len(published)
+
+
+def test_step_down_never_breaks_the_lower_spo2_goal_in_the_true_model():
+    rng = np.random.default_rng(2)
+    checked = 0
+    for _ in range(8):
+        true = dict(TRUE, shunt_fixed=float(rng.uniform(0.03, 0.2)), log_sd=float(rng.uniform(0.4, 1.1)),
+                    recruitable=float(rng.uniform(0.0, 0.3)))
+        model = _truth(true)
+        for table in (None, "lower-peep"):
+            res = step_down(model, model, vc(0.8, 14), GOALS, table=table)
+            for s in res.steps:
+                sao2 = float(predict(model, s.settings).gas.sao2)
+                assert sao2 >= GOALS.spo2[0] - 1e-9, (s.change, sao2)
+                checked += 1
+            assert res.reached_target or res.stopped_because
+    assert checked >= 10
+
+
+def test_step_down_stops_and_says_why_when_oxygenation_is_already_low():
+    model = _truth({**TRUE, "shunt_fixed": 0.45})
+    res = step_down(model, model, vc(0.6, 10), GOALS)
+    assert not res.reached_target and res.steps == ()
+    assert "already at or below the lower goal" in res.stopped_because
+
+
+def test_readiness_lists_published_criteria_and_rsbi_only_when_given():
+    model = _truth({**TRUE, "shunt_fixed": 0.03, "recruitable": 0.02})
+    res = step_down(model, model, vc(0.5, 10), GOALS, spontaneous_rr=30, spontaneous_vt_ml=250)
+    rsbi = next(c for c in res.readiness if "RSBI" in c["criterion"])
+    assert rsbi["value"] == pytest.approx(120.0) and rsbi["met"] is False  # Yang & Tobin 1991: 105
+    assert all(c["source"] for c in res.readiness)
+    res = step_down(model, model, vc(0.5, 10), GOALS)
+    assert next(c for c in res.readiness if "RSBI" in c["criterion"])["met"] is None
+
+
+@pytest.mark.slow
+def test_options_meeting_the_goals_meet_them_in_the_true_model():
+    """Synthetic patients from the priors, fitted from one or two noisy blood gases: options reported as
+    meeting every goal with >= 90 % probability meet them in the true model in >= 90 % of cases."""
+    rng = np.random.default_rng(21)
+    verdicts, cases = [], 0
+    while cases < 24:
+        pt = Patient(sex=str(rng.choice(["female", "male"])), height_cm=rng.uniform(155, 190),
+                     weight_kg=rng.uniform(55, 110), hb_g_dl=rng.uniform(8, 14))
+        prior = population_defaults(pt)
+        true = {n: float(_from_z(n, rng.normal(_to_z(n, prior["mean"][n]), prior["sd"][n]))) for n in PARAMETERS}
+        now = vc(float(np.round(rng.uniform(0.4, 0.7), 2)), float(rng.integers(6, 13)),
+                 float(np.round(pt.pbw_kg * 7 / 10) * 10), float(rng.integers(16, 24)))
+        model = build_model(pt, true, 10.0)
+        if not predict(model, now).success:
+            continue
+        try:
+            f = fit(pt, [observe(now, true, pt, rng)], seed=cases)
+        except ValueError:
+            continue
+        cases += 1
+        res = search(f.model, f.draws, now, GOALS, pt.pbw_kg)
+        for o in res.options:
+            if o.probability >= 0.9:
+                verdicts.append(bool(evaluate(predict(model, o.settings), GOALS)["all"]))
+    share = float(np.mean(verdicts))
+    print("options meeting the goals in the true model:", share, "of", len(verdicts))
+    assert len(verdicts) >= 40
+    assert share >= 0.9
+
+
+def test_plan_and_wean_commands_json(capsys):
+    assert main(["plan", "--demo", "postop-wean", "--format", "json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert {"goals", "options", "binding_constraint", "caution"} <= set(out)
+    o = out["options"][0]
+    assert {"settings", "steady", "probability_all_goals", "changes"} <= set(o)
+    assert set(o["steady"]) >= {"pao2_mmhg", "paco2_mmhg", "ph", "sao2", "pplat_cmh2o", "driving_pressure_cmh2o"}
+    assert main(["wean", "--demo", "ards-moderate", "--table", "lower-peep", "--format", "json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert {"steps", "reached_target", "readiness", "caution"} <= set(out)
+    for st in out["steps"]:
+        assert {"settings", "steady", "likely_range", "hold_min", "stop_if"} <= set(st)
+        assert (st["settings"]["fio2"], st["settings"]["peep_cmh2o"]) in table_steps("lower-peep")
+
+
+@pytest.mark.parametrize("args,needle", [
+    (["plan", "--demo", "ards-moderate", "--probability", "1.5"], "--probability"),
+    (["wean", "--demo", "ards-moderate", "--target-fio2", "40"], "--target-fio2"),
+    (["wean", "--demo", "ards-moderate", "--target-peep", "-1"], "--target-peep"),
+    (["wean", "--demo", "ards-moderate", "--spontaneous-rr", "500"], "--spontaneous-rr"),
+    (["wean", "--demo", "ards-moderate", "--table", "middle"], "table"),
+])
+def test_plan_and_wean_refuse_bad_input(capsys, args, needle):
+    assert main(args) == 2
+    err = capsys.readouterr().err
+    assert needle in err and "Traceback" not in err
+
+
+def test_plan_table_output_ends_with_caution(capsys):
+    assert main(["wean", "--demo", "postop-wean"]) == 0
+    lines = capsys.readouterr().out.strip().splitlines()
+    assert "not a medical device" in lines[-1]
