@@ -21,8 +21,6 @@ EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_MODEL = 0, 1, 2, 3
 #: Verbs whose capability has not landed yet: they refuse honestly.
 NOT_YET = {
     "walkthrough": "walkthroughs",
-    "report": "PDF reports",
-    "import-fhir": "FHIR import",
 }
 
 
@@ -234,7 +232,8 @@ def _cmd_plan(args) -> int:
         print(f"   PaO2 {st['pao2_mmhg']:.0f} mmHg, SaO2 {st['sao2']:.3f}, PaCO2 {st['paco2_mmhg']:.1f} mmHg, pH "
               f"{st['ph']:.2f}, Pplat {st['pplat_cmh2o']:.1f}, driving pressure {st['driving_pressure_cmh2o']:.1f} cmH2O, "
               f"mechanical power {st['mechanical_power_j_min']:.1f} J/min")
-        misses = ", ".join(f"{k} {100 * v:.0f} %" for k, v in o["misses"].items())
+        print("   margins to the goals and limits: " + ", ".join(f"{k} {v:+g}" for k, v in o["margins"].items()))
+        misses = ", ".join(f"{k} {100 * v:.0f} %" if v >= 0.01 else f"{k} <1 %" for k, v in o["misses"].items())
         print(f"   probability of meeting every goal and limit: {100 * o['probability_all_goals']:.0f} % ({mark})"
               + (f"; misses in the draws: {misses}" if misses else ""))
     print()
@@ -274,6 +273,67 @@ def _cmd_wean(args) -> int:
         value = "" if c["value"] is None else f" (value {c['value']:g})"
         print(f"  {mark} {c['criterion']}{value} - {c['source']}" + (f"; {c['note']}" if c.get("note") else ""))
     print()
+    print(CAUTION)
+    return EXIT_OK
+
+
+def _cmd_import_fhir(args) -> int:
+    from .casefile import dumps
+    from .fhir import import_bundle
+    try:
+        raw = Path(args.bundle).read_bytes()
+    except OSError as exc:
+        raise CaseError("BUNDLE", f"cannot read {args.bundle!r}: {exc.strerror}") from None
+    if len(raw) > 10_000_000:
+        raise CaseError("BUNDLE", f"file of {len(raw)} bytes is too large; at most 10000000 bytes are accepted")
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError:
+        raise CaseError("BUNDLE", "the file is not UTF-8 text") from None
+    into = load(args.into) if args.into else None
+    out = Path(args.out)
+    if not out.name.endswith(".ventcast.json"):
+        raise CaseError("--out", f"value {args.out!r} must name a .ventcast.json file")
+    if args.into and out.resolve() == Path(args.into).resolve():
+        raise CaseError("--out", "must differ from --into: the existing case is never overwritten")
+    case, report = import_bundle(text, into=into)
+    write_atomic(out, dumps(case))
+    if args.format == "json":
+        print(json.dumps({"out": str(out), "observations": len(case["observations"]), **report, "caution": CAUTION}))
+        return EXIT_OK
+    print(f"Wrote {out} ({len(case['observations'])} observation(s)).")
+    print("Imported:")
+    for it in report["imported"]:
+        print(f"  LOINC {it['code']:<8} -> {it['into']} = {it['value']}")
+    print("Skipped:")
+    for it in report["skipped"]:
+        print(f"  {('LOINC ' + it['code']) if it['code'] else '':<14} {it['what']}: {it['why']}")
+    print()
+    print(CAUTION)
+    return EXIT_OK
+
+
+def _cmd_report(args) -> int:
+    case = _load_case(args)
+    out = Path(args.out)
+    if out.suffix.lower() != ".pdf":
+        raise CaseError("--out", f"value {args.out!r} must name a .pdf file")
+    if not out.parent.exists():
+        raise CaseError("--out", f"folder {str(out.parent)!r} does not exist")
+    trials = {"A": args.set}
+    for name, sets in (("B", args.set_b), ("C", args.set_c)):
+        if sets:
+            trials[name] = sets
+    from .engine import apply_sets
+    for sets in trials.values():
+        apply_sets(case, sets)  # refuse bad values before any work
+    import os
+    os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+    from PySide6 import QtWidgets
+    app = QtWidgets.QApplication.instance() or QtWidgets.QApplication(["ventcast"])  # noqa: F841 (charts and layout)
+    from .report import build_report
+    res = build_report(case, trials, out, csv_dir=args.csv, with_plan=args.with_options)
+    print(f"Wrote {res['pdf']} ({res['pages']} page(s))" + (f" and {', '.join(res['csv'])}" if res["csv"] else "") + ".")
     print(CAUTION)
     return EXIT_OK
 
@@ -322,6 +382,22 @@ def build_parser() -> argparse.ArgumentParser:
             p.add_argument("--spontaneous-rr", type=float, default=None, help="spontaneous rate for the RSBI [/min]")
             p.add_argument("--spontaneous-vt-ml", type=float, default=None, help="spontaneous VT for the RSBI [mL]")
         p.set_defaults(run=run)
+    rp = sub.add_parser("report", help="a PDF trial report (and CSV exports) for the case")
+    rp.add_argument("case", nargs="?", help="case file (.ventcast.json)")
+    rp.add_argument("--demo", choices=DEMO_NAMES, help="use a built-in demo case instead of CASE")
+    rp.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", help="Trial A: a change of the settings")
+    rp.add_argument("--set-b", action="append", default=[], metavar="KEY=VALUE", help="Trial B (optional)")
+    rp.add_argument("--set-c", action="append", default=[], metavar="KEY=VALUE", help="Trial C (optional)")
+    rp.add_argument("--out", required=True, help="the PDF to write")
+    rp.add_argument("--csv", metavar="DIR", help="also write course.csv and observations.csv into DIR")
+    rp.add_argument("--with-options", action="store_true", help="add the goal search's options to the report")
+    rp.set_defaults(run=_cmd_report)
+    fh = sub.add_parser("import-fhir", help="blood gases and ventilator settings from an HL7 FHIR R4 Bundle")
+    fh.add_argument("bundle", help="FHIR R4 Bundle (JSON) of Observation resources")
+    fh.add_argument("--out", required=True, help="the case file to write (.ventcast.json)")
+    fh.add_argument("--into", help="an existing case: its copy, with the imported observations, goes to --out")
+    fh.add_argument("--format", choices=("table", "json"), default="table")
+    fh.set_defaults(run=_cmd_import_fhir)
     op = sub.add_parser("open", help="open the window on a case (the ards-moderate demo when none is given)")
     op.add_argument("case", nargs="?", help="case file (.ventcast.json)")
     op.add_argument("--demo", choices=DEMO_NAMES, help="open a built-in demo case instead of CASE")
@@ -360,6 +436,8 @@ def main(argv=None) -> int:
         return EXIT_INPUT
     except KeyboardInterrupt:
         return 130
+    except BrokenPipeError:  # the reader went away (e.g. piped into head): nothing left to say
+        return EXIT_OK
     except Exception as exc:  # never a traceback; say plainly that this is our fault
         print(f"ventcast: internal error ({type(exc).__name__}: {exc}); please report it", file=sys.stderr)
         return EXIT_INTERNAL

@@ -16,7 +16,7 @@ from physiology.forecast import predict
 from physiology.indices import oxygenation_index
 from physiology.mechanics.motion import mean_airway_pressure, mechanical_power_simplified
 from physiology.mechanics.ventilator import Settings
-from physiology.planning.search import Goals, search
+from physiology.planning.search import Goals, margins, search
 from physiology.planning.stepdown import step_down
 from physiology.protocols import LIMITS
 
@@ -407,8 +407,10 @@ def plan_case(case: dict, result=None, required_probability: float = 0.9, progre
                  required_probability=required_probability, progress=progress)
     options = []
     for i, c in enumerate(res.options):
-        steady = steady_block(predict(result.model, c.settings))
+        pred = predict(result.model, c.settings)
+        steady = steady_block(pred)
         options.append({"settings": settings_dict(c.settings), "steady": steady,
+                        "margins": {k: round(v, 3) for k, v in margins(pred, goals).items()},
                         "probability_all_goals": round(c.probability, 3), "changes": list(c.changes),
                         "meets_goals_at_fit": c.map_meets,
                         "misses": {k: round(v, 3) for k, v in sorted(c.failures.items(), key=lambda kv: -kv[1])}})

@@ -211,6 +211,7 @@ class MainWindow(QtWidgets.QMainWindow):
     forecast_shown = QtCore.Signal(object)   # stage 2: the course drawn
     band_shown = QtCore.Signal(object)
     plan_shown = QtCore.Signal(object)
+    exported = QtCore.Signal(object)         # list of files written
     wean_shown = QtCore.Signal(object)
     fit_shown = QtCore.Signal(object)
     failure_shown = QtCore.Signal(str)
@@ -626,6 +627,11 @@ class MainWindow(QtWidgets.QMainWindow):
             a.setShortcut(seq)
             a.triggered.connect(slot)
         m.addMenu(self.recent_menu)
+        m.addSeparator()
+        m.addAction("Import blood gases from FHIR...").triggered.connect(self.import_fhir_dialog)
+        m.addAction("Export report (PDF)...").triggered.connect(self.export_report_dialog)
+        m.addAction("Export courses and observations (CSV)...").triggered.connect(self.export_csv_dialog)
+        m.addAction("Export charts (PNG and SVG)...").triggered.connect(self.export_charts_dialog)
         demos = m.addMenu("Open demo case")
         from .casefile import DEMO_NAMES
         for name in DEMO_NAMES:
@@ -916,6 +922,9 @@ class MainWindow(QtWidgets.QMainWindow):
             self.status.setText(f"Trial {result['active']}: course shown; computing its likely range...")
             self.forecast_shown.emit(result)
             self._request_band(result)
+        elif request.kind == "export":
+            self._stop_busy()
+            self._finish_export(result)
         elif request.kind == "plan":
             self._stop_busy()
             self._show_plan(result)
@@ -933,7 +942,7 @@ class MainWindow(QtWidgets.QMainWindow):
             self.band_shown.emit(result)
 
     def _on_failure(self, request, message):
-        if request is not None and request.kind in ("fit", "plan", "wean"):
+        if request is not None and request.kind in ("fit", "plan", "wean", "export"):
             self._stop_busy()
         if request is not None and request.kind == "plan":
             self.options_message.setText(f"\u2716 {_escape(message)}")
@@ -1171,9 +1180,10 @@ class MainWindow(QtWidgets.QMainWindow):
             self.fit_message.setText("\u2716 fit cancelled: no forecast is shown. Open the case again to fit it.")
         elif kind == "plan":
             self.options_message.setText("\u2716 search cancelled")
-        else:
+        elif kind == "wean":
             self.wean_message.setText("\u2716 planning cancelled")
-        self.status.setText(f"{ {'fit': 'fit', 'plan': 'search', 'wean': 'step-down planning'}[kind]} cancelled")
+        self.status.setText(f"{ {'fit': 'fit', 'plan': 'search', 'wean': 'step-down planning', 'export': 'export'}[kind]} "
+                            f"cancelled")
 
     # --- files --------------------------------------------------------------------------------------
     def case_with_trials(self) -> dict:
@@ -1246,6 +1256,115 @@ class MainWindow(QtWidgets.QMainWindow):
         name = Path(self.state.path).name if self.state.path else "unsaved case"
         dirty = "" if self.undo_stack.isClean() else " *"
         self.setWindowTitle(f"{APP_NAME} \u2014 {name}{dirty}")
+
+    # --- exports and import --------------------------------------------------------------------------
+    def _trial_settings(self) -> dict:
+        return {t: dict(v) for t, v in self.state.trials.items() if v is not None}
+
+    def export_report(self, path: str, csv_dir: str | None = None):
+        """Forecast every trial on the worker, then lay out the PDF (and CSVs) here; emits ``exported``."""
+        if self.fit_result is None:
+            self._on_failure(None, "the lung model is not fitted yet: nothing to report")
+            return
+        from .report import compute_forecasts
+        case, result, trials = copy.deepcopy(self.state.case), self.fit_result, self._trial_settings()
+        self._pending_export = {"pdf": path, "csv": csv_dir, "case": case}
+        self._start_busy(cancellable=True, kind="export")
+        self.runner.submit("export", lambda: compute_forecasts(case, trials, result))
+
+    def export_csv(self, folder: str):
+        self.export_report(None, folder)
+
+    def _finish_export(self, forecasts):
+        from .report import course_csv, observations_csv, render_report
+        job = self._pending_export
+        try:
+            if job["pdf"]:
+                res = render_report(job["case"], forecasts, job["pdf"], job["csv"])
+                written = [res["pdf"]] + res["csv"]
+            else:
+                folder = Path(job["csv"])
+                folder.mkdir(parents=True, exist_ok=True)
+                written = []
+                for name, text in (("course.csv", course_csv(forecasts)), ("observations.csv", observations_csv(job["case"]))):
+                    write_atomic(folder / name, text)
+                    written.append(str(folder / name))
+        except (OSError, ValueError) as exc:
+            self._on_failure(None, f"not exported: {exc}")
+            return
+        self.status.setText("exported " + ", ".join(written))
+        self.exported.emit(written)
+
+    def export_charts(self, folder: str) -> list:
+        """PNG and SVG of each Outlook chart into ``folder``."""
+        from PySide6 import QtSvg
+        out = Path(folder)
+        out.mkdir(parents=True, exist_ok=True)
+        written = []
+        for key, plot in self.plots.items():
+            rect = plot.sceneBoundingRect()
+            size = rect.size().toSize()
+            image = QtGui.QImage(size, QtGui.QImage.Format_ARGB32)
+            image.fill(QtGui.QColor("#ffffff"))
+            painter = QtGui.QPainter(image)
+            plot.scene().render(painter, QtCore.QRectF(image.rect()), rect)
+            painter.end()
+            png, svg = out / f"outlook-{key}.png", out / f"outlook-{key}.svg"
+            if not image.save(str(png) + ".tmp", "PNG"):
+                raise OSError(f"could not write {png}")
+            os.replace(str(png) + ".tmp", png)
+            # QSvgGenerator, not pyqtgraph's SVG exporter (it fails on the filled likely-range band).
+            gen = QtSvg.QSvgGenerator()
+            gen.setFileName(str(svg) + ".tmp")
+            gen.setSize(size)
+            gen.setViewBox(QtCore.QRect(0, 0, size.width(), size.height()))
+            gen.setTitle(f"Ventcast Outlook: {key}")
+            painter = QtGui.QPainter(gen)
+            plot.scene().render(painter, QtCore.QRectF(0, 0, size.width(), size.height()), rect)
+            painter.end()
+            os.replace(str(svg) + ".tmp", svg)
+            written += [str(png), str(svg)]
+        self.status.setText(f"exported {len(written)} chart files to {out}")
+        return written
+
+    def import_fhir(self, path: str):
+        """Blood gases from a FHIR bundle, added to a copy of the current case (the file on disk is untouched)."""
+        from .fhir import import_bundle
+        try:
+            text = Path(path).read_text(encoding="utf-8")
+            case, report = import_bundle(text, into=self.state.case)
+        except (OSError, UnicodeDecodeError, CaseError) as exc:
+            self._on_failure(None, f"not imported: {exc}")
+            return None
+        self.load_case(case, None)
+        self.status.setText(f"imported {len(report['imported'])} value(s), skipped {len(report['skipped'])}; "
+                            f"the case is unsaved")
+        return report
+
+    def export_report_dialog(self):
+        path, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Export report", "", "PDF (*.pdf)")
+        if path:
+            self.export_report(path if path.lower().endswith(".pdf") else path + ".pdf")
+
+    def export_csv_dialog(self):
+        folder = QtWidgets.QFileDialog.getExistingDirectory(self, "Export CSV into folder")
+        if folder:
+            self.export_csv(folder)
+
+    def export_charts_dialog(self):
+        folder = QtWidgets.QFileDialog.getExistingDirectory(self, "Export charts into folder")
+        if folder:
+            self.export_charts(folder)
+
+    def import_fhir_dialog(self):
+        path, _ = QtWidgets.QFileDialog.getOpenFileName(self, "Import FHIR bundle", "", "FHIR JSON (*.json)")
+        if path:
+            report = self.import_fhir(path)
+            if report is not None:
+                lines = [f"imported LOINC {i['code']} -> {i['into']}" for i in report["imported"]]
+                lines += [f"skipped {('LOINC ' + s['code']) if s['code'] else ''} {s['what']}: {s['why']}"
+                          for s in report["skipped"]]
+                QtWidgets.QMessageBox.information(self, "FHIR import", "\n".join(lines))
 
     # --- recovery -----------------------------------------------------------------------------------
     def recovery_document(self) -> dict:

@@ -131,7 +131,9 @@ def test_plan_and_wean_commands_json(capsys):
     out = json.loads(capsys.readouterr().out)
     assert {"goals", "options", "binding_constraint", "caution"} <= set(out)
     o = out["options"][0]
-    assert {"settings", "steady", "probability_all_goals", "changes"} <= set(o)
+    assert {"settings", "steady", "probability_all_goals", "changes", "margins"} <= set(o)
+    assert o["margins"]["pplat_cmh2o"] == pytest.approx(out["goals"]["pplat_max_cmh2o"] - o["steady"]["pplat_cmh2o"],
+                                                        abs=2e-3)
     assert set(o["steady"]) >= {"pao2_mmhg", "paco2_mmhg", "ph", "sao2", "pplat_cmh2o", "driving_pressure_cmh2o"}
     assert main(["wean", "--demo", "ards-moderate", "--table", "lower-peep", "--format", "json"]) == 0
     out = json.loads(capsys.readouterr().out)

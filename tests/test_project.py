@@ -89,7 +89,7 @@ def test_demo_json_and_out(tmp_path):
 
 
 def test_unbuilt_verbs_say_so_and_exit_2():
-    out = _ventcast("plan", "--demo", "ards-moderate")
+    out = _ventcast("walkthrough", "script.json")
     assert out.returncode == 2
     assert "not available yet" in out.stderr
     assert "Traceback" not in out.stderr

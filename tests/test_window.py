@@ -309,6 +309,30 @@ def test_long_work_can_be_cancelled(window, qtbot):
     assert window.last_plan is None  # the discarded result is never shown
 
 
+def test_exports_report_csv_and_charts(window, qtbot, tmp_path):
+    pypdf = pytest.importorskip("pypdf")
+    _change(qtbot, window, "peep_cmh2o", 12)
+    with qtbot.waitSignal(window.exported, timeout=WAIT_MS) as blocker:
+        window.export_report(str(tmp_path / "r.pdf"), str(tmp_path))
+    written = blocker.args[0]
+    assert str(tmp_path / "r.pdf") in written and str(tmp_path / "course.csv") in written
+    text = " ".join(" ".join(p.extract_text().split()) for p in pypdf.PdfReader(str(tmp_path / "r.pdf")).pages)
+    assert "not a medical device" in text and "PEEP 12 cmH2O" in text
+    files = window.export_charts(str(tmp_path / "charts"))
+    assert len(files) == 8 and all(Path(f).stat().st_size > 1000 for f in files)
+    assert (tmp_path / "charts" / "outlook-oxygen.svg").read_text().lstrip().startswith("<?xml")
+
+
+def test_fhir_import_adds_observations_to_an_unsaved_copy(window, qtbot):
+    n = len(window.state.case["observations"])
+    with qtbot.waitSignal(window.fit_shown, timeout=WAIT_MS):
+        report = window.import_fhir(str(ROOT / "tests" / "data" / "fhir-abg-bundle.json"))
+    assert report and any(s["code"] == "2705-2" for s in report["skipped"])
+    assert len(window.state.case["observations"]) == n + 2
+    assert window.state.path is None and "unsaved" in window.windowTitle()
+    qtbot.waitUntil(lambda: window.last_band is not None, timeout=WAIT_MS)
+
+
 def test_signal_soak(qtbot):
     """10,000 emits through a queued cross-object signal (PySide6 6.12.0 aborted after about 1,000)."""
     class Emitter(QtCore.QObject):

@@ -32,7 +32,7 @@ from ..forecast import PatientModel, Prediction, predict
 from ..mechanics.ventilator import Settings, breathe
 from ..protocols import LIMITS
 
-__all__ = ["Goals", "Candidate", "SearchResult", "search", "evaluate", "CONSTRAINT_NAMES"]
+__all__ = ["Goals", "Candidate", "SearchResult", "search", "evaluate", "margins", "CONSTRAINT_NAMES"]
 
 
 @dataclass(frozen=True)
@@ -155,6 +155,34 @@ CO2_TOLERANCE_MMHG = 3.0
 #: with a PEEP of 16 in a lung that needs 6 (seen on the postop-wean demo).
 COST_WEIGHTS = {"fio2": 1 / 0.05, "driving_pressure": 1 / 2.0, "mechanical_power": 1 / 3.0, "changes": 1.0,
                 "peep_moved": 1 / 2.0}
+
+
+def margins(pred: Prediction, goals: Goals) -> dict:
+    """Distance of a (single) forecast to the edge of each goal and limit, in the goal's own unit;
+    negative when outside. Oxygenation reports the better of the SpO2 and PaO2 margins."""
+    g, b = pred.gas, pred.breathing
+
+    def inside(x, rng):
+        return float(min(float(x) - rng[0], rng[1] - float(x)))
+
+    out = {}
+    oxy = []
+    if goals.spo2 is not None:
+        out["spo2"] = inside(g.sao2, goals.spo2)
+        oxy.append(out["spo2"] / 0.02)
+    if goals.pao2_mmhg is not None:
+        out["pao2_mmhg"] = inside(g.pao2, goals.pao2_mmhg)
+        oxy.append(out["pao2_mmhg"] / 8.0)
+    if goals.paco2_mmhg is not None:
+        out["paco2_mmhg"] = inside(g.paco2, goals.paco2_mmhg)
+    if goals.ph is not None:
+        out["ph"] = inside(g.ph, goals.ph)
+    out["pplat_cmh2o"] = goals.pplat_max_cmh2o - float(b.pplat)
+    out["driving_pressure_cmh2o"] = goals.driving_pressure_max_cmh2o - float(b.driving_pressure)
+    out["intrinsic_peep_cmh2o"] = goals.intrinsic_peep_max_cmh2o - float(b.intrinsic_peep)
+    if goals.mechanical_power_max_j_min is not None:
+        out["mechanical_power_j_min"] = goals.mechanical_power_max_j_min - float(b.mechanical_power)
+    return out
 
 
 def _violation(pred: Prediction, goals: Goals) -> np.ndarray:

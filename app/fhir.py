@@ -1,0 +1,377 @@
+"""Blood gases and ventilator data from an HL7 FHIR R4 Bundle (JSON) into case observations.
+
+Parsed strictly by hand (no FHIR library): the importer reads only Observation resources (and a
+Patient's gender), maps them **by LOINC code, never by display text**, converts UCUM units, and
+refuses anything malformed with the JSON path named. Codes and confidence: the shared notes
+``data-exchange-codes.md`` (HL7 implementation guides and LOINC term pages); a code marked there
+as "memory" is marked the same way here.
+
+Rules
+-----
+* Arterial values are used; venous and capillary samples are recognised by code and never used
+  as arterial; unspecified-blood codes count as arterial only when the specimen says arterial or
+  the Observation belongs to an arterial gas panel (24336-0).
+* 2708-6 is SaO2 only for a laboratory result without a 59408-5 (pulse oximetry) coding.
+* FiO2: a value <= 1.0 is a fraction, 21-100 a percentage; anything between is refused.
+* Blood gases taken at the same ``effectiveDateTime`` form one observation; the ventilator
+  settings in force are the latest ones recorded at or before it.
+* Unknown codes, pulse oximetry and values the case format does not hold are listed as skipped.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import math
+from datetime import datetime
+
+from .casefile import CaseError, FORMAT, PATIENT_DEFAULTS, VERSION, validate
+
+MMHG_PER_KPA = 7.50062
+HB_G_DL_PER_MMOL_L = 1.611  # haemoglobin (monomer) 16.11 g/mmol, common practice
+
+#: Arterial blood gas: code -> (observation key, kind). Temperature-adjusted codes are accepted.
+ARTERIAL = {
+    "2703-7": ("pao2_mmhg", "pressure"), "19255-9": ("pao2_mmhg", "pressure"),
+    "2019-8": ("paco2_mmhg", "pressure"), "32771-8": ("paco2_mmhg", "pressure"),
+    "2744-1": ("ph", "ph"), "33254-4": ("ph", "ph"),
+    "1960-4": ("hco3_mmol_l", "mmol"),
+    "2708-6": ("sao2", "saturation"),
+}
+#: Not stored in a case (the fit estimates it) but recognised.
+RECOGNISED_NOT_STORED = {"1925-7": "base excess (the fit estimates it from pH and PaCO2)",
+                         "59408-5": "SpO2 by pulse oximetry (not a blood gas)",
+                         "76248-4": "total PEEP measured (the case holds the set PEEP)",
+                         "19840-8": "total breath rate measured (the case holds the set rate)",
+                         "76530-5": "mean airway pressure (the model computes it)",
+                         "24336-0": "arterial gas panel (its members are read one by one)"}
+VENOUS_OR_CAPILLARY = {
+    "2705-2": "venous PO2", "2021-4": "venous PCO2", "2746-6": "venous pH", "14627-4": "venous HCO3",
+    "1927-3": "venous base excess", "2711-0": "venous O2 saturation", "24339-4": "venous gas panel",
+    "2704-5": "capillary PO2", "2020-6": "capillary PCO2", "2745-8": "capillary pH", "2709-4": "capillary O2 saturation",
+    "24337-8": "capillary gas panel", "24338-6": "blood gas panel (specimen unspecified)",
+}
+UNSPECIFIED_BLOOD = {"11556-8": ("pao2_mmhg", "pressure"), "11557-6": ("paco2_mmhg", "pressure"),
+                     "11558-4": ("ph", "ph")}
+#: Other measurements of an observation.
+MEASURED = {"19891-1": ("petco2_mmhg", "pressure"), "76259-1": ("pplat_cmh2o", "cmh2o"),
+            "76531-3": ("ppeak_cmh2o", "cmh2o"), "76222-9": ("vte_ml", "ml"), "76007-4": ("vte_ml", "ml")}
+#: Ventilator settings. 19834-1 is marked "memory" in the shared notes: verify before relying on it.
+SETTINGS = {"3150-0": ("fio2", "fio2"), "19994-3": ("fio2", "fio2"), "71835-3": ("fio2", "fio2"),
+            "20077-4": ("peep_cmh2o", "cmh2o"), "20112-9": ("vt_ml", "ml"), "19834-1": ("rr_per_min", "rate"),
+            "76334-2": ("inspiratory_time_s", "seconds"), "20124-4": ("mode", "mode")}
+#: Patient facts.
+PATIENT = {"718-7": ("hb_g_dl", "hb"), "30313-1": ("hb_g_dl", "hb"), "8310-5": ("temperature_c", "celsius"),
+           "8329-5": ("temperature_c", "celsius"), "8302-2": ("height_cm", "cm"), "29463-7": ("weight_kg", "kg")}
+
+UNITS = {
+    "pressure": {"mm[Hg]": 1.0, "mmHg": 1.0, "kPa": MMHG_PER_KPA},
+    "cmh2o": {"cm[H2O]": 1.0, "cmH2O": 1.0},
+    "ph": {"[pH]": 1.0, "1": 1.0, "": 1.0},
+    "mmol": {"mmol/L": 1.0, "meq/L": 1.0, "m[eq]/L": 1.0},
+    "ml": {"mL": 1.0, "ml": 1.0, "L": 1000.0},
+    "rate": {"/min": 1.0, "{breaths}/min": 1.0, "{Breaths}/min": 1.0},
+    "seconds": {"s": 1.0},
+    "hb": {"g/dL": 1.0, "g/L": 0.1, "mmol/L": HB_G_DL_PER_MMOL_L},
+    "celsius": {"Cel": 1.0},
+    "cm": {"cm": 1.0, "m": 100.0},
+    "kg": {"kg": 1.0, "g": 0.001},
+}
+
+
+class BundleError(CaseError):
+    """A malformed bundle or resource; ``field`` is the JSON path."""
+
+
+def _path(*parts) -> str:
+    out = "bundle"
+    for p in parts:
+        out += f"[{p}]" if isinstance(p, int) else f".{p}"
+    return out
+
+
+def _loinc_codes(resource, where):
+    code = resource.get("code")
+    if not isinstance(code, dict) or not isinstance(code.get("coding"), list) or not code["coding"]:
+        raise BundleError(_path(*where, "code", "coding"), "an Observation needs a code with at least one coding")
+    codes = []
+    for k, c in enumerate(code["coding"]):
+        if not isinstance(c, dict) or not isinstance(c.get("code"), str):
+            raise BundleError(_path(*where, "code", "coding", k, "code"), "each coding needs a code (a string)")
+        if c.get("system", "http://loinc.org") == "http://loinc.org":
+            codes.append(c["code"])
+    return codes
+
+
+def _number(resource, where, kind):
+    """Value and UCUM unit of a valueQuantity, converted to the case's unit."""
+    q = resource.get("valueQuantity")
+    if not isinstance(q, dict):
+        raise BundleError(_path(*where, "valueQuantity"), "a valueQuantity (value and unit) is needed")
+    v = q.get("value")
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+        raise BundleError(_path(*where, "valueQuantity", "value"), f"value {v!r} is not a finite number")
+    unit = q.get("code", q.get("unit", ""))
+    if kind in ("fio2", "saturation"):
+        return _fraction(v, unit, _path(*where, "valueQuantity"), kind)
+    table = UNITS[kind]
+    if unit not in table:
+        raise BundleError(_path(*where, "valueQuantity", "code"),
+                          f"unit {unit!r} is not accepted here; accepted UCUM units: {', '.join(repr(u) for u in table)}")
+    return float(v) * table[unit]
+
+
+def _fraction(v, unit, where, kind):
+    if unit not in ("%", "1", ""):
+        raise BundleError(where + ".code", f"unit {unit!r} is not accepted for {kind}; accepted: '%', '1'")
+    v = float(v)
+    if kind == "fio2":
+        # Published examples record 0.3 with unit '%': the scale follows the value.
+        if 0.21 <= v <= 1.0:
+            return v
+        if 21.0 <= v <= 100.0:
+            return v / 100.0
+        raise BundleError(where + ".value", f"FiO2 {v:g} is neither a fraction 0.21-1.0 nor a percentage 21-100")
+    if unit == "%" or v > 1.0:
+        v = v / 100.0
+    if not 0.0 <= v <= 1.0:
+        raise BundleError(where + ".value", f"saturation {v:g} is outside 0-1 (0-100 %)")
+    return v
+
+
+def _time(resource, where):
+    t = resource.get("effectiveDateTime")
+    if not isinstance(t, str):
+        raise BundleError(_path(*where, "effectiveDateTime"), "an effectiveDateTime (ISO 8601) is needed")
+    try:
+        parsed = datetime.fromisoformat(t.replace("Z", "+00:00"))
+    except ValueError:
+        raise BundleError(_path(*where, "effectiveDateTime"), f"value {t!r} is not an ISO 8601 date-time") from None
+    if parsed.tzinfo is None:
+        raise BundleError(_path(*where, "effectiveDateTime"), f"value {t!r} has no time zone (add Z or +hh:mm)")
+    return parsed
+
+
+def _is_lab(resource) -> bool:
+    for cat in resource.get("category", []) or []:
+        for c in (cat.get("coding", []) if isinstance(cat, dict) else []):
+            if isinstance(c, dict) and c.get("code") == "laboratory":
+                return True
+    return False
+
+
+def _specimen_arterial(resource) -> bool:
+    spec = resource.get("specimen")
+    text = json.dumps(spec).lower() if spec is not None else ""
+    return "arterial" in text
+
+
+def read_bundle(text: str) -> dict:
+    """Parse and check a Bundle; returns {"items": [...], "gender": ..., "skipped": [...]} (see :func:`import_bundle`)."""
+    try:
+        doc = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise BundleError("bundle", f"not valid JSON: {exc.msg} at line {exc.lineno} column {exc.colno}") from None
+    if not isinstance(doc, dict) or doc.get("resourceType") != "Bundle":
+        raise BundleError("bundle.resourceType", "the file is not an HL7 FHIR Bundle (resourceType 'Bundle')")
+    entries = doc.get("entry")
+    if not isinstance(entries, list):
+        raise BundleError("bundle.entry", "a Bundle needs an entry list")
+    panel_members = set()
+    for i, e in enumerate(entries):
+        r = e.get("resource") if isinstance(e, dict) else None
+        if isinstance(r, dict) and r.get("resourceType") == "Observation":
+            try:
+                codes = _loinc_codes(r, ("entry", i, "resource"))
+            except BundleError:
+                continue
+            if "24336-0" in codes:
+                for m in r.get("hasMember", []) or []:
+                    if isinstance(m, dict) and isinstance(m.get("reference"), str):
+                        panel_members.add(m["reference"])
+    items, skipped, gender = [], [], None
+    for i, e in enumerate(entries):
+        where = ("entry", i, "resource")
+        if not isinstance(e, dict) or not isinstance(e.get("resource"), dict):
+            raise BundleError(_path("entry", i, "resource"), "each entry needs a resource object")
+        r = e["resource"]
+        rtype = r.get("resourceType")
+        if rtype == "Patient":
+            g = r.get("gender")
+            if g not in ("female", "male", None):
+                raise BundleError(_path(*where, "gender"), f"gender {g!r} cannot give a predicted body weight; "
+                                                           f"accepted: 'female', 'male'")
+            gender = g
+            continue
+        if rtype != "Observation":
+            skipped.append({"code": None, "what": f"{rtype} resource", "why": "only Observations are read"})
+            continue
+        if r.get("status") in ("entered-in-error", "cancelled"):
+            skipped.append({"code": None, "what": f"entry {i}", "why": f"status {r.get('status')}"})
+            continue
+        codes = _loinc_codes(r, where)
+        full_url = e.get("fullUrl", "")
+        in_panel = any(full_url.endswith(ref) or ref == full_url for ref in panel_members) if full_url else False
+        rid = f"Observation/{r.get('id')}" if r.get("id") else None
+        in_panel = in_panel or (rid in panel_members)
+        target = None
+        for c in codes:
+            if c == "2708-6":
+                if "59408-5" in codes or not (_is_lab(r) or in_panel):
+                    skipped.append({"code": c, "what": "oxygen saturation", "why": "pulse oximetry, not a blood gas"})
+                    target = "skip"
+                    break
+            if c in ARTERIAL:
+                target = ("observation",) + ARTERIAL[c] + (c,)
+            elif c in UNSPECIFIED_BLOOD:
+                if _specimen_arterial(r) or in_panel:
+                    target = ("observation",) + UNSPECIFIED_BLOOD[c] + (c,)
+                else:
+                    skipped.append({"code": c, "what": "blood gas, specimen unspecified",
+                                    "why": "not stated to be arterial: never used as arterial"})
+                    target = "skip"
+            elif c in VENOUS_OR_CAPILLARY:
+                skipped.append({"code": c, "what": VENOUS_OR_CAPILLARY[c], "why": "venous or capillary sample: "
+                                                                               "never used as arterial"})
+                target = "skip"
+            elif c in MEASURED:
+                target = ("observation",) + MEASURED[c] + (c,)
+            elif c in SETTINGS:
+                target = ("settings",) + SETTINGS[c] + (c,)
+            elif c in PATIENT:
+                target = ("patient",) + PATIENT[c] + (c,)
+            elif c in RECOGNISED_NOT_STORED:
+                skipped.append({"code": c, "what": RECOGNISED_NOT_STORED[c], "why": "recognised, not held in a case"})
+                target = "skip"
+            if target is not None:
+                break
+        if target is None:
+            skipped.append({"code": ", ".join(codes) or "(no LOINC code)", "what": "unknown code", "why": "not a code "
+                            "Ventcast imports"})
+            continue
+        if target == "skip":
+            continue
+        part, key, kind, code = target
+        if kind == "mode":
+            concept = r.get("valueCodeableConcept")
+            text = json.dumps(concept).lower() if isinstance(concept, dict) else ""
+            if "pressure" in text and "volume" not in text:
+                value = "pressure"
+            elif "volume" in text and "pressure" not in text:
+                value = "volume"
+            else:
+                raise BundleError(_path(*where, "valueCodeableConcept"),
+                                  "the ventilation mode must say volume control or pressure control")
+        else:
+            value = _number(r, where, kind)
+        items.append({"part": part, "key": key, "value": value, "code": code, "time": _time(r, where),
+                      "path": _path(*where)})
+    return {"items": items, "gender": gender, "skipped": skipped}
+
+
+def import_bundle(text: str, into: dict | None = None) -> tuple[dict, dict]:
+    """A case from a Bundle, or ``into`` (a case) with the imported observations added.
+
+    Returns (case, report) with report = {"imported": [...], "skipped": [...]} listing codes. The case
+    is validated like a case file; nothing is written here.
+    """
+    parsed = read_bundle(text)
+    items = sorted(parsed["items"], key=lambda it: it["time"])
+    gas_times = sorted({it["time"] for it in items if it["part"] == "observation"})
+    case = copy.deepcopy(into) if into is not None else None
+    settings_now, patient = {}, {}
+    observations = []
+    imported = []
+    for it in items:
+        if it["part"] == "patient":
+            patient[it["key"]] = round(it["value"], 3)
+            imported.append({"code": it["code"], "into": f"patient.{it['key']}", "value": patient[it["key"]]})
+    for t in gas_times:
+        for it in items:
+            if it["part"] == "settings" and it["time"] <= t:
+                settings_now[it["key"]] = it["value"]
+        values = {it["key"]: it["value"] for it in items if it["part"] == "observation" and it["time"] == t}
+        missing = [k for k in ("pao2_mmhg", "paco2_mmhg", "ph") if k not in values]
+        if missing:
+            for it in items:
+                if it["part"] == "observation" and it["time"] == t:
+                    it["incomplete"] = True
+            parsed["skipped"].append({"code": None, "what": f"results at {t.isoformat()}",
+                                      "why": f"no arterial {', '.join(missing)} at that time: not a blood gas"})
+            continue
+        obs = {"taken_at": t.strftime("%Y-%m-%dT%H:%M:%S") + _zone(t)}
+        obs.update({k: round(v, 4) for k, v in values.items()})
+        if settings_now:
+            obs["settings"] = dict(settings_now)
+        observations.append(obs)
+        for it in items:
+            if it["part"] == "observation" and it["time"] == t:
+                imported.append({"code": it["code"], "into": f"observation {obs['taken_at']}.{it['key']}",
+                                 "value": round(it["value"], 4)})
+    for it in items:
+        if it["part"] == "settings" and any(it["time"] <= t for t in gas_times):
+            imported.append({"code": it["code"], "into": f"settings.{it['key']}", "value": it["value"]})
+    if not observations:
+        raise BundleError("bundle.entry", "no arterial blood gas (PaO2, PaCO2 and pH at one time) was found")
+    if case is None:
+        case = _new_case(parsed["gender"], patient, observations)
+    else:
+        case.setdefault("observations", [])
+        base = case["settings"]
+        for o in observations:
+            if "settings" in o:
+                o["settings"] = {**base, **o["settings"]}
+        case["observations"] = case["observations"] + observations
+        for k in ("hb_g_dl", "temperature_c"):
+            if k in patient:
+                case["patient"][k] = patient[k]
+    for o in case["observations"]:
+        if "settings" in o and o["settings"].get("mode") == "volume" and o["settings"].get("vt_ml") is None:
+            raise BundleError("bundle.entry", f"the settings in force at {o['taken_at']} are volume control without a "
+                                              f"set tidal volume (LOINC 20112-9)")
+    case = validate(json.loads(json.dumps(case)))
+    return case, {"imported": imported, "skipped": parsed["skipped"]}
+
+
+def _zone(t) -> str:
+    off = t.utcoffset()
+    if not off:
+        return "Z"
+    minutes = int(off.total_seconds() // 60)
+    sign = "+" if minutes >= 0 else "-"
+    return f"{sign}{abs(minutes) // 60:02d}:{abs(minutes) % 60:02d}"
+
+
+def _new_case(gender, patient, observations) -> dict:
+    missing = []
+    if gender is None:
+        missing.append("the patient's sex (a Patient resource with gender)")
+    for key, code in (("height_cm", "8302-2"), ("weight_kg", "29463-7")):
+        if key not in patient:
+            missing.append(f"{key} (LOINC {code})")
+    last = observations[-1].get("settings", {})
+    for key, code in (("fio2", "3150-0 or 19994-3"), ("peep_cmh2o", "20077-4"), ("rr_per_min", "19834-1"),
+                      ("inspiratory_time_s", "76334-2"), ("mode", "20124-4")):
+        if key not in last:
+            missing.append(f"settings.{key} (LOINC {code})")
+    if missing:
+        raise BundleError("bundle.entry", "a new case needs " + "; ".join(missing)
+                          + " — or import into an existing case with --into")
+    p = {"sex": gender, "height_cm": patient["height_cm"], "weight_kg": patient["weight_kg"]}
+    for k in ("temperature_c", "hb_g_dl"):
+        p[k] = patient.get(k, PATIENT_DEFAULTS[k])
+    p["barometric_mmhg"] = PATIENT_DEFAULTS["barometric_mmhg"]
+    settings = {"mode": last["mode"], "fio2": last["fio2"], "peep_cmh2o": last["peep_cmh2o"], "vt_ml": last.get("vt_ml"),
+                "inspiratory_pressure_cmh2o": None, "rr_per_min": last["rr_per_min"],
+                "inspiratory_time_s": last["inspiratory_time_s"], "apparatus_dead_space_ml": 0.0}
+    if settings["mode"] == "pressure":
+        raise BundleError("bundle.entry", "pressure control needs the inspiratory pressure, which the importer does "
+                                          "not read yet — import into an existing case with --into")
+    obs = []
+    for o in observations:
+        o = dict(o)
+        if "settings" in o:
+            o["settings"] = {**settings, **o["settings"]}
+        obs.append(o)
+    return {"format": FORMAT, "version": VERSION, "label": "Imported from an HL7 FHIR bundle",
+            "patient": p, "settings": settings, "observations": obs}
