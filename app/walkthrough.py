@@ -1,0 +1,254 @@
+"""Walkthrough scripts (``*.walkthrough.json``) and runs: events, learner actions, draws, score, debrief.
+
+A script is validated against ``resources/schema/walkthrough.schema.json`` (JSON Schema 2020-12),
+then by range checks here (event values per kind, minutes within the run, a setting named for
+setting goals). Its starting case is a built-in demo (``demo:NAME``), a case file path (relative to
+the script) or an inline case. The patient of the run is the case's fitted model (MAP estimate).
+Nothing here imports Qt; the window drives a :class:`Run` through its clock.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from importlib import resources
+from pathlib import Path
+
+import jsonschema
+import numpy as np
+
+from physiology.scenario import EVENT_KINDS, Action, Event, Timeline
+
+from . import CAUTION
+from .casefile import CaseError, DEMO_NAMES, load, load_demo, validate
+from .engine import apply_sets, fit_case, settings_dict, to_settings
+
+FORMAT = "ventcast.walkthrough"
+VERSION = 1
+BUILT_IN = ("hypoxaemia-needs-peep", "hypercapnia-gas-trapping", "sudden-deterioration")
+MAX_BYTES = 1_000_000
+
+
+def _schema() -> dict:
+    return json.loads(resources.files("resources.schema").joinpath("walkthrough.schema.json").read_text("utf-8"))
+
+
+def _where(parts) -> str:
+    out = "script"
+    for p in parts:
+        out += f"[{p}]" if isinstance(p, int) else f".{p}"
+    return out
+
+
+def built_in_text(name: str) -> str:
+    if name not in BUILT_IN:
+        raise CaseError("SCRIPT", f"{name!r} is neither a file nor a built-in walkthrough ({', '.join(BUILT_IN)})")
+    return resources.files("resources.walkthroughs").joinpath(f"{name}.walkthrough.json").read_text("utf-8")
+
+
+def load_script(ref: str) -> tuple[dict, Path | None]:
+    """A validated script from a path or a built-in name; returns (script, folder of the file or None)."""
+    path = Path(ref)
+    if path.exists():
+        raw = path.read_bytes()
+        if len(raw) > MAX_BYTES:
+            raise CaseError("SCRIPT", f"file of {len(raw)} bytes is too large; at most {MAX_BYTES} bytes are accepted")
+        try:
+            text = raw.decode("utf-8")
+        except UnicodeDecodeError:
+            raise CaseError("SCRIPT", "the file is not UTF-8 text") from None
+        return loads_script(text), path.resolve().parent
+    return loads_script(built_in_text(ref)), None
+
+
+def loads_script(text: str) -> dict:
+    try:
+        doc = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise CaseError("script", f"not valid JSON: {exc.msg} at line {exc.lineno} column {exc.colno}") from None
+    if not isinstance(doc, dict):
+        raise CaseError("script", "a walkthrough script is a JSON object")
+    if isinstance(doc.get("version"), int) and doc["version"] > VERSION and doc.get("format") == FORMAT:
+        raise CaseError("script.version", f"version {doc['version']} was written by a newer Ventcast; this one reads "
+                                          f"version {VERSION}")
+    errors = sorted(jsonschema.Draft202012Validator(_schema()).iter_errors(doc), key=lambda e: list(e.absolute_path))
+    if errors:
+        e = errors[0]
+        if e.validator == "additionalProperties":
+            extra = sorted(set(e.instance) - set(e.schema.get("properties", {})))
+            raise CaseError(_where(e.absolute_path), f"unknown key {extra[0]!r}")
+        raise CaseError(_where(e.absolute_path), f"value {e.instance!r} is not accepted: {e.message}")
+    duration = float(doc.get("duration_min", 60.0))
+    for i, ev in enumerate(doc["events"]):
+        name, (lo, hi), _what = EVENT_KINDS[ev["kind"]]
+        if not lo <= ev["value"] <= hi:
+            raise CaseError(_where(["events", i, "value"]), f"value {ev['value']:g} is outside the accepted range "
+                                                             f"{lo:g} to {hi:g} for {ev['kind']} ({name})")
+        if ev["minute"] >= duration:
+            raise CaseError(_where(["events", i, "minute"]), f"minute {ev['minute']:g} is outside the run "
+                                                              f"(0 to below {duration:g} min)")
+    for i, cp in enumerate(doc.get("checkpoints", [])):
+        if cp["minute"] > duration:
+            raise CaseError(_where(["checkpoints", i, "minute"]), f"minute {cp['minute']:g} is after the run ends "
+                                                                   f"({duration:g} min)")
+    for i, ex in enumerate(doc.get("expected_actions", [])):
+        if ex["what"] != "draw" and ("setting" not in ex or "value" not in ex):
+            raise CaseError(_where(["expected_actions", i]), f"'{ex['what']}' needs a setting and a value")
+        if ex["by_minute"] > duration:
+            raise CaseError(_where(["expected_actions", i, "by_minute"]), f"minute {ex['by_minute']:g} is after the "
+                                                                          f"run ends ({duration:g} min)")
+    return doc
+
+
+def resolve_case(script: dict, folder: Path | None) -> dict:
+    ref = script["case"]
+    if isinstance(ref, dict):
+        try:
+            return validate(ref)
+        except CaseError as exc:
+            raise CaseError(f"script.case.{exc.field}", str(exc).split(": ", 1)[1]) from None
+    if ref.startswith("demo:"):
+        name = ref[5:]
+        if name not in DEMO_NAMES:
+            raise CaseError("script.case", f"value {ref!r}: no such demo case; accepted: "
+                                           + ", ".join(f"demo:{n}" for n in DEMO_NAMES))
+        return load_demo(name)
+    path = Path(ref)
+    if not path.is_absolute() and folder is not None:
+        path = folder / path
+    return load(path)
+
+
+class Run:
+    """One run of a script: the clock is the caller's; everything else is here."""
+
+    def __init__(self, script: dict, folder: Path | None = None, seed: int = 0):
+        self.script = script
+        self.case = resolve_case(script, folder)
+        if script.get("start_settings"):
+            self.case["settings"] = apply_sets(self.case, [f"{k}={v}" for k, v in script["start_settings"].items()])
+        _patient, _obs, fitted = fit_case(self.case)
+        self.fit = fitted
+        self.duration = float(script.get("duration_min", 60.0))
+        self.speed = float(script.get("speed", 10.0))
+        self.delay = float(script.get("draw_delay_min", 2.0))
+        self.timeline = Timeline(fitted.model, to_settings(self.case["settings"]), seed=seed)
+        for ev in script["events"]:
+            self.timeline.add_event(Event(float(ev["minute"]), ev["kind"], float(ev["value"]), ev.get("note", "")))
+        self.action_log = []
+        self._course = None
+
+    # -- changes --------------------------------------------------------------------------------------
+    def inject(self, minute: float, kind: str, value: float, note: str = "instructor") -> None:
+        self._check_minute(minute)
+        self.timeline.add_event(Event(float(minute), kind, float(value), note, source="instructor"))
+        self._course = None
+
+    def act(self, minute: float, sets) -> dict:
+        """The learner changes settings at ``minute`` (KEY=VALUE list or a dict of case-file settings keys)."""
+        self._check_minute(minute)
+        current = settings_dict(self.timeline.settings_at(minute))
+        case_now = dict(self.case, settings=current)
+        if isinstance(sets, dict):
+            sets = [f"{k}={v}" for k, v in sets.items()]
+        new = apply_sets(case_now, sets)
+        self.timeline.add_action(Action(float(minute), to_settings(new), ", ".join(sets)))
+        self.action_log.append({"minute": float(minute), "settings": new, "changed": list(sets)})
+        self._course = None
+        return new
+
+    def draw(self, minute: float) -> dict:
+        self._check_minute(minute)
+        d = self.timeline.draw(minute, self.course(), self.delay)
+        return {"minute": d.minute, "ready_at": d.ready_at, **{k: round(v, 4) for k, v in d.values.items()}}
+
+    def _check_minute(self, minute):
+        if not (math.isfinite(minute) and 0 <= minute <= self.duration):
+            raise CaseError("minute", f"value {minute} is outside the run 0 to {self.duration:g} min")
+
+    # -- reading --------------------------------------------------------------------------------------
+    def course(self):
+        if self._course is None:
+            c = self.timeline.course(self.duration)
+            if not bool(np.all(c.success)):
+                raise ArithmeticError(f"the walkthrough patient cannot be followed: {c.message}")
+            self._course = c
+        return self._course
+
+    def values_at(self, minute: float) -> dict:
+        c = self.course()
+        return {q: float(np.interp(minute, c.minutes, getattr(c, q))) for q in ("pao2", "paco2", "ph", "sao2", "petco2")}
+
+    def due(self, start: float, end: float) -> dict:
+        """Events, checkpoints and draw results that fall in (start, end]: what the clock reveals."""
+        return {"events": [e for e in self.timeline.events if start < e.minute <= end],
+                "checkpoints": [c for c in self.script.get("checkpoints", []) if start < c["minute"] <= end],
+                "results": [d for d in self.timeline.draws if start < d.ready_at <= end]}
+
+    def score(self) -> list:
+        out = []
+        for ex in self.script.get("expected_actions", []):
+            t = float(ex["by_minute"])
+            if ex["what"] == "draw":
+                met = any(d.minute <= t for d in self.timeline.draws)
+                text = f"a blood gas drawn by minute {t:g}"
+            else:
+                value = settings_dict(self.timeline.settings_at(t)).get(ex["setting"])
+                met = value is not None and (value >= ex["value"] if ex["what"] == "setting_at_least" else value <= ex["value"])
+                word = "at least" if ex["what"] == "setting_at_least" else "at most"
+                text = f"{ex['setting']} {word} {ex['value']:g} by minute {t:g} (was {value})"
+            out.append({"expected": text, "met": bool(met), "why": ex.get("why", "")})
+        return out
+
+    def debrief(self, until: float | None = None) -> dict:
+        """The record of the run up to ``until`` (the whole run by default): the headless JSON."""
+        until = self.duration if until is None else float(until)
+        c = self.course()
+        keep = c.minutes <= until + 1e-9
+
+        def r(a, d):
+            return [round(float(x), d) for x in np.asarray(a)[keep]]
+
+        return {"title": self.script["title"], "until_min": until,
+                "events": [{"minute": e.minute, "kind": e.kind, "value": e.value, "note": e.note, "source": e.source}
+                           for e in self.timeline.events if e.minute <= until],
+                "actions": [a for a in self.action_log if a["minute"] <= until],
+                "draws": [{"minute": d.minute, "ready_at": d.ready_at, **{k: round(v, 4) for k, v in d.values.items()}}
+                          for d in self.timeline.draws if d.minute <= until],
+                "course": {"minutes": r(c.minutes, 3), "pao2_mmhg": r(c.pao2, 2), "paco2_mmhg": r(c.paco2, 2),
+                           "ph": r(c.ph, 4), "sao2": r(c.sao2, 4)},
+                "score": {"items": self.score(), "met": sum(s["met"] for s in self.score()),
+                          "of": len(self.score())},
+                "caution": CAUTION}
+
+
+def apply_actions_file(run: Run, text: str) -> None:
+    """Learner actions for a headless run: a JSON list of {minute, set: {KEY: VALUE}} | {minute, draw: true}
+    | {minute, event: {kind, value, note}}."""
+    try:
+        items = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise CaseError("--actions", f"not valid JSON: {exc.msg} at line {exc.lineno}") from None
+    if not isinstance(items, list):
+        raise CaseError("--actions", "the actions file is a JSON list")
+    # Events and settings first, then draws, so that every draw sees the whole schedule.
+    for i, it in enumerate(items):
+        where = f"--actions[{i}]"
+        if not isinstance(it, dict) or not isinstance(it.get("minute"), (int, float)) or isinstance(it.get("minute"), bool):
+            raise CaseError(where, "each action needs a numeric minute")
+        keys = set(it) - {"minute"}
+        if keys == {"set"} and isinstance(it["set"], dict):
+            run.act(float(it["minute"]), it["set"])
+        elif keys == {"event"} and isinstance(it["event"], dict):
+            ev = it["event"]
+            if ev.get("kind") not in EVENT_KINDS or not isinstance(ev.get("value"), (int, float)):
+                raise CaseError(f"{where}.event", f"needs a kind ({', '.join(sorted(EVENT_KINDS))}) and a numeric value")
+            try:
+                run.inject(float(it["minute"]), ev["kind"], float(ev["value"]), ev.get("note", "instructor"))
+            except ValueError as exc:
+                raise CaseError(f"{where}.event", str(exc)) from None
+        elif keys != {"draw"} or it["draw"] is not True:
+            raise CaseError(where, "expected one of: set (an object), draw (true), event (an object)")
+    for it in items:
+        if "draw" in it:
+            run.draw(float(it["minute"]))
