@@ -43,7 +43,7 @@ def no_leftovers(qapp):
     yield
     QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
     qapp.processEvents()
-    left = [w for w in qapp.topLevelWidgets() if isinstance(w, (win.MainWindow, win.GoalsDialog))]
+    left = [w for w in qapp.topLevelWidgets() if isinstance(w, (win.MainWindow, win.GoalsDialog, win.WalkthroughWindow))]
     assert not left, f"windows left alive: {left}"
     assert QtCore.QThreadPool.globalInstance().activeThreadCount() == 0
 
@@ -331,6 +331,41 @@ def test_fhir_import_adds_observations_to_an_unsaved_copy(window, qtbot):
     assert len(window.state.case["observations"]) == n + 2
     assert window.state.path is None and "unsaved" in window.windowTitle()
     qtbot.waitUntil(lambda: window.last_band is not None, timeout=WAIT_MS)
+
+
+def test_walkthrough_mode_start_inject_draw_finish_export(qtbot, qapp, tmp_path):
+    from app.walkthrough import built_in_text
+    w = win.WalkthroughWindow(json.loads(built_in_text("hypoxaemia-needs-peep")))
+    w.show()
+    qtbot.waitUntil(lambda: w.run._course is not None, timeout=WAIT_MS)
+    w.speed.setValue(60)
+    w.toggle()  # start: the clock runs on its timer
+    qtbot.waitUntil(lambda: w.minute > 0.5, timeout=10_000)
+    w.toggle()  # pause
+    paused_at = w.minute
+    qtbot.wait(300)
+    assert w.minute == paused_at
+    w.advance(5.0)  # jump past the scripted event at minute 4
+    assert any("event: lung_collapse" in w.log.item(i).text() for i in range(w.log.count()))
+    with qtbot.waitSignal(w.course_ready, timeout=WAIT_MS):
+        w.inject("metabolism_up", 1.2)
+    w.draw()
+    with qtbot.waitSignal(w.result_shown, timeout=5_000):
+        w.advance(2.5)  # the result arrives 2 simulated minutes later
+    w.learner_spins["peep_cmh2o"].setValue(12)
+    with qtbot.waitSignal(w.course_ready, timeout=WAIT_MS):
+        w.apply_settings()
+    w.advance(8.0)
+    out = w.finish()
+    assert out["score"]["met"] == 2 and [e["source"] for e in out["events"]] == ["script", "instructor"]
+    x, y = w.curves["pao2"].getData()
+    assert x[-1] == pytest.approx(w.minute, abs=0.25)
+    files = w.export_debrief(str(tmp_path))
+    assert {Path(f).name for f in files} == {"debrief-timeline.csv", "debrief-course.csv", "debrief.pdf"}
+    assert "lung_collapse" in (tmp_path / "debrief-timeline.csv").read_text()
+    w.close()
+    w.deleteLater()
+    QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
 
 
 def test_signal_soak(qtbot):
