@@ -18,8 +18,6 @@ from .casefile import DEMO_NAMES, CaseError, demo_text, load, load_demo, write_a
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_MODEL = 0, 1, 2, 3
 
-#: Verbs whose capability has not landed yet: they refuse honestly.
-NOT_YET: dict = {}
 
 
 class _Parser(argparse.ArgumentParser):
@@ -377,14 +375,6 @@ def _cmd_walkthrough(args) -> int:
     return EXIT_OK
 
 
-def _not_yet(verb):
-    def run(args) -> int:
-        print(f"ventcast {verb}: not available yet ({NOT_YET[verb]} has not been built in this version).",
-              file=sys.stderr)
-        return EXIT_INPUT
-    return run
-
-
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="ventcast", description="Forecast blood gases after a ventilator setting change. "
                      + CAUTION)
@@ -456,10 +446,6 @@ def build_parser() -> argparse.ArgumentParser:
                     help="right-hand panel shown (with --screenshot, options and step-down are computed first)")
     op.add_argument("--quit-after", type=float, default=None, metavar="SECONDS", help=argparse.SUPPRESS)
     op.set_defaults(run=_cmd_open)
-    for verb in NOT_YET:
-        p = sub.add_parser(verb, help=f"{NOT_YET[verb]} (not available yet)")
-        p.add_argument("rest", nargs=argparse.REMAINDER)
-        p.set_defaults(run=_not_yet(verb))
     return parser
 
 
@@ -467,8 +453,6 @@ def main(argv=None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     if not argv:
         argv = ["open"]
-    if argv[0] in NOT_YET:  # capabilities not built yet refuse before parsing their arguments
-        return _not_yet(argv[0])(None)
     try:
         args = build_parser().parse_args(argv)
         return args.run(args)

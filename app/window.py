@@ -1625,6 +1625,7 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         self._recompute()
 
     def _build(self):
+        pg.setConfigOptions(antialias=False, background="#fafafa", foreground="#222222")
         central = QtWidgets.QWidget()
         lay = QtWidgets.QGridLayout(central)
         self.clock = QtWidgets.QLabel("")

@@ -29,7 +29,7 @@ __all__ = ["EVENT_KINDS", "Event", "Action", "Draw", "Timeline", "ANALYSER_SD"]
 
 #: Event kinds: parameter name, accepted range, what it means.
 EVENT_KINDS = {
-    "shunt_up": ("amount", (0.0, 0.5), "shunt up by this fraction of cardiac output (atelectasis, secretions)"),
+    "shunt_up": ("amount", (0.0, 0.5), "shunt up by this fraction of cardiac output (secretions, consolidation)"),
     "lung_collapse": ("amount", (0.0, 0.4), "this fraction of the lung collapses and stays recruitable (atelectasis)"),
     "compliance_down": ("factor", (0.2, 1.0), "aerated-lung compliance multiplied by this factor"),
     "resistance_up": ("factor", (1.0, 10.0), "airway resistance multiplied by this factor (bronchospasm)"),

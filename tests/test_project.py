@@ -55,6 +55,8 @@ def test_wheel_ships_resources(tmp_path):
     assert out.returncode == 0, out.stderr[-2000:]
     wheel = next(tmp_path.glob("ventcast-*.whl"))
     names = zipfile.ZipFile(wheel).namelist()
+    assert "resources/walkthroughs/hypoxaemia-needs-peep.walkthrough.json" in names
+    assert "resources/schema/walkthrough.schema.json" in names
     for demo in ("ards-moderate", "copd-trapping", "postop-wean", "refractory-shunt"):
         assert f"resources/demo/{demo}.ventcast.json" in names
     assert "resources/schema/case.schema.json" in names
@@ -88,10 +90,10 @@ def test_demo_json_and_out(tmp_path):
         assert case["format"] == "ventcast.case"
 
 
-def test_unbuilt_verbs_say_so_and_exit_2():
-    out = _ventcast("walkthrough", "script.json")
+def test_unknown_walkthrough_script_exits_2_naming_it():
+    out = _ventcast("walkthrough", "script.json", "--headless")
     assert out.returncode == 2
-    assert "not available yet" in out.stderr
+    assert "'script.json' is neither a file nor a built-in walkthrough" in out.stderr
     assert "Traceback" not in out.stderr
 
 
