@@ -122,27 +122,44 @@ def evaluate(pred: Prediction, goals: Goals) -> dict:
     return checks
 
 
-def _margin(pred: Prediction, goals: Goals) -> np.ndarray:
-    """How far inside the goals a forecast is: the smallest distance to a goal's edge, each scaled by
-    its usual measurement spread (SpO2 0.02, PaO2 8 mmHg, PaCO2 4 mmHg, pH 0.03); negative outside."""
+#: Usual spread of each goal's quantity, to put distances to different goals on one scale.
+GOAL_SCALES = {"spo2": 0.02, "pao2_mmhg": 8.0, "paco2_mmhg": 4.0, "ph": 0.03}
+
+
+def _goal_distances(pred: Prediction, goals: Goals) -> list:
+    """Signed distance inside each goal (negative outside), scaled by its usual spread; oxygenation is
+    met by SpO2 or PaO2, so it takes the better of the two."""
     g = pred.gas
 
-    def inside(x, rng, scale):
+    def inside(x, rng, key):
         lo, hi = rng
-        return np.minimum(x - lo, hi - x) / scale
+        return np.minimum(x - lo, hi - x) / GOAL_SCALES[key]
 
+    terms = []
     with np.errstate(invalid="ignore"):
-        terms = []
-        if goals.spo2 is not None or goals.pao2_mmhg is not None:
-            o = [inside(g.sao2, goals.spo2, 0.02)] if goals.spo2 is not None else []
-            o += [inside(g.pao2, goals.pao2_mmhg, 8.0)] if goals.pao2_mmhg is not None else []
-            terms.append(np.maximum.reduce(o))
+        oxy = [inside(g.sao2, goals.spo2, "spo2")] if goals.spo2 is not None else []
+        oxy += [inside(g.pao2, goals.pao2_mmhg, "pao2_mmhg")] if goals.pao2_mmhg is not None else []
+        if oxy:
+            terms.append(np.maximum.reduce(oxy))
         if goals.paco2_mmhg is not None:
-            terms.append(inside(g.paco2, goals.paco2_mmhg, 4.0))
+            terms.append(inside(g.paco2, goals.paco2_mmhg, "paco2_mmhg"))
         if goals.ph is not None:
-            terms.append(inside(g.ph, goals.ph, 0.03))
-    m = np.minimum.reduce(terms) if terms else np.full(np.shape(g.pao2), 10.0)
+            terms.append(inside(g.ph, goals.ph, "ph"))
+    return terms
+
+
+def _margin(pred: Prediction, goals: Goals) -> np.ndarray:
+    """How far inside the goals a forecast is: the smallest scaled distance to a goal's edge."""
+    terms = _goal_distances(pred, goals)
+    m = np.minimum.reduce(terms) if terms else np.full(np.shape(pred.gas.pao2), 10.0)
     return np.where(np.asarray(pred.success), np.nan_to_num(m, nan=-np.inf), -np.inf)
+
+
+def _violation(pred: Prediction, goals: Goals) -> np.ndarray:
+    """How far a forecast is from meeting the goals (0 when met): the scaled distances outside, summed."""
+    terms = _goal_distances(pred, goals)
+    v = np.sum([np.maximum(-t, 0.0) for t in terms], axis=0) if terms else np.zeros(np.shape(pred.gas.pao2))
+    return np.where(np.asarray(pred.success), np.nan_to_num(v, nan=np.inf), np.inf)
 
 
 #: Tolerances of the CO2 pre-screen at the current FiO2 (pH units, mmHg).
@@ -183,28 +200,6 @@ def margins(pred: Prediction, goals: Goals) -> dict:
     if goals.mechanical_power_max_j_min is not None:
         out["mechanical_power_j_min"] = goals.mechanical_power_max_j_min - float(b.mechanical_power)
     return out
-
-
-def _violation(pred: Prediction, goals: Goals) -> np.ndarray:
-    """How far a forecast is from meeting the goals (0 when met), each term scaled by its usual width."""
-    g, b = pred.gas, pred.breathing
-    terms = []
-
-    def outside(x, rng, scale):
-        lo, hi = rng
-        return (np.maximum(lo - x, 0) + np.maximum(x - hi, 0)) / scale
-
-    with np.errstate(invalid="ignore"):
-        if goals.spo2 is not None or goals.pao2_mmhg is not None:
-            o = [outside(g.sao2, goals.spo2, 0.03)] if goals.spo2 is not None else []
-            o += [outside(g.pao2, goals.pao2_mmhg, 10.0)] if goals.pao2_mmhg is not None else []
-            terms.append(np.minimum.reduce(o))
-        if goals.paco2_mmhg is not None:
-            terms.append(outside(g.paco2, goals.paco2_mmhg, 5.0))
-        if goals.ph is not None:
-            terms.append(outside(g.ph, goals.ph, 0.05))
-    v = np.sum(terms, axis=0) if terms else np.zeros_like(np.asarray(g.pao2, dtype=float))
-    return np.where(np.asarray(pred.success), v, np.inf)
 
 
 @dataclass(frozen=True)
