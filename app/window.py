@@ -1533,6 +1533,10 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
     """
     if screenshot:
         os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+    elif not (os.environ.get("QT_QPA_PLATFORM") or os.environ.get("DISPLAY") or os.environ.get("WAYLAND_DISPLAY")):
+        # Without a screen Qt would abort the process; say what to do instead.
+        raise CaseError("(display)", "no screen to open the window on (DISPLAY is not set): use --screenshot FILE.png, "
+                                     "or the predict command, or set QT_QPA_PLATFORM=offscreen")
     QtCore.qInstallMessageHandler(_quiet_offscreen_warnings)
     app = QtWidgets.QApplication.instance() or QtWidgets.QApplication([APP_NAME])
     app.setOrganizationName(ORG_NAME)

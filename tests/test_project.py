@@ -103,3 +103,11 @@ def test_readme_screenshot_exists():
     assert images, "the README shows a screenshot of the window"
     for image in images:
         assert (ROOT / image).stat().st_size > 10_000
+
+
+def test_window_without_a_screen_says_what_to_do():
+    import os
+    env = {k: v for k, v in os.environ.items() if k not in ("DISPLAY", "WAYLAND_DISPLAY", "QT_QPA_PLATFORM")}
+    out = subprocess.run([sys.executable, "-m", "app.cli"], capture_output=True, text=True, cwd=ROOT, env=env)
+    assert out.returncode == 2
+    assert "no screen" in out.stderr and "--screenshot" in out.stderr and "Traceback" not in out.stderr
