@@ -1783,10 +1783,22 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         self.log.addItem(f"{self.minute:5.1f} min  blood gas drawn; result at {d['ready_at']:.1f} min")
 
     def _recompute(self):
+        """Recompute the course on the worker from a frozen copy of the timeline (the window may add events
+        or actions meanwhile; only the newest request's course is used)."""
+        from physiology.scenario import Timeline
         self.run._course = None
-        run = self.run
+        tl = self.run.timeline
+        frozen = Timeline(tl.patient, tl.settings, list(tl.events), list(tl.actions), [], tl.seed)
+        duration = self.run.duration
+
+        def work():
+            c = frozen.course(duration)
+            if not bool(np.all(c.success)):
+                raise ArithmeticError(f"the walkthrough patient cannot be followed: {c.message}")
+            return c
+
         self.status.setText("computing the patient's course...")
-        self.runner.submit("walk", run.course)
+        self.runner.submit("walk", work)
 
     def _on_result(self, request, result):
         if request.kind == "walk":
