@@ -199,29 +199,37 @@ def validate(doc) -> dict:
     return case
 
 
-def loads(text: str) -> dict:
-    """Parse and validate case text."""
-    try:
-        doc = json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise CaseError("(file)", f"not valid JSON: {exc.msg} at line {exc.lineno}, column {exc.colno}") from None
-    return validate(doc)
-
-
-def load(path) -> dict:
-    """Read and validate a case file."""
+def read_text(path, field: str, max_bytes: int = MAX_BYTES) -> str:
+    """UTF-8 text of a file the user named, refused with ``field`` named when missing, too large or not text."""
     p = Path(path)
     try:
         size = p.stat().st_size
     except OSError as exc:
-        raise CaseError("(file)", f"cannot read {str(p)!r}: {exc.strerror}") from None
-    if size > MAX_BYTES:
-        raise CaseError("(file)", f"{str(p)!r} is {size} bytes; a case file may be at most {MAX_BYTES} bytes")
+        raise CaseError(field, f"cannot read {str(p)!r}: {exc.strerror}") from None
+    if size > max_bytes:
+        raise CaseError(field, f"{str(p)!r} is {size} bytes; at most {max_bytes} bytes are accepted")
     try:
-        text = p.read_text(encoding="utf-8")
+        return p.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as exc:
-        raise CaseError("(file)", f"cannot read {str(p)!r} as UTF-8 text: {exc}") from None
-    return loads(text)
+        raise CaseError(field, f"cannot read {str(p)!r} as UTF-8 text: {exc}") from None
+
+
+def parse_json(text: str, field: str):
+    """JSON from text, refused with ``field`` named and the place of the error."""
+    try:
+        return json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise CaseError(field, f"not valid JSON: {exc.msg} at line {exc.lineno}, column {exc.colno}") from None
+
+
+def loads(text: str) -> dict:
+    """Parse and validate case text."""
+    return validate(parse_json(text, "(file)"))
+
+
+def load(path) -> dict:
+    """Read and validate a case file."""
+    return loads(read_text(path, "(file)"))
 
 
 def demo_text(name: str) -> str:

@@ -187,7 +187,7 @@ def _cmd_open(args) -> int:
     from .window import run
     quit_ms = None if args.quit_after is None else int(args.quit_after * 1000)
     return run(case_path=args.case, demo=args.demo, screenshot=args.screenshot, size=size, quit_after_ms=quit_ms,
-               sets=args.set, tab=args.tab)
+               sets=args.set, tab=args.tab, case=case)
 
 
 def _parse_size(text: str) -> tuple[int, int]:
@@ -200,14 +200,8 @@ def _parse_size(text: str) -> tuple[int, int]:
     return w, h
 
 
-def _settings_line(s: dict) -> str:
-    drive = f"VT {s['vt_ml']:g} mL" if s["mode"] == "volume" else f"Pinsp {s['inspiratory_pressure_cmh2o']:g} cmH2O"
-    return (f"{s['mode']} control, FiO2 {s['fio2']:.2f}, PEEP {s['peep_cmh2o']:g} cmH2O, {drive}, "
-            f"RR {s['rr_per_min']:g}/min, Ti {s['inspiratory_time_s']:g} s")
-
-
 def _cmd_plan(args) -> int:
-    from .engine import plan_case
+    from .engine import plan_case, settings_text
     case = _load_case(args)
     if not 0.5 <= args.probability < 1.0:
         raise CaseError("--probability", f"value {args.probability:g} is outside the accepted range 0.5 to below 1")
@@ -223,7 +217,7 @@ def _cmd_plan(args) -> int:
     for i, o in enumerate(out["options"], 1):
         st = o["steady"]
         mark = "meets every goal" if o["probability_all_goals"] >= out["required_probability"] else "closest"
-        print(f"\n{i}. {_settings_line(o['settings'])}")
+        print(f"\n{i}. {settings_text(o['settings'])}")
         print(f"   changes: {', '.join(o['changes']) or 'none'}")
         print(f"   PaO2 {st['pao2_mmhg']:.0f} mmHg, SaO2 {st['sao2']:.3f}, PaCO2 {st['paco2_mmhg']:.1f} mmHg, pH "
               f"{st['ph']:.2f}, Pplat {st['pplat_cmh2o']:.1f}, driving pressure {st['driving_pressure_cmh2o']:.1f} cmH2O, "
@@ -274,18 +268,9 @@ def _cmd_wean(args) -> int:
 
 
 def _cmd_import_fhir(args) -> int:
-    from .casefile import dumps
+    from .casefile import dumps, read_text
     from .fhir import import_bundle
-    try:
-        raw = Path(args.bundle).read_bytes()
-    except OSError as exc:
-        raise CaseError("BUNDLE", f"cannot read {args.bundle!r}: {exc.strerror}") from None
-    if len(raw) > 10_000_000:
-        raise CaseError("BUNDLE", f"file of {len(raw)} bytes is too large; at most 10000000 bytes are accepted")
-    try:
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError:
-        raise CaseError("BUNDLE", "the file is not UTF-8 text") from None
+    text = read_text(args.bundle, "BUNDLE", max_bytes=10_000_000)
     into = load(args.into) if args.into else None
     out = Path(args.out)
     if not out.name.endswith(".ventcast.json"):

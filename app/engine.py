@@ -390,6 +390,13 @@ def settings_dict(s: Settings) -> dict:
             "apparatus_dead_space_ml": float(s.apparatus_dead_space_ml or 0.0)}
 
 
+def settings_text(s: dict) -> str:
+    """Case-file settings in one line of words, with units."""
+    size = f"VT {s['vt_ml']:g} mL" if s["mode"] == "volume" else f"Pinsp {s['inspiratory_pressure_cmh2o']:g} cmH2O"
+    return (f"{s['mode']} control, FiO2 {s['fio2']:.2f}, PEEP {s['peep_cmh2o']:g} cmH2O, {size}, "
+            f"RR {s['rr_per_min']:g}/min, Ti {s['inspiratory_time_s']:g} s")
+
+
 def case_goals(case: dict) -> Goals:
     try:
         return Goals.from_case(case.get("goals"))

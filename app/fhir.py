@@ -25,9 +25,9 @@ import json
 import math
 from datetime import datetime
 
-from .casefile import CaseError, FORMAT, PATIENT_DEFAULTS, VERSION, validate
+from . import MMHG_PER_KPA
+from .casefile import CaseError, FORMAT, PATIENT_DEFAULTS, VERSION, parse_json, validate
 
-MMHG_PER_KPA = 7.50062
 HB_G_DL_PER_MMOL_L = 1.611  # haemoglobin (monomer) 16.11 g/mmol, common practice
 
 #: Arterial blood gas: code -> (observation key, kind). Temperature-adjusted codes are accepted.
@@ -168,10 +168,7 @@ def _specimen_arterial(resource) -> bool:
 
 def read_bundle(text: str) -> dict:
     """Parse and check a Bundle; returns {"items": [...], "gender": ..., "skipped": [...]} (see :func:`import_bundle`)."""
-    try:
-        doc = json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise BundleError("bundle", f"not valid JSON: {exc.msg} at line {exc.lineno} column {exc.colno}") from None
+    doc = parse_json(text, "bundle")
     if not isinstance(doc, dict) or doc.get("resourceType") != "Bundle":
         raise BundleError("bundle.resourceType", "the file is not an HL7 FHIR Bundle (resourceType 'Bundle')")
     entries = doc.get("entry")

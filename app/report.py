@@ -16,8 +16,9 @@ from datetime import datetime, timezone
 from html import escape
 from pathlib import Path
 
-from . import CAUTION
+from . import CAUTION, version
 from .casefile import write_atomic
+from .engine import settings_text
 
 #: Course columns of the CSV export: (key in the forecast's course, header with its unit).
 COURSE_COLUMNS = (("minutes", "minutes [min]"), ("pao2_mmhg", "PaO2 [mmHg]"), ("pao2_low", "PaO2 likely low [mmHg]"),
@@ -41,14 +42,6 @@ SOURCES = (
     "Fit: maximum a posteriori with population priors; likely ranges (90 %) from 200 posterior draws of a "
     "likelihood-tempered sequential Monte Carlo sampler.",
 )
-
-
-def _version() -> str:
-    from importlib.metadata import PackageNotFoundError, version
-    try:
-        return version("ventcast")
-    except PackageNotFoundError:
-        return "development"
 
 
 def minute_rows(course: dict):
@@ -144,11 +137,11 @@ def report_html(case: dict, forecasts: dict, plan: dict | None = None, generated
     p = case["patient"]
     h = [f"<h1>Ventcast trial report</h1><p><b>{escape(CAUTION)}</b></p>",
          f"<p>{escape(case.get('label', ''))}<br>Generated {generated.strftime('%Y-%m-%d %H:%M UTC')} by Ventcast "
-         f"{escape(_version())}.</p>",
+         f"{escape(version())}.</p>",
          "<h2>Patient and current settings</h2>",
          f"<p>{escape(p['sex'])}, height {p['height_cm']:g} cm, weight {p['weight_kg']:g} kg, PBW "
          f"{first['now']['pbw_kg']:.1f} kg, temperature {p['temperature_c']:g} &deg;C, Hb {p['hb_g_dl']:g} g/dL.<br>"
-         f"Settings: {escape(_settings_text(case['settings']))}.</p>",
+         f"Settings: {escape(settings_text(case['settings']))}.</p>",
          "<h2>Observations</h2><table border='1' cellspacing='0' cellpadding='3'><tr>"
          + "".join(f"<th>{escape(hd)}</th>" for _k, hd in OBSERVATION_COLUMNS[:7]) + "</tr>"]
     for o in case["observations"]:
@@ -175,8 +168,8 @@ def report_html(case: dict, forecasts: dict, plan: dict | None = None, generated
                                                                           for m in fit["identifiability"]) + "</ul>")
     h.append("<h2>Trials compared</h2><table border='1' cellspacing='0' cellpadding='3'><tr><th>quantity</th>"
              "<th>now (model)</th>" + "".join(f"<th>Trial {escape(t)}</th>" for t in forecasts) + "</tr>")
-    h.append("<tr><td>settings</td><td>" + escape(_settings_text(case["settings"])) + "</td>"
-             + "".join(f"<td>{escape(_settings_text(f['settings']))}</td>" for f in forecasts.values()) + "</tr>")
+    h.append("<tr><td>settings</td><td>" + escape(settings_text(case["settings"])) + "</td>"
+             + "".join(f"<td>{escape(settings_text(f['settings']))}</td>" for f in forecasts.values()) + "</tr>")
     for label, key, d in (("PaO2 [mmHg]", "pao2_mmhg", 0), ("PaCO2 [mmHg]", "paco2_mmhg", 1), ("pH", "ph", 2),
                           ("SaO2", "sao2", 3), ("VD/VT", "vd_vt", 2), ("Pplat [cmH2O]", "pplat_cmh2o", 1),
                           ("driving pressure [cmH2O]", "driving_pressure_cmh2o", 1),
@@ -209,18 +202,12 @@ def report_html(case: dict, forecasts: dict, plan: dict | None = None, generated
     if plan:
         h.append("<h2>Options</h2><ol>")
         for o in plan["options"]:
-            h.append(f"<li>{escape(_settings_text(o['settings']))}: probability {100 * o['probability_all_goals']:.0f} %; "
+            h.append(f"<li>{escape(settings_text(o['settings']))}: probability {100 * o['probability_all_goals']:.0f} %; "
                      f"{escape(', '.join(o['changes']) or 'no change')}</li>")
         h.append("</ol>")
     h.append("<h2>Model assumptions and sources</h2><ul>" + "".join(f"<li>{escape(s)}</li>" for s in SOURCES) + "</ul>")
     h.append(f"<p><b>{escape(CAUTION)}</b></p>")
     return "\n".join(h)
-
-
-def _settings_text(s: dict) -> str:
-    size = f"VT {s['vt_ml']:g} mL" if s["mode"] == "volume" else f"Pinsp {s['inspiratory_pressure_cmh2o']:g} cmH2O"
-    return (f"{'volume' if s['mode'] == 'volume' else 'pressure'} control, FiO2 {s['fio2']:.2f}, PEEP "
-            f"{s['peep_cmh2o']:g} cmH2O, {size}, RR {s['rr_per_min']:g}/min, Ti {s['inspiratory_time_s']:g} s")
 
 
 def write_pdf(path, html: str, images: dict) -> int:
@@ -239,7 +226,7 @@ def write_pdf(path, html: str, images: dict) -> int:
         writer.setPageMargins(QtCore.QMarginsF(15, 15, 15, 15), QtGui.QPageLayout.Millimeter)
         writer.setResolution(120)
         writer.setTitle("Ventcast trial report")
-        writer.setCreator(f"Ventcast {_version()}")
+        writer.setCreator(f"Ventcast {version()}")
         # Lay out on the writer's page (device pixels) so that pageCount() counts the printed pages.
         doc.setPageSize(QtCore.QSizeF(writer.width(), writer.height()))
         doc.print_(writer)
@@ -257,27 +244,18 @@ def write_pdf(path, html: str, images: dict) -> int:
     return pages
 
 
-def write_text(path, text: str) -> None:
-    write_atomic(path, text)
-
-
 def build_report(case: dict, trials: dict, out, csv_dir=None, with_plan: bool = False, result=None) -> dict:
     """Fit the case (unless ``result`` is given), forecast each trial (name -> KEY=VALUE list), and write
     the PDF to ``out`` (and the course and observation CSVs into ``csv_dir``). Needs a QApplication.
 
     Returns {"pages", "pdf", "csv": [paths], "forecasts"}.
     """
-    from .engine import plan_case
+    from .engine import fit_case, plan_case
 
-    result = result if result is not None else forecasts_result(case)
+    result = result if result is not None else fit_case(case)[2]
     forecasts = compute_forecasts(case, trials, result)
     plan = plan_case(case, result) if with_plan else None
     return render_report(case, forecasts, out, csv_dir, plan)
-
-
-def forecasts_result(case):
-    from .engine import fit_case
-    return fit_case(case)[2]
 
 
 def compute_forecasts(case: dict, trials: dict, result=None) -> dict:
@@ -285,11 +263,11 @@ def compute_forecasts(case: dict, trials: dict, result=None) -> dict:
     settings dict. Engine work only (safe on a worker thread)."""
     from physiology.forecast import predict
 
-    from .engine import apply_sets, forecast_fitted, steady_block, to_settings
     from .casefile import check_settings
+    from .engine import apply_sets, fit_case, forecast_fitted, steady_block, to_settings
 
     if result is None:
-        result = forecasts_result(case)
+        result = fit_case(case)[2]
     now_steady = steady_block(predict(result.model, to_settings(case["settings"])))
     forecasts = {}
     for name, sets in trials.items():

@@ -20,13 +20,12 @@ import numpy as np
 from physiology.scenario import EVENT_KINDS, Action, Event, Timeline
 
 from . import CAUTION
-from .casefile import CaseError, DEMO_NAMES, load, load_demo, validate
+from .casefile import CaseError, DEMO_NAMES, load, load_demo, parse_json, read_text, validate
 from .engine import apply_sets, fit_case, settings_dict, to_settings
 
 FORMAT = "ventcast.walkthrough"
 VERSION = 1
 BUILT_IN = ("hypoxaemia-needs-peep", "hypercapnia-gas-trapping", "sudden-deterioration")
-MAX_BYTES = 1_000_000
 
 
 def _schema() -> dict:
@@ -50,22 +49,12 @@ def load_script(ref: str) -> tuple[dict, Path | None]:
     """A validated script from a path or a built-in name; returns (script, folder of the file or None)."""
     path = Path(ref)
     if path.exists():
-        raw = path.read_bytes()
-        if len(raw) > MAX_BYTES:
-            raise CaseError("SCRIPT", f"file of {len(raw)} bytes is too large; at most {MAX_BYTES} bytes are accepted")
-        try:
-            text = raw.decode("utf-8")
-        except UnicodeDecodeError:
-            raise CaseError("SCRIPT", "the file is not UTF-8 text") from None
-        return loads_script(text), path.resolve().parent
+        return loads_script(read_text(path, "SCRIPT")), path.resolve().parent
     return loads_script(built_in_text(ref)), None
 
 
 def loads_script(text: str) -> dict:
-    try:
-        doc = json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise CaseError("script", f"not valid JSON: {exc.msg} at line {exc.lineno} column {exc.colno}") from None
+    doc = parse_json(text, "script")
     if not isinstance(doc, dict):
         raise CaseError("script", "a walkthrough script is a JSON object")
     if isinstance(doc.get("version"), int) and doc["version"] > VERSION and doc.get("format") == FORMAT:
@@ -225,10 +214,7 @@ class Run:
 def apply_actions_file(run: Run, text: str) -> None:
     """Learner actions for a headless run: a JSON list of {minute, set: {KEY: VALUE}} | {minute, draw: true}
     | {minute, event: {kind, value, note}}."""
-    try:
-        items = json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise CaseError("--actions", f"not valid JSON: {exc.msg} at line {exc.lineno}") from None
+    items = parse_json(text, "--actions")
     if not isinstance(items, list):
         raise CaseError("--actions", "the actions file is a JSON list")
     # Events and settings first, then draws, so that every draw sees the whole schedule.

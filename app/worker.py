@@ -59,7 +59,6 @@ class EngineRunner(QtCore.QObject):
 
     finished = QtCore.Signal(object, object)   # request, result
     failed = QtCore.Signal(object, str)        # request, message
-    busy_changed = QtCore.Signal(bool)
 
     def __init__(self, parent=None, synchronous: bool = False):
         super().__init__(parent)
@@ -68,7 +67,6 @@ class EngineRunner(QtCore.QObject):
         self.pool.setMaxThreadCount(1)  # engine calls are CPU-bound and share the GIL: one at a time
         self._ids = itertools.count(1)
         self._latest: dict[str, int] = {}
-        self._pending: set[int] = set()
         self._cancelled: set[str] = set()
         self._signals = _Signals()
         self._signals.done.connect(self._on_done, QtCore.Qt.QueuedConnection)
@@ -86,8 +84,6 @@ class EngineRunner(QtCore.QObject):
             else:
                 self.finished.emit(request, result)
             return request
-        self._pending.add(request.id)
-        self.busy_changed.emit(True)
         self.pool.start(_Task(request, self._signals))
         return request
 
@@ -102,18 +98,11 @@ class EngineRunner(QtCore.QObject):
     def is_current(self, request: Request) -> bool:
         return self._latest.get(request.kind) == request.id and request.kind not in self._cancelled
 
-    def _settle(self, request):
-        self._pending.discard(request.id)
-        if not self._pending:
-            self.busy_changed.emit(False)
-
     def _on_done(self, request, result):
-        self._settle(request)
         if self.is_current(request):
             self.finished.emit(request, result)
 
     def _on_failed(self, request, message):
-        self._settle(request)
         if self.is_current(request):
             self.failed.emit(request, message)
 

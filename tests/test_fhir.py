@@ -7,7 +7,6 @@ guides and LOINC term pages; 19834-1, breath rate setting, is marked "memory" th
 1 kPa = 7.50062 mmHg (common practice); haemoglobin 112 g/L = 11.2 g/dL.
 """
 
-import copy
 import hashlib
 import json
 from pathlib import Path

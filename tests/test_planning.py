@@ -9,7 +9,6 @@ import pytest
 from app.cli import main
 from physiology.fitting.fit import PARAMETERS, Patient, _from_z, _to_z, build_model, fit, population_defaults
 from physiology.forecast import predict
-from physiology.mechanics.ventilator import Settings
 from physiology.planning.search import Goals, evaluate, search
 from physiology.planning.stepdown import step_down
 from physiology.protocols import PEEP_FIO2_HIGHER, PEEP_FIO2_LOWER, table_steps

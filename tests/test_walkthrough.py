@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from app.cli import main
-from app.walkthrough import BUILT_IN, Run, apply_actions_file, built_in_text, loads_script
+from app.walkthrough import BUILT_IN, Run, built_in_text
 from physiology.dynamics.course import Change, simulate
 from physiology.forecast import predict
 
@@ -39,7 +39,17 @@ def test_a_run_at_60x_reads_the_offline_course_without_drift_or_lost_events():
     seen, t, tick_s = [], 0.0, 0.1  # a 100 ms timer at 60x moves the clock 6 s of patient time per tick
     run.inject(30.0, "metabolism_up", 1.2, "fever")
     worst = 0.0
-    offline = simulate(run.timeline.patient, run.timeline.settings, run.timeline.schedule(60.0), minutes=60.0)
+    # The offline course, written out by hand (not from the run's own schedule): the scripted lung collapse
+    # at minute 4 (recruitable lung +0.25, the pressure that held it open lost), PEEP 12 at minute 9, fever
+    # (VO2 and VCO2 x 1.2) at minute 30.
+    p0, s0 = run.timeline.patient, run.timeline.settings
+    peep12 = replace(s0, peep=12.0)
+    offline = simulate(p0, s0, [
+        Change(4.0, settings=s0, patient={"recruitable": float(p0.mechanics.recruitable) + 0.25,
+                                          "pressure_history": 0.0}),
+        Change(9.0, settings=peep12),
+        Change(30.0, settings=peep12, patient={"vo2": float(p0.vo2) * 1.2, "vco2": float(p0.vco2) * 1.2}),
+    ], minutes=60.0)
     while t < 60.0 - 1e-9:
         nxt = min(t + tick_s * 60.0 / 60.0, 60.0)
         due = run.due(t, nxt)

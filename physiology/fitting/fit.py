@@ -58,7 +58,7 @@ from scipy.optimize import least_squares
 from scipy.special import expit, gammaln, logit
 
 from .._checks import check_fio2, check_range
-from ..bloodgas.acidbase import _ph_invivo, bicarbonate_henderson_hasselbalch
+from ..bloodgas.acidbase import bicarbonate_henderson_hasselbalch
 from ..bloodgas.oxygen import saturation
 from ..forecast import PatientModel, Prediction, predict
 from ..gasexchange.alveolar import alveolar_po2

@@ -122,7 +122,8 @@ def evaluate(pred: Prediction, goals: Goals) -> dict:
     return checks
 
 
-#: Usual spread of each goal's quantity, to put distances to different goals on one scale.
+#: Usual spread of each goal's quantity, to put distances to different goals on one scale (our choice,
+#: about one measurement-plus-physiological SD of each; from memory, not a published value).
 GOAL_SCALES = {"spo2": 0.02, "pao2_mmhg": 8.0, "paco2_mmhg": 4.0, "ph": 0.03}
 
 
@@ -162,7 +163,8 @@ def _violation(pred: Prediction, goals: Goals) -> np.ndarray:
     return np.where(np.asarray(pred.success), np.nan_to_num(v, nan=np.inf), np.inf)
 
 
-#: Tolerances of the CO2 pre-screen at the current FiO2 (pH units, mmHg).
+#: Tolerances of the CO2 pre-screen at the current FiO2 (pH units, mmHg): our choice, several times the
+#: Haldane shift of PaCO2 across the FiO2 grid, so that no breath that could meet the goals is dropped.
 CO2_TOLERANCE_PH = 0.03
 CO2_TOLERANCE_MMHG = 3.0
 
