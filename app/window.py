@@ -13,6 +13,7 @@ import math
 import os
 import sys
 from dataclasses import dataclass
+from html import escape
 from pathlib import Path
 
 import numpy as np
@@ -22,16 +23,15 @@ from PySide6 import QtCore, QtGui, QtWidgets
 from physiology.fitting.fit import PARAMETERS
 from physiology.forecast import predict
 
-from . import CAUTION, __doc__ as _pkg_doc  # noqa: F401
-from .bedside import bedside_indices
-from .casefile import CaseError, check_settings, dumps, load, load_demo, loads, write_atomic
+from . import CAUTION, MMHG_PER_KPA, version
+from .casefile import CaseError, check_settings, load, load_demo, loads, read_text, write_atomic
 from .engine import (apply_sets, fit_case, forecast_fitted, limit_checks, now_block, plan_case, settings_dict,
-                     steady_block, to_settings, wean_case)
+                     settings_text, steady_block, to_settings, wean_case)
+from .report import SOURCES
 from .worker import EngineRunner
 
 APP_NAME = "Ventcast"
 ORG_NAME = "Ventcast"
-MMHG_PER_KPA = 7.50062
 DEBOUNCE_MS = 50
 AUTOSAVE_MS = 30_000
 TRIALS = ("A", "B", "C")
@@ -62,16 +62,6 @@ SHORTCUTS = (
     ("Ctrl+K", "switch mmHg / kPa"), ("Ctrl+Shift+O", "switch the oxygen chart PaO2 / SaO2"),
     ("F1", "this list"), ("Ctrl+Q", "quit"),
 )
-
-SOURCES = (
-    "O2 dissociation: Severinghaus 1979 with Kelman 1966 corrections; CO2 content: Kelman 1967.",
-    "V/Q lung: shunt, log-normal V/Q distribution and dead space after West 1969.",
-    "Mechanics: equation of motion; mechanical power Gattinoni 2016 / Becher 2019; recruitment after "
-    "Crotti 2001 and Venegas 1998; venous return after Guyton.",
-    "Limits and tables: ARDS Network 2000; driving pressure Amato 2015; Berlin definition 2012.",
-    "Fit: maximum a posteriori with population priors; likely ranges from posterior draws (SMC sampler).",
-)
-
 
 def kpa_from_mmhg(x):
     return x / MMHG_PER_KPA
@@ -226,8 +216,8 @@ class MainWindow(QtWidgets.QMainWindow):
         self.runner = EngineRunner(self, synchronous=synchronous)
         self.runner.finished.connect(self._on_result)
         self.runner.failed.connect(self._on_failure)
-        self.runner.busy_changed.connect(self._on_busy)
         self.undo_stack = QtGui.QUndoStack(self)
+        self.case_unsaved = False  # an imported or recovered case that was never saved
         self.undo_stack.cleanChanged.connect(self._on_clean_changed)
         self.fit_result = None
         self.last_steady = None
@@ -578,7 +568,7 @@ class MainWindow(QtWidgets.QMainWindow):
     def _show_plan(self, out):
         self.last_plan = out
         head = f"\u2713 {out['message']}" if out["met"] else f"\u26a0 {out['message']}"
-        self.options_message.setText(f"{_escape(head)}<br>Screened {out['screened']} settings. Double-click an option "
+        self.options_message.setText(f"{escape(head)}<br>Screened {out['screened']} settings. Double-click an option "
                                      f"to try it in the current trial.")
         self.options_table.setRowCount(len(out["options"]))
         for i, o in enumerate(out["options"]):
@@ -593,7 +583,7 @@ class MainWindow(QtWidgets.QMainWindow):
     def _show_wean(self, out):
         self.last_wean = out
         head = "\u2713" if out["reached_target"] else "\u26a0"
-        self.wean_message.setText(f"{head} {_escape(out['message'])}")
+        self.wean_message.setText(f"{head} {escape(out['message'])}")
         self.wean_steps.setRowCount(len(out["steps"]))
         for i, st in enumerate(out["steps"]):
             v, r = st["steady"], st["likely_range"]
@@ -605,7 +595,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self.wean_steps.resizeRowsToContents()
         marks = {True: "\u2713", False: "\u2716", None: "?"}
         self.wean_readiness.setText("<b>Readiness at the last step:</b><br>" + "<br>".join(
-            f"{marks[c['met']]} {_escape(c['criterion'])} ({_escape(c['source'])})" for c in out["readiness"]))
+            f"{marks[c['met']]} {escape(c['criterion'])} ({escape(c['source'])})" for c in out["readiness"]))
 
     def use_option(self, row):
         """Put an option's settings into the current trial (undoable)."""
@@ -674,6 +664,7 @@ class MainWindow(QtWidgets.QMainWindow):
 
     # --- case ---------------------------------------------------------------------------------------
     def load_case(self, case: dict, path: str | None, trials: dict | None = None):
+        self.case_unsaved = False
         self.state = TrialState(case=case, trials=trials or {"A": dict(case["settings"]), "B": None, "C": None},
                                 path=path)
         self.undo_stack.clear()
@@ -702,16 +693,15 @@ class MainWindow(QtWidgets.QMainWindow):
 
     def _fill_bedside(self):
         case = self.state.case
-        self.case_label.setText(f"<b>{_escape(case.get('label', ''))}</b>")
+        self.case_label.setText(f"<b>{escape(case.get('label', ''))}</b>")
         obs = case["observations"][-1]
         s = obs["settings"]
         idx = now_block(case)
-        u = self.units
         self.bedside_values["pao2"].setText(self._gas(obs["pao2_mmhg"]))
         self.bedside_values["paco2"].setText(self._gas(obs["paco2_mmhg"], 1))
         self.bedside_values["ph"].setText(f"{obs['ph']:.2f}")
         self.bedside_values["sao2"].setText("-" if obs.get("sao2") is None else f"{obs['sao2']:.2f}")
-        self.bedside_values["settings"].setText(_settings_text(s))
+        self.bedside_values["settings"].setText(settings_text(s))
         fmt = {"pf_ratio_mmhg": (0, "mmHg"), "aa_gradient_mmhg": (0, "mmHg"), "driving_pressure_cmh2o": (0, "cmH2O"),
                "compliance_ml_per_cmh2o": (0, "mL/cmH2O"), "pbw_kg": (1, "kg"), "vt_ml_per_kg_pbw": (1, "mL/kg PBW"),
                "mechanical_power_j_min": (1, "J/min"), "ventilatory_ratio": (2, ""), "oxygenation_index": (1, ""),
@@ -732,7 +722,6 @@ class MainWindow(QtWidgets.QMainWindow):
                                       f"{os_['peep_cmh2o']:g}", self._gas(o["pao2_mmhg"]),
                                       self._gas(o["paco2_mmhg"], 1))):
                 self.history.setItem(i, j, QtWidgets.QTableWidgetItem(text))
-        del u
 
     def _gas(self, mmhg, digits=0):
         if mmhg is None or not math.isfinite(mmhg):
@@ -761,20 +750,15 @@ class MainWindow(QtWidgets.QMainWindow):
         self._loading = True
         try:
             self.mode.setCurrentIndex(0 if s["mode"] == "volume" else 1)
+            # The size of the breath is VT in volume control, the inspiratory pressure in pressure control.
+            hidden = "inspiratory_pressure_cmh2o" if s["mode"] == "volume" else "vt_ml"
             for key, _label, _unit, lo, _hi, step, _dec in CONTROLS:
                 v = s.get(key)
-                spin, slider = self.spins[key], self.sliders[key]
-                active = v is not None
                 for w in self.rows[key]:
-                    w.setVisible(active or key in ("vt_ml", "inspiratory_pressure_cmh2o") and False)
-                if active:
-                    spin.setValue(float(v))
-                    slider.setValue(int(round((float(v) - lo) / step)))
-            pressure = s["mode"] == "pressure"
-            for w in self.rows["vt_ml"]:
-                w.setVisible(not pressure)
-            for w in self.rows["inspiratory_pressure_cmh2o"]:
-                w.setVisible(pressure)
+                    w.setVisible(key != hidden)
+                if v is not None:
+                    self.spins[key].setValue(float(v))
+                    self.sliders[key].setValue(int(round((float(v) - lo) / step)))
         finally:
             self._loading = False
         self.limits_title.setText(f"Limits of Trial {self.state.active}")
@@ -945,11 +929,11 @@ class MainWindow(QtWidgets.QMainWindow):
         if request is not None and request.kind in ("fit", "plan", "wean", "export"):
             self._stop_busy()
         if request is not None and request.kind == "plan":
-            self.options_message.setText(f"\u2716 {_escape(message)}")
+            self.options_message.setText(f"\u2716 {escape(message)}")
         if request is not None and request.kind == "wean":
-            self.wean_message.setText(f"\u2716 {_escape(message)}")
+            self.wean_message.setText(f"\u2716 {escape(message)}")
         if request is not None and request.kind == "fit":
-            self.fit_message.setText(f"<b>The model could not be fitted:</b> {_escape(message)}")
+            self.fit_message.setText(f"<b>The model could not be fitted:</b> {escape(message)}")
         self.status.setText(f"\u2716 {message}")
         self.failure_shown.emit(message)
 
@@ -968,9 +952,9 @@ class MainWindow(QtWidgets.QMainWindow):
             for j, text in enumerate((label, f"{f.estimates[n]:.{d}f} ({lo:.{d}f}\u2013{hi:.{d}f}) {unit}".strip())):
                 self.fit_table.setItem(i, j, QtWidgets.QTableWidgetItem(text))
         symbol = "\u2713" if f.success else "\u2716"
-        self.fit_message.setText(f"{symbol} {_escape(f.message)}")
+        self.fit_message.setText(f"{symbol} {escape(f.message)}")
         self.ident_label.setText("<b>What the data cannot tell apart:</b><br>" + "<br>".join(
-            "\u2022 " + _escape(m) for m in f.identifiability) if f.identifiability else "")
+            "\u2022 " + escape(m) for m in f.identifiability) if f.identifiability else "")
         now = self.now_prediction
         if now is not None and bool(np.all(now.success)):
             g = now.gas
@@ -1062,7 +1046,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self._draw_course(self.last_forecast, band=out)
         nb = out.get("next_best_measurement") or []
         self.next_label.setText("<b>Next best measurement:</b><br>" + "<br>".join(
-            f"{i + 1}. {_escape(c['probe'])}: {_escape(c['why'])}" for i, c in enumerate(nb)) if nb else
+            f"{i + 1}. {escape(c['probe'])}: {escape(c['why'])}" for i, c in enumerate(nb)) if nb else
             "<b>Next best measurement:</b> none could be ranked")
         self._fill_compare(self.last_forecast["compare"], out["likely_range"], self.last_forecast["active"])
         for line in out.get("alerts", []):
@@ -1168,9 +1152,6 @@ class MainWindow(QtWidgets.QMainWindow):
         self.progress.hide()
         self.cancel_button.hide()
 
-    def _on_busy(self, busy):
-        pass
-
     def cancel_fit(self):
         """Cancel the long work under way (fit, options or step-down plan): its result is discarded."""
         kind = getattr(self, "busy_kind", "fit")
@@ -1186,11 +1167,6 @@ class MainWindow(QtWidgets.QMainWindow):
                             f"cancelled")
 
     # --- files --------------------------------------------------------------------------------------
-    def case_with_trials(self) -> dict:
-        """The case as saved: trial settings B and C are not part of the case-file format (A is kept in
-        the recovery file only), so the saved case is the case itself with its goals."""
-        return copy.deepcopy(self.state.case)
-
     def open_dialog(self):
         path, _ = QtWidgets.QFileDialog.getOpenFileName(self, "Open case", "", "Ventcast case (*.ventcast.json)")
         if path:
@@ -1221,11 +1197,12 @@ class MainWindow(QtWidgets.QMainWindow):
     def _save_to(self, path):
         from .casefile import save
         try:
-            save(path, self.case_with_trials())
+            save(path, self.state.case)  # trials are not part of a case file; the recovery file keeps them
         except (CaseError, OSError) as exc:
             self._on_failure(None, f"not saved: {exc}")
             return False
         self.state.path = str(path)
+        self.case_unsaved = False
         self.undo_stack.setClean()
         self._remember_recent(str(path))
         self._update_title()
@@ -1254,7 +1231,7 @@ class MainWindow(QtWidgets.QMainWindow):
 
     def _update_title(self):
         name = Path(self.state.path).name if self.state.path else "unsaved case"
-        dirty = "" if self.undo_stack.isClean() else " *"
+        dirty = " *" if self.has_unsaved_work() else ""
         self.setWindowTitle(f"{APP_NAME} \u2014 {name}{dirty}")
 
     # --- exports and import --------------------------------------------------------------------------
@@ -1331,12 +1308,13 @@ class MainWindow(QtWidgets.QMainWindow):
         """Blood gases from a FHIR bundle, added to a copy of the current case (the file on disk is untouched)."""
         from .fhir import import_bundle
         try:
-            text = Path(path).read_text(encoding="utf-8")
-            case, report = import_bundle(text, into=self.state.case)
-        except (OSError, UnicodeDecodeError, CaseError) as exc:
+            case, report = import_bundle(read_text(path, "bundle", max_bytes=10_000_000), into=self.state.case)
+        except CaseError as exc:
             self._on_failure(None, f"not imported: {exc}")
             return None
         self.load_case(case, None)
+        self.case_unsaved = True
+        self._update_title()
         self.status.setText(f"imported {len(report['imported'])} value(s), skipped {len(report['skipped'])}; "
                             f"the case is unsaved")
         return report
@@ -1371,8 +1349,15 @@ class MainWindow(QtWidgets.QMainWindow):
         return {"format": "ventcast.recovery", "version": 1, "path": self.state.path, "case": self.state.case,
                 "trials": self.state.trials, "active": self.state.active}
 
+    def has_unsaved_work(self) -> bool:
+        """Trial or goal changes since the last save or open, or a case that came from an import or a recovery."""
+        return self.case_unsaved or not self.undo_stack.isClean()
+
     def write_recovery(self):
-        """Autosave: the case and every trial as on screen, atomically, to the recovery file."""
+        """Autosave: the case and every trial as on screen, atomically, to the recovery file — only when
+        there is unsaved work (a case opened and left as it was needs no recovery after a crash)."""
+        if not self.has_unsaved_work():
+            return
         try:
             recovery_path().parent.mkdir(parents=True, exist_ok=True)
             write_atomic(recovery_path(), json.dumps(self.recovery_document(), indent=1))
@@ -1381,6 +1366,8 @@ class MainWindow(QtWidgets.QMainWindow):
 
     def restore(self, doc: dict):
         self.load_case(doc["case"], doc.get("path"), trials=doc["trials"])
+        self.case_unsaved = True  # recovered work is not in any file until it is saved
+        self._update_title()
         self.trial_tabs.setCurrentIndex(TRIALS.index(doc.get("active", "A")))
 
     def closeEvent(self, event):
@@ -1403,13 +1390,8 @@ class MainWindow(QtWidgets.QMainWindow):
         box.open()
 
     def show_about(self):
-        from importlib.metadata import PackageNotFoundError, version
-        try:
-            v = version("ventcast")
-        except PackageNotFoundError:
-            v = "development"
-        QtWidgets.QMessageBox.about(self, "About Ventcast", f"<b>Ventcast {v}</b><p>{_escape(CAUTION)}</p><p>Model sources:</p><ul>"
-                                    + "".join(f"<li>{_escape(s)}</li>" for s in SOURCES) + "</ul>")
+        QtWidgets.QMessageBox.about(self, "About Ventcast", f"<b>Ventcast {escape(version())}</b><p>{escape(CAUTION)}</p><p>Model sources:</p><ul>"
+                                    + "".join(f"<li>{escape(s)}</li>" for s in SOURCES) + "</ul>")
 
 
 #: Goals the dialog edits: key, label, unit, default (low, high) or maximum, minimum, maximum, step, decimals.
@@ -1477,16 +1459,6 @@ class GoalsDialog(QtWidgets.QDialog):
         self.accept()
 
 
-def _escape(text: str) -> str:
-    return (str(text).replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;"))
-
-
-def _settings_text(s: dict) -> str:
-    mode = "VC" if s["mode"] == "volume" else "PC"
-    size = f"VT {s['vt_ml']:g} mL" if s["mode"] == "volume" else f"Pinsp {s['inspiratory_pressure_cmh2o']:g} cmH2O"
-    return f"{mode}, FiO2 {s['fio2']:.2f}, PEEP {s['peep_cmh2o']:g}, {size}, RR {s['rr_per_min']:g}, Ti {s['inspiratory_time_s']:g} s"
-
-
 def read_recovery() -> dict | None:
     """The recovery document left by a window that did not close cleanly, or None."""
     p = recovery_path()
@@ -1525,11 +1497,13 @@ def offer_recovery(window: MainWindow) -> bool:
 
 def run(case_path: str | None = None, demo: str | None = None, screenshot: str | None = None,
         size: tuple[int, int] = (1600, 1000), quit_after_ms: int | None = None, ask_recovery: bool = True,
-        sets=(), tab: str | None = None, walkthrough=None) -> int:
+        sets=(), tab: str | None = None, walkthrough=None, case: dict | None = None) -> int:
     """Start the window (``ventcast open``). With ``screenshot``, render offscreen to a PNG and exit.
 
     ``sets`` (KEY=VALUE, as in ``predict --set``) make Trial A; ``tab`` picks the right-hand panel
     ('limits', 'lung-fit', 'options' or 'step-down'; with a screenshot the last two are computed first).
+    ``case`` is an already loaded case (the command line has read and checked it); ``walkthrough`` a
+    (script, folder) pair opens the Walkthrough window instead.
     """
     if screenshot:
         os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
@@ -1550,7 +1524,8 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
         code = app.exec()
         _dispose(wk, app)
         return code
-    case = load(case_path) if case_path else load_demo(demo or "ards-moderate")
+    if case is None:
+        case = load(case_path) if case_path else load_demo(demo or "ards-moderate")
     trials = {"A": apply_sets(case, sets), "B": None, "C": None} if sets else None
     window = MainWindow(case, path=case_path, synchronous=bool(screenshot), trials=trials)
     if tab == "lung-fit":
@@ -1563,8 +1538,6 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
         window.right_tabs.setCurrentIndex(3)
         if screenshot:
             window.plan_step_down()
-    if ask_recovery and not screenshot:
-        offer_recovery(window)
     if screenshot:
         window.resize(*size)
         window.show()
@@ -1582,6 +1555,8 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
         _dispose(window, app)
         return 0
     window.show()
+    if ask_recovery:
+        offer_recovery(window)  # over the window, once it is on screen
     if quit_after_ms is not None:
         QtCore.QTimer.singleShot(quit_after_ms, window.close)
     code = app.exec()
@@ -1847,15 +1822,15 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
             w.writerow(row)
         write_atomic(folder / "debrief-timeline.csv", timeline.getvalue())
         write_atomic(folder / "debrief-course.csv", course.getvalue())
-        html = [f"<h1>Walkthrough debrief: {_escape(out['title'])}</h1><p><b>{_escape(CAUTION)}</b></p>",
+        html = [f"<h1>Walkthrough debrief: {escape(out['title'])}</h1><p><b>{escape(CAUTION)}</b></p>",
                 f"<p>Score {out['score']['met']} of {out['score']['of']}</p><ul>"]
-        html += [f"<li>{'(ok)' if s['met'] else '(missed)'} {_escape(s['expected'])} \u2014 {_escape(s['why'])}</li>"
+        html += [f"<li>{'(ok)' if s['met'] else '(missed)'} {escape(s['expected'])} \u2014 {escape(s['why'])}</li>"
                  for s in out["score"]["items"]]
         html.append("</ul><h2>Timeline</h2><ul>")
-        html += [f"<li>{m:.1f} min: {_escape(what)} \u2014 {_escape(detail)}</li>" for m, what, detail in sorted(rows)]
+        html += [f"<li>{m:.1f} min: {escape(what)} \u2014 {escape(detail)}</li>" for m, what, detail in sorted(rows)]
         html.append("</ul><h2>Course</h2><p><img src='chart://pao2_mmhg' width='640'></p>"
                     "<p><img src='chart://paco2_mmhg' width='640'></p>"
-                    f"<p><b>{_escape(CAUTION)}</b></p>")
+                    f"<p><b>{escape(CAUTION)}</b></p>")
         course_for_chart = {"course": {"minutes": c["minutes"], "pao2_mmhg": c["pao2_mmhg"], "paco2_mmhg": c["paco2_mmhg"],
                                        "ph": c["ph"]}}
         images = chart_images({"run": course_for_chart})

@@ -21,7 +21,7 @@ pytest.importorskip("pytestqt")
 from PySide6 import QtCore, QtWidgets  # noqa: E402
 
 from app.casefile import check_settings, load, load_demo  # noqa: E402
-from app.engine import fit_case, forecast_fitted, limit_checks, steady_block, to_settings  # noqa: E402
+from app.engine import forecast_fitted, limit_checks, steady_block, to_settings  # noqa: E402
 from app import window as win  # noqa: E402
 from physiology.forecast import predict  # noqa: E402
 
@@ -439,6 +439,15 @@ def test_recovery_is_offered_and_identical(qtbot, qapp, monkeypatch, tmp_path):
     assert w.state.active == "B" and w.spins["fio2"].value() == 0.45
     _close(w, qapp)
     assert not win.recovery_path().exists()  # a clean close removes it
+
+
+def test_autosave_writes_only_unsaved_work(window, qtbot):
+    window.write_recovery()
+    assert not win.recovery_path().exists()  # a case opened and left as it was
+    _change(qtbot, window, "peep_cmh2o", 12)
+    assert window.windowTitle().endswith(" *")
+    window.write_recovery()
+    assert json.loads(win.recovery_path().read_text())["trials"]["A"]["peep_cmh2o"] == 12
 
 
 def _png_size(path):
