@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from physiology.bloodgas.acidbase import base_excess_van_slyke
-from physiology.gasexchange.alveolar import alveolar_po2
-from physiology import indices
+from ventcast.physiology.bloodgas.acidbase import base_excess_van_slyke
+from ventcast.physiology.gasexchange.alveolar import alveolar_po2
+from ventcast.physiology import indices
 
 #: Respiratory exchange ratio assumed for the ideal alveolar PO2 when VCO2/VO2 are unknown.
 ASSUMED_R = 0.8

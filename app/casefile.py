@@ -19,8 +19,8 @@ from pathlib import Path
 
 import jsonschema
 
-from physiology.gasexchange.alveolar import alveolar_po2
-from physiology.indices import predicted_body_weight
+from ventcast.physiology.gasexchange.alveolar import alveolar_po2
+from ventcast.physiology.indices import predicted_body_weight
 
 FORMAT = "ventcast.case"
 VERSION = 1
@@ -65,7 +65,7 @@ class CaseError(ValueError):
 
 
 def _schema() -> dict:
-    text = resources.files("resources.schema").joinpath("case.schema.json").read_text(encoding="utf-8")
+    text = resources.files("ventcast.resources.schema").joinpath("case.schema.json").read_text(encoding="utf-8")
     return json.loads(text)
 
 
@@ -236,19 +236,35 @@ def demo_text(name: str) -> str:
     """Text of a built-in demo case."""
     if name not in DEMO_NAMES:
         raise CaseError("--demo", f"value {name!r} is not a demo case; accepted: {', '.join(DEMO_NAMES)}")
-    return resources.files("resources.demo").joinpath(f"{name}.ventcast.json").read_text(encoding="utf-8")
+    return resources.files("ventcast.resources.demo").joinpath(f"{name}.ventcast.json").read_text(encoding="utf-8")
 
 
 def load_demo(name: str) -> dict:
     return loads(demo_text(name))
 
 
-def write_atomic(path, text: str) -> None:
-    """Write ``text`` to ``path`` atomically: temporary file in the same folder, fsync, rename."""
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+def write_atomic(path, text: str, mode: int | None = None) -> None:
+    """Write ``text`` to ``path`` atomically: temporary file in the same folder, fsync, rename.
+
+    The file keeps the permissions of the one it replaces; a new file gets ``mode`` (default: what
+    an ordinary ``open`` would give, 0o666 less the umask). A failure leaves the old file as it was
+    and no temporary file behind.
+    """
     target = Path(path)
     folder = target.parent if str(target.parent) else Path(".")
+    try:
+        keep = target.stat().st_mode & 0o7777 if target.is_file() else None
+    except OSError:
+        keep = None
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=folder)
     try:
+        os.fchmod(fd, keep if keep is not None else (mode if mode is not None else 0o666 & ~_umask()))
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             fh.write(text)
             fh.flush()

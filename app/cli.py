@@ -360,6 +360,19 @@ def _cmd_walkthrough(args) -> int:
     return EXIT_OK
 
 
+def _cmd_desktop_entry(args) -> int:
+    from .desktop import write_desktop_entry
+    written = write_desktop_entry(user=args.user, prefix=args.prefix)
+    if args.format == "json":
+        print(json.dumps(written))
+        return EXIT_OK
+    print(f"Wrote the menu entry {written['desktop_file']}")
+    print(f"Wrote the icon       {written['icon']}")
+    print("Ventcast now appears in the application menu (Science); some desktops show it after the next log-in.")
+    print(CAUTION)
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="ventcast", description="Forecast blood gases after a ventilator setting change. "
                      + CAUTION)
@@ -431,6 +444,13 @@ def build_parser() -> argparse.ArgumentParser:
                     help="right-hand panel shown (with --screenshot, options and step-down are computed first)")
     op.add_argument("--quit-after", type=float, default=None, metavar="SECONDS", help=argparse.SUPPRESS)
     op.set_defaults(run=_cmd_open)
+    de = sub.add_parser("desktop-entry", help="add Ventcast to the application menu (a freedesktop .desktop file "
+                        "and the icon)")
+    de.add_argument("--user", action="store_true", help="for this user only (~/.local/share); "
+                    "without it, for every user (/usr/local/share, needs root)")
+    de.add_argument("--prefix", type=Path, default=None, help=argparse.SUPPRESS)  # tests: another data folder
+    de.add_argument("--format", choices=("table", "json"), default="table")
+    de.set_defaults(run=_cmd_desktop_entry)
     return parser
 
 

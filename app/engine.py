@@ -10,15 +10,15 @@ import math
 
 import numpy as np
 
-from physiology.dynamics.course import simulate
-from physiology.fitting.fit import Observation, Patient, fit, likely_range, next_best_measurement
-from physiology.forecast import predict
-from physiology.indices import oxygenation_index
-from physiology.mechanics.motion import mean_airway_pressure, mechanical_power_simplified
-from physiology.mechanics.ventilator import Settings
-from physiology.planning.search import Goals, margins, search
-from physiology.planning.stepdown import step_down
-from physiology.protocols import LIMITS
+from ventcast.physiology.dynamics.course import simulate
+from ventcast.physiology.fitting.fit import Observation, Patient, fit, likely_range, next_best_measurement
+from ventcast.physiology.forecast import predict
+from ventcast.physiology.indices import oxygenation_index
+from ventcast.physiology.mechanics.motion import mean_airway_pressure, mechanical_power_simplified
+from ventcast.physiology.mechanics.ventilator import Settings
+from ventcast.physiology.planning.search import Goals, margins, search
+from ventcast.physiology.planning.stepdown import step_down
+from ventcast.physiology.protocols import LIMITS
 
 from . import CAUTION
 from .bedside import bedside_indices
@@ -82,7 +82,7 @@ def apply_sets(case: dict, sets) -> dict:
         if not math.isfinite(v):
             raise CaseError(f"--set {key}", f"value {value!r} must be a finite number")
         trial[key] = v
-    from physiology.indices import predicted_body_weight
+    from ventcast.physiology.indices import predicted_body_weight
     pbw = float(predicted_body_weight(case["patient"]["height_cm"], case["patient"]["sex"]))
     return check_settings("trial settings", trial, pbw)
 
@@ -363,7 +363,7 @@ def _courses(draws, idx, current, trial, minutes):
 
 
 def _tile(settings, draws):
-    from physiology.fitting.fit import _tile_settings
+    from ventcast.physiology.fitting.fit import _tile_settings
     return _tile_settings(settings, np.atleast_1d(draws.shunt_fixed).size)
 
 

@@ -261,7 +261,7 @@ def build_report(case: dict, trials: dict, out, csv_dir=None, with_plan: bool = 
 def compute_forecasts(case: dict, trials: dict, result=None) -> dict:
     """Forecasts (the predict JSON, with the course band) of each trial: name -> KEY=VALUE list or a
     settings dict. Engine work only (safe on a worker thread)."""
-    from physiology.forecast import predict
+    from ventcast.physiology.forecast import predict
 
     from .casefile import check_settings
     from .engine import apply_sets, fit_case, forecast_fitted, steady_block, to_settings

@@ -17,7 +17,7 @@ from pathlib import Path
 import jsonschema
 import numpy as np
 
-from physiology.scenario import EVENT_KINDS, Action, Event, Timeline
+from ventcast.physiology.scenario import EVENT_KINDS, Action, Event, Timeline
 
 from . import CAUTION
 from .casefile import CaseError, DEMO_NAMES, load, load_demo, parse_json, read_text, validate
@@ -29,7 +29,7 @@ BUILT_IN = ("hypoxaemia-needs-peep", "hypercapnia-gas-trapping", "sudden-deterio
 
 
 def _schema() -> dict:
-    return json.loads(resources.files("resources.schema").joinpath("walkthrough.schema.json").read_text("utf-8"))
+    return json.loads(resources.files("ventcast.resources.schema").joinpath("walkthrough.schema.json").read_text("utf-8"))
 
 
 def _where(parts) -> str:
@@ -42,7 +42,7 @@ def _where(parts) -> str:
 def built_in_text(name: str) -> str:
     if name not in BUILT_IN:
         raise CaseError("SCRIPT", f"{name!r} is neither a file nor a built-in walkthrough ({', '.join(BUILT_IN)})")
-    return resources.files("resources.walkthroughs").joinpath(f"{name}.walkthrough.json").read_text("utf-8")
+    return resources.files("ventcast.resources.walkthroughs").joinpath(f"{name}.walkthrough.json").read_text("utf-8")
 
 
 def load_script(ref: str) -> tuple[dict, Path | None]:

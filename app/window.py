@@ -20,8 +20,8 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from physiology.fitting.fit import PARAMETERS
-from physiology.forecast import predict
+from ventcast.physiology.fitting.fit import PARAMETERS
+from ventcast.physiology.forecast import predict
 
 from . import CAUTION, MMHG_PER_KPA, version
 from .casefile import CaseError, check_settings, load, load_demo, loads, read_text, write_atomic
@@ -796,7 +796,7 @@ class MainWindow(QtWidgets.QMainWindow):
         return float(np.clip(round(vt / max(c, 5.0)), 5, 40))
 
     def _pbw(self):
-        from physiology.indices import predicted_body_weight
+        from ventcast.physiology.indices import predicted_body_weight
         p = self.state.case["patient"]
         return float(predicted_body_weight(p["height_cm"], p["sex"]))
 
@@ -1360,7 +1360,7 @@ class MainWindow(QtWidgets.QMainWindow):
             return
         try:
             recovery_path().parent.mkdir(parents=True, exist_ok=True)
-            write_atomic(recovery_path(), json.dumps(self.recovery_document(), indent=1))
+            write_atomic(recovery_path(), json.dumps(self.recovery_document(), indent=1), mode=0o600)
         except OSError as exc:
             self.status.setText(f"\u26a0 autosave failed: {exc}")
 
@@ -1474,6 +1474,15 @@ def read_recovery() -> dict | None:
         return None
 
 
+def _icon() -> QtGui.QIcon:
+    """The Ventcast mark (resources/icons/ventcast.svg) as the windows' icon."""
+    from importlib import resources
+    data = resources.files("ventcast.resources.icons").joinpath("ventcast.svg").read_bytes()
+    pixmap = QtGui.QPixmap()
+    pixmap.loadFromData(data, "SVG")
+    return QtGui.QIcon(pixmap)
+
+
 def _quiet_offscreen_warnings(mode, context, message):
     # The offscreen platform warns that it cannot size windows to their hints; that is expected there.
     if "propagateSizeHints" in message:
@@ -1515,6 +1524,8 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
     app = QtWidgets.QApplication.instance() or QtWidgets.QApplication([APP_NAME])
     app.setOrganizationName(ORG_NAME)
     app.setApplicationName(APP_NAME)
+    app.setDesktopFileName("ventcast")  # matches the menu entry of `ventcast desktop-entry`
+    app.setWindowIcon(_icon())
     if walkthrough is not None:
         script, folder = walkthrough
         wk = WalkthroughWindow(script, folder)
@@ -1648,7 +1659,7 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         instructor = QtWidgets.QGroupBox("Instructor: inject an event")
         iform = QtWidgets.QFormLayout(instructor)
         self.event_kind = QtWidgets.QComboBox()
-        from physiology.scenario import EVENT_KINDS
+        from ventcast.physiology.scenario import EVENT_KINDS
         for kind, (name, (lo, hi), what) in EVENT_KINDS.items():
             self.event_kind.addItem(f"{kind} ({name} {lo:g}-{hi:g}): {what}", kind)
         self.event_value = QtWidgets.QDoubleSpinBox()
@@ -1760,7 +1771,7 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
     def _recompute(self):
         """Recompute the course on the worker from a frozen copy of the timeline (the window may add events
         or actions meanwhile; only the newest request's course is used)."""
-        from physiology.scenario import Timeline
+        from ventcast.physiology.scenario import Timeline
         self.run._course = None
         tl = self.run.timeline
         frozen = Timeline(tl.patient, tl.settings, list(tl.events), list(tl.actions), [], tl.seed)

@@ -3,5 +3,3 @@
 Internal units are the trade's own: mmHg, cmH2O, mL and L/min, mL/dL, g/dL,
 fractions 0-1 for FiO2 and saturations, degC.
 """
-
-__version__ = "0.1.0"

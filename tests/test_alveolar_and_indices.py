@@ -7,9 +7,9 @@ import numpy as np
 import pytest
 from hypothesis import given, strategies as st
 
-from physiology import indices
-from physiology.bloodgas import oxygen
-from physiology.gasexchange import alveolar
+from ventcast.physiology import indices
+from ventcast.physiology.bloodgas import oxygen
+from ventcast.physiology.gasexchange import alveolar
 
 
 @pytest.mark.parametrize("t,expected", [(37, 46.95), (39, 52.32), (40, 55.19), (35, 42.07), (20, 17.47)])
@@ -123,12 +123,13 @@ def test_arrays_are_accepted():
 
 def test_engine_imports_no_qt():
     """The engine never imports Qt or pyqtgraph (architecture contract)."""
-    code = ("import sys, physiology, physiology.bloodgas.oxygen, physiology.bloodgas.acidbase, "
-            "physiology.bloodgas.carbon_dioxide, physiology.gasexchange.alveolar, physiology.indices\n"
+    code = ("import sys, ventcast.physiology as physiology, ventcast.physiology.bloodgas.oxygen, "
+            "ventcast.physiology.indices\n"
             "import pkgutil, importlib\n"
-            "for m in pkgutil.walk_packages(physiology.__path__, 'physiology.'):\n"
+            "for m in pkgutil.walk_packages(physiology.__path__, 'ventcast.physiology.'):\n"
             "    importlib.import_module(m.name)\n"
-            "bad = [m for m in sys.modules if m.split('.')[0] in ('PySide6', 'shiboken6', 'pyqtgraph', 'app')]\n"
+            "bad = [m for m in sys.modules if m.split('.')[0] in ('PySide6', 'shiboken6', 'pyqtgraph', 'app')\n"
+            "       or m.startswith('ventcast.app')]\n"
             "print(bad); sys.exit(1 if bad else 0)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     assert out.returncode == 0, out.stdout + out.stderr

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from physiology.bloodgas import acidbase, carbon_dioxide, oxygen
+from ventcast.physiology.bloodgas import acidbase, carbon_dioxide, oxygen
 
 # Severinghaus JW. J Appl Physiol 1979;46:599-602, Table 1 (PO2 mmHg -> %S), all 51 points.
 SEVERINGHAUS_TABLE_1 = [
@@ -120,7 +120,7 @@ def test_fact_one_litre_of_blood_carries_about_200_ml_o2():
 
 def test_fact_one_litre_of_dry_air_holds_about_209_ml_o2():
     """Common practice: dry air is 20.95 % O2, so 1 L holds ~209 mL O2 (and ~1 L of blood's worth)."""
-    from physiology.gasexchange.alveolar import inspired_po2, water_vapour_pressure_antoine
+    from ventcast.physiology.gasexchange.alveolar import inspired_po2, water_vapour_pressure_antoine
     pb = 760.0
     dry_po2 = inspired_po2(0.21, pb) * pb / (pb - water_vapour_pressure_antoine(37.0))
     ml_o2_per_litre_air = 1000 * dry_po2 / pb

@@ -9,15 +9,15 @@ from pathlib import Path
 
 import pytest
 
-from app import casefile
-from app.cli import main
+from ventcast.app import casefile
+from ventcast.app.cli import main
 
 ROOT = Path(__file__).resolve().parents[1]
 
 
 @pytest.fixture(scope="module")
 def predict_json():
-    out = subprocess.run([sys.executable, "-m", "app.cli", "predict", "--demo", "ards-moderate", "--set",
+    out = subprocess.run([sys.executable, "-m", "ventcast", "predict", "--demo", "ards-moderate", "--set",
                           "peep_cmh2o=12", "--format", "json"], capture_output=True, text=True, cwd=ROOT)
     assert out.returncode == 0, out.stderr
     return json.loads(out.stdout)
@@ -72,7 +72,7 @@ def test_predict_fit_block_lets_a_reviewer_recompute(predict_json):
 
 
 def test_predict_table_ends_with_caution():
-    out = subprocess.run([sys.executable, "-m", "app.cli", "predict", "--demo", "postop-wean", "--set", "fio2=0.35"],
+    out = subprocess.run([sys.executable, "-m", "ventcast", "predict", "--demo", "postop-wean", "--set", "fio2=0.35"],
                          capture_output=True, text=True, cwd=ROOT)
     assert out.returncode == 0, out.stderr
     assert out.stdout.strip().splitlines()[-1].startswith("Caution: model estimate")
@@ -236,8 +236,8 @@ def test_course_band_leaves_out_draws_it_cannot_follow(monkeypatch):
     """A draw whose course cannot be integrated is found by halving the batch and left out (and counted),
     instead of losing the whole band."""
     import numpy as np
-    from app import engine
-    from physiology.dynamics import course as course_module
+    from ventcast.app import engine
+    from ventcast.physiology.dynamics import course as course_module
 
     case = casefile.load_demo("ards-moderate")
     _p, _o, result = engine.fit_case(case)

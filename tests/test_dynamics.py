@@ -4,9 +4,9 @@ import numpy as np
 import pytest
 from scipy.optimize import curve_fit
 
-from physiology.dynamics.course import Change, rhs, simulate
-from physiology.forecast import PatientModel
-from physiology.mechanics.ventilator import Mechanics, Settings
+from ventcast.physiology.dynamics.course import Change, rhs, simulate
+from ventcast.physiology.forecast import PatientModel
+from ventcast.physiology.mechanics.ventilator import Mechanics, Settings
 
 # A patient without airflow obstruction, P/F above 180, in pressure control (as in Cakar 2001).
 PATIENT = PatientModel(pbw_kg=70, shunt_fixed=0.08, log_sd=0.6, dead_space_fraction=0.15, hb=12,

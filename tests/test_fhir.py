@@ -13,9 +13,9 @@ from pathlib import Path
 
 import pytest
 
-from app import casefile
-from app.cli import main
-from app.fhir import BundleError, import_bundle
+from ventcast.app import casefile
+from ventcast.app.cli import main
+from ventcast.app.fhir import BundleError, import_bundle
 
 DATA = Path(__file__).resolve().parent / "data" / "fhir-abg-bundle.json"
 

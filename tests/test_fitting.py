@@ -3,10 +3,10 @@
 import numpy as np
 import pytest
 
-from physiology.fitting.fit import (PARAMETERS, InputError, Observation, Patient, _from_z, _sd, _to_z, build_model,
+from ventcast.physiology.fitting.fit import (PARAMETERS, InputError, Observation, Patient, _from_z, _sd, _to_z, build_model,
                                     fit, likely_range, next_best_measurement, population_defaults)
-from physiology.forecast import predict
-from physiology.mechanics.ventilator import Settings
+from ventcast.physiology.forecast import predict
+from ventcast.physiology.mechanics.ventilator import Settings
 
 PT = Patient(sex="female", height_cm=165, weight_kg=78, temperature_c=37.8, hb_g_dl=10.5)
 TRUE = {"shunt_fixed": 0.18, "recruitable": 0.12, "log_sd": 1.0, "dead_space_fraction": 0.25, "vco2": 210.0,
@@ -98,7 +98,7 @@ def test_needs_an_observation():
 
 def test_sampler_that_cannot_finish_says_so(monkeypatch):
     """Honest failure: a sampler that does not reach the posterior gives no likely range and no success."""
-    import physiology.fitting.fit as fitting
+    import ventcast.physiology.fitting.fit as fitting
     monkeypatch.setattr(fitting, "MAX_STAGES", 1)
     f = fit(PT, [observe(vc(0.5, 8)), observe(vc(0.6, 10))])
     assert not f.success

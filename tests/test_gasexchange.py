@@ -4,9 +4,9 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
-from physiology.bloodgas import oxygen
-from physiology.gasexchange import alveolar
-from physiology.gasexchange.compartments import LungParameters, solve_steady_state
+from ventcast.physiology.bloodgas import oxygen
+from ventcast.physiology.gasexchange import alveolar
+from ventcast.physiology.gasexchange.compartments import LungParameters, solve_steady_state
 
 HOMOGENEOUS = dict(alveolar_ventilation=4.3, cardiac_output=5.0, vo2=250.0, vco2=200.0, hb=15.0,
                    fio2=0.21, barometric=760.0)
@@ -56,7 +56,7 @@ def test_berggren_recovers_the_shunt_put_in(shunt, fio2):
     r = solve_steady_state(LungParameters(**{**HOMOGENEOUS, "shunt": shunt, "fio2": fio2}))
     hb = 15.0
     p_end, c_end = float(r.unit_po2[25]), float(r.unit_pco2[25])
-    from physiology.bloodgas.acidbase import ph_blood_buffer_line
+    from ventcast.physiology.bloodgas.acidbase import ph_blood_buffer_line
     s = oxygen.saturation(p_end, 7.40, c_end)  # first guess, then close the S-pH loop
     for _ in range(30):
         ph = ph_blood_buffer_line(c_end, s, hb)

@@ -4,10 +4,10 @@ import numpy as np
 import pytest
 from hypothesis import given, settings as hsettings, strategies as st
 
-from physiology import protocols
-from physiology.forecast import PatientModel, predict
-from physiology.mechanics import motion, recruitment
-from physiology.mechanics.ventilator import Mechanics, Settings, breathe
+from ventcast.physiology import protocols
+from ventcast.physiology.forecast import PatientModel, predict
+from ventcast.physiology.mechanics import motion, recruitment
+from ventcast.physiology.mechanics.ventilator import Mechanics, Settings, breathe
 
 
 # --- worked examples (digest section 5; equations from the cited papers) -------------------------

@@ -6,12 +6,12 @@ import json
 import numpy as np
 import pytest
 
-from app.cli import main
-from physiology.fitting.fit import PARAMETERS, Patient, _from_z, _to_z, build_model, fit, population_defaults
-from physiology.forecast import predict
-from physiology.planning.search import Goals, evaluate, search
-from physiology.planning.stepdown import step_down
-from physiology.protocols import PEEP_FIO2_HIGHER, PEEP_FIO2_LOWER, table_steps
+from ventcast.app.cli import main
+from ventcast.physiology.fitting.fit import PARAMETERS, Patient, _from_z, _to_z, build_model, fit, population_defaults
+from ventcast.physiology.forecast import predict
+from ventcast.physiology.planning.search import Goals, evaluate, search
+from ventcast.physiology.planning.stepdown import step_down
+from ventcast.physiology.protocols import PEEP_FIO2_HIGHER, PEEP_FIO2_LOWER, table_steps
 
 from test_fitting import PT, TRUE, observe, vc
 

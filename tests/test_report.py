@@ -6,10 +6,10 @@ import subprocess
 
 import pytest
 
-from app import CAUTION
-from app.casefile import load_demo
-from app.cli import main
-from app.report import COURSE_COLUMNS, build_report, course_csv, minute_rows, observations_csv, read_csv
+from ventcast.app import CAUTION
+from ventcast.app.casefile import load_demo
+from ventcast.app.cli import main
+from ventcast.app.report import COURSE_COLUMNS, build_report, course_csv, minute_rows, observations_csv, read_csv
 
 pypdf = pytest.importorskip("pypdf")
 

@@ -8,10 +8,10 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from app.cli import main
-from app.walkthrough import BUILT_IN, Run, built_in_text
-from physiology.dynamics.course import Change, simulate
-from physiology.forecast import predict
+from ventcast.app.cli import main
+from ventcast.app.walkthrough import BUILT_IN, Run, built_in_text
+from ventcast.physiology.dynamics.course import Change, simulate
+from ventcast.physiology.forecast import predict
 
 SCRIPT = json.loads(built_in_text("hypoxaemia-needs-peep"))
 

@@ -20,10 +20,10 @@ import pytest
 pytest.importorskip("pytestqt")
 from PySide6 import QtCore, QtWidgets  # noqa: E402
 
-from app.casefile import check_settings, load, load_demo  # noqa: E402
-from app.engine import forecast_fitted, limit_checks, steady_block, to_settings  # noqa: E402
-from app import window as win  # noqa: E402
-from physiology.forecast import predict  # noqa: E402
+from ventcast.app.casefile import check_settings, load, load_demo  # noqa: E402
+from ventcast.app.engine import forecast_fitted, limit_checks, steady_block, to_settings  # noqa: E402
+from ventcast.app import window as win  # noqa: E402
+from ventcast.physiology.forecast import predict  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 WAIT_MS = 120_000
@@ -282,7 +282,7 @@ def test_options_panel_finds_settings_and_tries_one(window, qtbot):
 
 
 def test_step_down_panel_follows_the_table(window, qtbot):
-    from physiology.protocols import table_steps
+    from ventcast.physiology.protocols import table_steps
     window.wean_table_choice.setCurrentIndex(1)
     window.spont_rr.setValue(24)
     window.spont_vt.setValue(300)
@@ -334,7 +334,7 @@ def test_fhir_import_adds_observations_to_an_unsaved_copy(window, qtbot):
 
 
 def test_walkthrough_mode_start_inject_draw_finish_export(qtbot, qapp, tmp_path):
-    from app.walkthrough import built_in_text
+    from ventcast.app.walkthrough import built_in_text
     w = win.WalkthroughWindow(json.loads(built_in_text("hypoxaemia-needs-peep")))
     w.show()
     qtbot.waitUntil(lambda: w.run._course is not None, timeout=WAIT_MS)
@@ -412,8 +412,8 @@ def test_recovery_is_offered_and_identical(qtbot, qapp, monkeypatch, tmp_path):
     script = (
         "import os, signal, sys\n"
         "from PySide6 import QtCore, QtWidgets\n"
-        "from app.casefile import load_demo\n"
-        "from app.window import MainWindow, recovery_path\n"
+        "from ventcast.app.casefile import load_demo\n"
+        "from ventcast.app.window import MainWindow, recovery_path\n"
         "app = QtWidgets.QApplication([])\n"
         "w = MainWindow(load_demo('copd-trapping'), synchronous=True)\n"
         "w.set_trial_value('rr_per_min', 14)\n"
@@ -459,7 +459,7 @@ def _png_size(path):
 
 def test_screenshot_command_writes_a_png_of_the_size_asked(tmp_path):
     out = tmp_path / "shot.png"
-    proc = subprocess.run([sys.executable, "-m", "app.cli", "open", "--demo", "postop-wean", "--set", "fio2=0.35",
+    proc = subprocess.run([sys.executable, "-m", "ventcast", "open", "--demo", "postop-wean", "--set", "fio2=0.35",
                            "--screenshot", str(out), "--size", "1200x800"], cwd=ROOT, capture_output=True, text=True,
                           timeout=300, env=dict(os.environ, QT_QPA_PLATFORM="offscreen"))
     assert proc.returncode == 0, proc.stderr
@@ -469,7 +469,7 @@ def test_screenshot_command_writes_a_png_of_the_size_asked(tmp_path):
 
 
 def test_open_refuses_bad_input_before_any_window(tmp_path):
-    from app.cli import main
+    from ventcast.app.cli import main
     assert main(["open", "--demo", "ards-moderate", "--size", "10x10", "--screenshot", str(tmp_path / "a.png")]) == 2
     assert main(["open", "--demo", "ards-moderate", "--set", "fio2=60", "--screenshot", str(tmp_path / "a.png")]) == 2
     assert not any(tmp_path.iterdir())
@@ -478,7 +478,7 @@ def test_open_refuses_bad_input_before_any_window(tmp_path):
 def test_window_starts_and_quits(tmp_path):
     """Smoke test: the real command starts the window and quits after a second."""
     env = dict(os.environ, QT_QPA_PLATFORM="offscreen", VENTCAST_DATA_DIR=str(tmp_path))
-    proc = subprocess.run([sys.executable, "-m", "app.cli", "open", "--demo", "ards-moderate", "--quit-after", "1"],
+    proc = subprocess.run([sys.executable, "-m", "ventcast", "open", "--demo", "ards-moderate", "--quit-after", "1"],
                           cwd=ROOT, capture_output=True, text=True, timeout=300, env=env)
     assert proc.returncode == 0, proc.stderr
     assert "Traceback" not in proc.stderr

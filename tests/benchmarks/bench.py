@@ -19,9 +19,10 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parents[1]
-for p in (str(ROOT), str(HERE)):
-    if p not in sys.path:
-        sys.path.insert(0, p)
+# The package is imported by its one installed name (`ventcast`, editable install); only the
+# helpers beside this file are put on the path.
+if str(HERE) not in sys.path:
+    sys.path.insert(0, str(HERE))
 
 
 def median_ms(fn, repeats: int = 7, warmup: int = 1, min_seconds: float = 0.0) -> float:
@@ -42,7 +43,7 @@ def median_ms(fn, repeats: int = 7, warmup: int = 1, min_seconds: float = 0.0) -
 def bench_steady(results: dict) -> None:
     import numpy as np
 
-    from physiology.gasexchange.compartments import LungParameters, solve_steady_state
+    from ventcast.physiology.gasexchange.compartments import LungParameters, solve_steady_state
     from reference_solver import solve_reference
 
     one = LungParameters(shunt=0.15, log_sd=1.0, alveolar_ventilation=5.0, cardiac_output=5.0, fio2=0.5)
@@ -78,8 +79,8 @@ def bench_prediction(results: dict) -> None:
     """Mechanics + V/Q lung: one trial setting, and 10,000 candidate settings in one batch."""
     import numpy as np
 
-    from physiology.forecast import PatientModel, predict
-    from physiology.mechanics.ventilator import Mechanics, Settings
+    from ventcast.physiology.forecast import PatientModel, predict
+    from ventcast.physiology.mechanics.ventilator import Mechanics, Settings
 
     patient = PatientModel(pbw_kg=57, shunt_fixed=0.08, log_sd=0.9, dead_space_fraction=0.25, hb=10.5,
                            mechanics=Mechanics(resistance=15, c_max=35, recruitable=0.35))
@@ -96,9 +97,9 @@ def bench_course(results: dict) -> None:
     """60-minute course after an FiO2/PEEP/rate change: one case, and 200 parameter draws in one batch."""
     import numpy as np
 
-    from physiology.dynamics.course import simulate
-    from physiology.forecast import PatientModel
-    from physiology.mechanics.ventilator import Mechanics, Settings
+    from ventcast.physiology.dynamics.course import simulate
+    from ventcast.physiology.forecast import PatientModel
+    from ventcast.physiology.mechanics.ventilator import Mechanics, Settings
 
     patient = PatientModel(pbw_kg=70, shunt_fixed=0.08, log_sd=0.6, dead_space_fraction=0.15, hb=12,
                            mechanics=Mechanics(resistance=10, c_max=50))
@@ -115,9 +116,9 @@ def bench_course(results: dict) -> None:
 
 def bench_fit(results: dict) -> None:
     """Fit from one and from six observations; a likely range from 400 draws at a trial setting."""
-    from physiology.fitting.fit import Observation, Patient, build_model, fit, likely_range
-    from physiology.forecast import predict
-    from physiology.mechanics.ventilator import Settings
+    from ventcast.physiology.fitting.fit import Observation, Patient, build_model, fit, likely_range
+    from ventcast.physiology.forecast import predict
+    from ventcast.physiology.mechanics.ventilator import Settings
 
     pt = Patient(sex="female", height_cm=165, weight_kg=78, hb_g_dl=10.5)
     true = {"shunt_fixed": 0.18, "recruitable": 0.12, "log_sd": 1.0, "dead_space_fraction": 0.25, "vco2": 210.0,
@@ -142,10 +143,10 @@ def bench_fit(results: dict) -> None:
 def bench_planning(results: dict) -> None:
     """Goal search (every candidate of the grid screened, the best 50 against 200 parameter draws) and a
     step-down plan, on the fitted ards-moderate demo case."""
-    from app.casefile import load_demo
-    from app.engine import fit_case, to_settings
-    from physiology.planning.search import Goals, search
-    from physiology.planning.stepdown import step_down
+    from ventcast.app.casefile import load_demo
+    from ventcast.app.engine import fit_case, to_settings
+    from ventcast.physiology.planning.search import Goals, search
+    from ventcast.physiology.planning.stepdown import step_down
 
     case = load_demo("ards-moderate")
     patient, _obs, fitted = fit_case(case)
@@ -161,9 +162,9 @@ def bench_planning(results: dict) -> None:
     results["plan_candidates_screened"] = screened["n"]
     # A step-down plan with several steps: an invented patient with a modest shunt, fitted from one blood
     # gas at FiO2 0.7 and PEEP 14 (the demo case stops after one step: its SpO2 is near the goal).
-    from physiology.fitting.fit import Observation, Patient, build_model, fit
-    from physiology.forecast import predict
-    from physiology.mechanics.ventilator import Settings
+    from ventcast.physiology.fitting.fit import Observation, Patient, build_model, fit
+    from ventcast.physiology.forecast import predict
+    from ventcast.physiology.mechanics.ventilator import Settings
 
     pt = Patient(sex="male", height_cm=178, weight_kg=84, hb_g_dl=12.0)
     truth = build_model(pt, {"shunt_fixed": 0.08, "recruitable": 0.1, "log_sd": 0.7, "dead_space_fraction": 0.2,
@@ -187,8 +188,8 @@ WINDOW_PROBE = r"""
 import os, sys, time
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
 from PySide6 import QtWidgets
-from app.casefile import load_demo
-from app.window import MainWindow
+from ventcast.app.casefile import load_demo
+from ventcast.app.window import MainWindow
 app = QtWidgets.QApplication([])
 w = MainWindow(load_demo("ards-moderate"))
 w.show()
@@ -216,8 +217,8 @@ def bench_window(results: dict) -> None:
     os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
     from PySide6 import QtWidgets
 
-    from app.casefile import load_demo
-    from app.window import MainWindow
+    from ventcast.app.casefile import load_demo
+    from ventcast.app.window import MainWindow
 
     app = QtWidgets.QApplication.instance() or QtWidgets.QApplication([])
     w = MainWindow(load_demo("ards-moderate"), synchronous=True)
@@ -264,12 +265,12 @@ BENCHES = [bench_steady, bench_prediction, bench_course, bench_fit, bench_planni
 
 def _available(bench) -> bool:
     try:
-        bench_probe = {"bench_steady": "physiology.gasexchange.compartments",
-                       "bench_prediction": "physiology.forecast",
-                       "bench_course": "physiology.dynamics.course",
-                       "bench_fit": "physiology.fitting.fit",
-                       "bench_planning": "physiology.planning.search",
-                       "bench_window": "app.window"}[bench.__name__]
+        bench_probe = {"bench_steady": "ventcast.physiology.gasexchange.compartments",
+                       "bench_prediction": "ventcast.physiology.forecast",
+                       "bench_course": "ventcast.physiology.dynamics.course",
+                       "bench_fit": "ventcast.physiology.fitting.fit",
+                       "bench_planning": "ventcast.physiology.planning.search",
+                       "bench_window": "ventcast.app.window"}[bench.__name__]
         __import__(bench_probe)
         return True
     except ImportError:

@@ -16,7 +16,7 @@ import math
 import numpy as np
 from scipy.optimize import fsolve
 
-from physiology.gasexchange.compartments import LungParameters, N_HIGH_UNITS, N_MAIN_UNITS
+from ventcast.physiology.gasexchange.compartments import LungParameters, N_HIGH_UNITS, N_MAIN_UNITS
 
 
 def _antoine(t):

@@ -1,0 +1,1 @@
+"""The Ventcast icon (an original mark: a breath wave running into a forecast dot)."""
