@@ -13,6 +13,7 @@ import copy
 import json
 import math
 import os
+import stat
 import tempfile
 from importlib import resources
 from pathlib import Path
@@ -161,6 +162,40 @@ def check_settings(field: str, settings: dict, pbw_kg: float) -> dict:
     return s
 
 
+#: Goal ranges [low, high] accepted in code: each end within these bounds, low below high, and in
+#: the documented unit (saturations as fractions 0-1, never percent).
+GOAL_RANGE_BOUNDS = {
+    "pao2_mmhg": (40.0, 500.0, "mmHg"),
+    "spo2": (0.70, 1.0, "(fraction)"),
+    "paco2_mmhg": (20.0, 100.0, "mmHg"),
+    "ph": (6.9, 7.8, ""),
+    "vt_ml_per_kg_pbw": (3.0, 12.0, "mL/kg PBW"),
+}
+
+
+def check_goals(field: str, goals: dict) -> dict:
+    """Refuse goals that would switch a check off or mean something else: non-finite numbers, ranges
+    out of order, ends outside the accepted bounds, saturations given in percent."""
+    for key, value in goals.items():
+        where = f"{field}.{key}"
+        if key in GOAL_RANGE_BOUNDS:
+            lo_b, hi_b, unit = GOAL_RANGE_BOUNDS[key]
+            low, high = (_finite(f"{where}[{i}]", v) for i, v in enumerate(value))
+            if key == "spo2" and (low > 1.0 or high > 1.0):
+                raise CaseError(where, f"value {list(value)!r} looks like percent; give SpO2 goals as fractions "
+                                       f"0-1 (e.g. [{low / 100:.2f}, {high / 100:.2f}])")
+            for i, v in enumerate((low, high)):
+                if not lo_b <= v <= hi_b:
+                    raise CaseError(f"{where}[{i}]", f"value {v:g} is outside the accepted range {lo_b:g} to "
+                                                     f"{hi_b:g} {unit}".rstrip())
+            if not low < high:
+                raise CaseError(where, f"value {list(value)!r} is not a range: the low end must come first "
+                                       f"and be below the high end")
+        else:
+            _finite(where, value)
+    return goals
+
+
 def validate(doc) -> dict:
     """Validate a parsed case; return a normalised deep copy with defaults filled in."""
     if not isinstance(doc, dict):
@@ -178,6 +213,8 @@ def validate(doc) -> dict:
     case["patient"] = patient
     pbw = float(predicted_body_weight(patient["height_cm"], patient["sex"]))
     case["settings"] = check_settings("settings", case["settings"], pbw)
+    if case.get("goals"):
+        check_goals("goals", case["goals"])
     pb = patient["barometric_mmhg"]
     t = patient["temperature_c"]
     for i, obs in enumerate(case["observations"]):
@@ -199,27 +236,109 @@ def validate(doc) -> dict:
     return case
 
 
+MAX_DEPTH = 32
+MAX_INT_DIGITS = 18
+
+
 def read_text(path, field: str, max_bytes: int = MAX_BYTES) -> str:
-    """UTF-8 text of a file the user named, refused with ``field`` named when missing, too large or not text."""
+    """UTF-8 text of a file the user named, refused with ``field`` named when it is missing, not a
+    regular file (a folder, a device such as /dev/zero, a FIFO), too large, or not text.
+
+    The read itself is bounded: at most ``max_bytes`` + 1 bytes are ever read, whatever the file
+    system says of the size.
+    """
     p = Path(path)
     try:
-        size = p.stat().st_size
+        info = p.stat()
     except OSError as exc:
         raise CaseError(field, f"cannot read {str(p)!r}: {exc.strerror}") from None
-    if size > max_bytes:
-        raise CaseError(field, f"{str(p)!r} is {size} bytes; at most {max_bytes} bytes are accepted")
+    if not stat.S_ISREG(info.st_mode):
+        kind = "a folder" if stat.S_ISDIR(info.st_mode) else "not a regular file (a device, FIFO or socket)"
+        raise CaseError(field, f"{str(p)!r} is {kind}; a file is needed")
+    if info.st_size > max_bytes:
+        raise CaseError(field, f"{str(p)!r} is {info.st_size} bytes; at most {max_bytes} bytes are accepted")
     try:
-        return p.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
+        with open(p, "rb") as fh:
+            data = fh.read(max_bytes + 1)
+    except OSError as exc:
+        raise CaseError(field, f"cannot read {str(p)!r}: {exc.strerror}") from None
+    if len(data) > max_bytes:
+        raise CaseError(field, f"{str(p)!r} is more than {max_bytes} bytes; at most {max_bytes} bytes are accepted")
+    try:
+        return data.decode("utf-8")
+    except UnicodeDecodeError as exc:
         raise CaseError(field, f"cannot read {str(p)!r} as UTF-8 text: {exc}") from None
 
 
-def parse_json(text: str, field: str):
-    """JSON from text, refused with ``field`` named and the place of the error."""
+class _JSONRefusal(ValueError):
+    pass
+
+
+def _no_constant(name: str):
+    raise _JSONRefusal(f"{name} is not a number JSON accepts (only finite numbers are)")
+
+
+def _bounded_int(text: str) -> int:
+    digits = len(text.lstrip("-"))
+    if digits > MAX_INT_DIGITS:
+        raise _JSONRefusal(f"an integer of {digits} digits is too long (at most {MAX_INT_DIGITS})")
+    return int(text)
+
+
+def _finite_float(text: str) -> float:
+    value = float(text)
+    if not math.isfinite(value):
+        raise _JSONRefusal(f"the number {text[:40]} is too large to be finite")
+    return value
+
+
+def _unique_keys(pairs):
+    out = {}
+    for key, value in pairs:
+        if key in out:
+            raise _JSONRefusal(f"the key {key!r} appears twice in one object")
+        out[key] = value
+    return out
+
+
+def _nesting_depth(text: str) -> int:
+    """Deepest nesting of objects and arrays, outside strings (a linear scan, no recursion)."""
+    depth = deepest = 0
+    in_string = escaped = False
+    for ch in text:
+        if in_string:
+            if escaped:
+                escaped = False
+            elif ch == "\\":
+                escaped = True
+            elif ch == '"':
+                in_string = False
+        elif ch == '"':
+            in_string = True
+        elif ch in "[{":
+            depth += 1
+            deepest = max(deepest, depth)
+        elif ch in "]}":
+            depth -= 1
+    return deepest
+
+
+def parse_json(text: str, field: str, max_depth: int = MAX_DEPTH):
+    """JSON from text, refused with ``field`` named and the place of the error.
+
+    Stricter than ``json.loads``: NaN, Infinity and numbers too large to be finite are refused (a NaN
+    would switch off every check it reaches), a key given twice in one object is refused (the last
+    would silently win), integers longer than 18 digits and nesting deeper than ``max_depth`` too.
+    """
+    if _nesting_depth(text) > max_depth:
+        raise CaseError(field, f"not accepted: objects and arrays nested more than {max_depth} deep")
     try:
-        return json.loads(text)
+        return json.loads(text, parse_constant=_no_constant, parse_int=_bounded_int,
+                          parse_float=_finite_float, object_pairs_hook=_unique_keys)
     except json.JSONDecodeError as exc:
         raise CaseError(field, f"not valid JSON: {exc.msg} at line {exc.lineno}, column {exc.colno}") from None
+    except _JSONRefusal as exc:
+        raise CaseError(field, f"not accepted: {exc}") from None
 
 
 def loads(text: str) -> dict:

@@ -14,7 +14,7 @@ from pathlib import Path
 from . import CAUTION
 from .bedside import bedside_indices
 from .engine import ModelError
-from .casefile import DEMO_NAMES, CaseError, demo_text, load, load_demo, write_atomic
+from .casefile import DEMO_NAMES, CaseError, demo_text, load, load_demo, read_text, write_atomic
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_MODEL = 0, 1, 2, 3
 
@@ -267,6 +267,17 @@ def _cmd_wean(args) -> int:
     return EXIT_OK
 
 
+def _check_output_path(option: str, path: Path, force: bool) -> None:
+    """Before anything is computed or written: the folder exists, and an existing file is replaced
+    only with --force (a directory or a special file never)."""
+    if path.exists() and not path.is_file():
+        raise CaseError(option, f"value {str(path)!r} exists and is not a regular file")
+    if not path.parent.is_dir():
+        raise CaseError(option, f"value {str(path)!r}: the folder {str(path.parent)!r} does not exist")
+    if path.is_file() and not force:
+        raise CaseError(option, f"value {str(path)!r} exists; give --force to replace it")
+
+
 def _cmd_import_fhir(args) -> int:
     from .casefile import dumps, read_text
     from .fhir import import_bundle
@@ -277,6 +288,7 @@ def _cmd_import_fhir(args) -> int:
         raise CaseError("--out", f"value {args.out!r} must name a .ventcast.json file")
     if args.into and out.resolve() == Path(args.into).resolve():
         raise CaseError("--out", "must differ from --into: the existing case is never overwritten")
+    _check_output_path("--out", out, args.force)
     case, report = import_bundle(text, into=into)
     write_atomic(out, dumps(case))
     if args.format == "json":
@@ -330,11 +342,7 @@ def _cmd_walkthrough(args) -> int:
     if not 0 < until <= run.duration:
         raise CaseError("--until", f"value {until:g} is outside the accepted range above 0 to {run.duration:g} min")
     if args.actions:
-        try:
-            text = Path(args.actions).read_text(encoding="utf-8")
-        except (OSError, UnicodeDecodeError) as exc:
-            raise CaseError("--actions", f"cannot read {args.actions!r}: {exc}") from None
-        apply_actions_file(run, text)
+        apply_actions_file(run, read_text(args.actions, "--actions"))
     try:
         out = run.debrief(until)
     except ArithmeticError as exc:
@@ -431,6 +439,7 @@ def build_parser() -> argparse.ArgumentParser:
     fh.add_argument("bundle", help="FHIR R4 Bundle (JSON) of Observation resources")
     fh.add_argument("--out", required=True, help="the case file to write (.ventcast.json)")
     fh.add_argument("--into", help="an existing case: its copy, with the imported observations, goes to --out")
+    fh.add_argument("--force", action="store_true", help="replace --out if it exists")
     fh.add_argument("--format", choices=("table", "json"), default="table")
     fh.set_defaults(run=_cmd_import_fhir)
     op = sub.add_parser("open", help="open the window on a case (the ards-moderate demo when none is given)")

@@ -129,7 +129,8 @@ def steady_block(pred) -> dict:
         "petco2_mmhg": _f(g.petco2), "vd_vt": _f(g.vd_vt), "shunt_fraction": _f(pred.shunt),
         "pplat_cmh2o": _f(b.pplat), "ppeak_cmh2o": _f(b.ppeak), "driving_pressure_cmh2o": _f(b.driving_pressure),
         "mean_airway_pressure_cmh2o": _f(b.mean_paw), "intrinsic_peep_cmh2o": _f(b.intrinsic_peep),
-        "mechanical_power_j_min": _f(b.mechanical_power), "vt_ml": _f(b.vt_ml), "vt_ml_per_kg_pbw": _f(pred.vt_per_kg_pbw),
+        "mechanical_power_j_min": _f(b.mechanical_power), "inspiratory_filling": _f(b.inspiratory_filling),
+        "vt_ml": _f(b.vt_ml), "vt_ml_per_kg_pbw": _f(pred.vt_per_kg_pbw),
         "pf_ratio_mmhg": _f(g.pf_ratio), "cardiac_output_l_min": _f(pred.cardiac_output),
         "minute_ventilation_l_min": _f(b.minute_ventilation), "alveolar_ventilation_l_min": _f(b.alveolar_ventilation),
     }
@@ -150,6 +151,11 @@ def now_block(case: dict) -> dict:
     out["mechanical_power_j_min"] = mp
     out["oxygenation_index"] = oi
     return out
+
+
+#: Pressure control: below this share of the equilibrium volume within Ti, the Limits say so
+#: (1 - e^-3 = 0.95, three time constants; common practice).
+FILLING_MIN = 0.95
 
 
 def limit_checks(steady: dict, goals: dict | None = None, fio2: float | None = None) -> list:
@@ -224,6 +230,12 @@ def limit_checks(steady: dict, goals: dict | None = None, fio2: float | None = N
     line("mechanical_power", "Mechanical power", x, f"<= {mp_max:g} J/min", x is not None and x > mp_max,
          "mechanical_power_high", "caution", f"mechanical power {x or 0:.0f} J/min is above {mp_max:g} J/min",
          f"{x or 0:.1f} J/min")
+    x = v.get("inspiratory_filling")
+    if x is not None and x < FILLING_MIN:
+        line("single-compartment equation of motion", "Filling within Ti", x, f">= {FILLING_MIN:.0%}", True,
+             "pc_incomplete_filling", "info",
+             f"the lung fills to {x:.0%} of its pressure-control volume within Ti: flow has not stopped at the end "
+             f"of inspiration; a longer Ti would deliver more VT", f"{x:.0%}")
     if fio2 is not None:
         line("fio2", "FiO2", fio2, f"<= {fio2_max:.2f}", fio2 > fio2_max, "fio2_high", "caution",
              f"FiO2 {fio2:.2f} is above {fio2_max:.2f}", f"{fio2:.2f}")

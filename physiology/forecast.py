@@ -93,6 +93,23 @@ class Prediction:
     patient: PatientModel = field(repr=False)
 
 
+def _masked(result, ok):
+    """A copy of a frozen result whose numeric arrays are NaN (and ``success`` False) where ``ok`` is False."""
+    ok = np.asarray(ok, dtype=bool)
+    changes = {}
+    for f in fields(result):
+        value = getattr(result, f.name)
+        if f.name == "success":
+            changes[f.name] = np.asarray(value, dtype=bool) & ok if np.ndim(ok) else np.bool_(bool(value) and bool(ok))
+        elif isinstance(value, (np.ndarray, np.floating, float)) and not isinstance(value, bool):
+            arr = np.asarray(value)
+            if arr.dtype.kind != "f":
+                continue
+            mask = ok.reshape(ok.shape + (1,) * (arr.ndim - ok.ndim)) if arr.ndim >= ok.ndim else ok
+            changes[f.name] = np.where(mask, arr, np.nan) if arr.ndim else (float(arr) if ok else np.nan)
+    return replace(result, **changes)
+
+
 def predict(patient: PatientModel, settings: Settings) -> Prediction:
     """Steady-state mechanics and blood gases for ``settings`` in ``patient`` (batched).
 
@@ -127,6 +144,10 @@ def predict(patient: PatientModel, settings: Settings) -> Prediction:
                              + list(np.asarray(gas.reasons)[~np.asarray(gas.success)])) - {""})
         message = f"{int((~ok).sum())} of {ok.size} cases failed: " + "; ".join(reasons)
     nan = np.where(ok, 1.0, np.nan)
+    # A case that failed in either part carries NaN in both: the lung was solved with stand-in values
+    # where the mechanics failed (and vice versa), and those numbers must never be read as a forecast.
+    if not np.all(ok):
+        br, gas = _masked(br, ok), _masked(gas, ok)
     return Prediction(success=ok, message=message, breathing=br, gas=gas, shunt=shunt * nan,
                       alveolar_dead_space=ads * nan, cardiac_output=co * nan,
                       vt_per_kg_pbw=br.vt_ml / np.asarray(patient.pbw_kg) * nan,

@@ -1,6 +1,7 @@
 """Ventilator and lung mechanics against worked examples, published tables and expected behaviour."""
 
 import numpy as np
+from scipy.integrate import trapezoid
 import pytest
 from hypothesis import given, settings as hsettings, strategies as st
 
@@ -40,9 +41,50 @@ def test_giosa_surrogate():
 
 
 def test_becher_pressure_control_power_without_ramp():
-    """Becher 2019 with no ramp: 0.098 RR [(dP + PEEP) VT - dP^2 C / 2]."""
+    """Becher 2019, simplified square-wave form: 0.098 RR VT (dPinsp + PEEP) (the full form's bracket -> 0
+    as Tslope -> 0). Independent check: the energy of a breath is the integral of airway pressure over the
+    delivered volume, and the airway pressure is PEEP + dPinsp throughout a square-wave inflation."""
     mp = motion.mechanical_power_pressure_control(20, 0.5, 15, 10, 0.5 / 15, 10)
-    assert mp == pytest.approx(0.098 * 20 * (25 * 0.5 - 225 * (0.5 / 15) * 0.5))
+    assert mp == pytest.approx(0.098 * 20 * 0.5 * (15 + 10))
+    # A numerical integral of Paw dV over an exponential fill (tau = R C) gives the same energy.
+    r, c, ti, dp, peep = 10.0, 0.03, 0.6, 15.0, 10.0
+    t = np.linspace(0.0, ti, 20001)
+    volume = c * dp * (1.0 - np.exp(-t / (r * c)))          # lung that does not fill within Ti
+    energy = trapezoid(np.full_like(t, peep + dp), volume)    # [cmH2O L]
+    assert motion.mechanical_power_pressure_control(16, volume[-1], dp, peep, c, r) == pytest.approx(
+        0.098 * 16 * energy, rel=1e-6)
+    # The ramp limits of the full form: a very short ramp tends to the square wave, a very slow one to 1/2.
+    square = motion.mechanical_power_pressure_control(20, 0.45, 15, 10, 0.03, 10)
+    short = motion.mechanical_power_pressure_control(20, 0.45, 15, 10, 0.03, 10, t_slope=1e-4)
+    slow = motion.mechanical_power_pressure_control(20, 0.45, 15, 10, 0.03, 10, t_slope=1e4)
+    assert short == pytest.approx(square, rel=1e-3)
+    assert slow == pytest.approx(0.098 * 20 * (25 * 0.45 - 225 * 0.03 * 0.5), rel=1e-3)
+
+
+def test_pressure_control_power_is_never_negative():
+    """Issue 21 item 6: the copd-trapping demo in pressure control, Pinsp 35, RR 16, Ti 1.0, PEEP 0 gave
+    -6.4 J/min; in random pressure-control settings no successful result may be negative."""
+    from ventcast.app.casefile import load_demo
+    from ventcast.app.engine import apply_sets, to_settings
+    case = load_demo("copd-trapping")
+    trial = to_settings(apply_sets(case, ["mode=pressure", "inspiratory_pressure_cmh2o=35", "rr_per_min=16",
+                                          "inspiratory_time_s=1.0", "peep_cmh2o=0"]))
+    obs = case["observations"][-1]
+    crs = obs["vte_ml"] / (obs["pplat_cmh2o"] - case["settings"]["peep_cmh2o"])
+    demo = breathe(trial, Mechanics(c_max=crs, resistance=20.0))
+    assert demo.success and demo.mechanical_power > 0
+    # Square wave: the energy is (PEEP + dPinsp) x the delivered VT (Becher 2019 simplified form).
+    assert demo.mechanical_power == pytest.approx(0.098 * 16 * 35 * demo.vt_ml / 1000, rel=1e-6)
+    rng = np.random.default_rng(7)
+    n = 4000
+    settings = Settings(mode="pressure", fio2=0.5, peep=rng.uniform(0, 20, n),
+                        inspiratory_pressure=rng.uniform(5, 40, n), rr=rng.uniform(8, 35, n),
+                        ti=rng.uniform(0.4, 1.2, n))
+    mech = Mechanics(c_max=rng.uniform(15, 80, n), resistance=rng.uniform(5, 30, n))
+    out = breathe(settings, mech)
+    ok = np.asarray(out.success)
+    assert ok.mean() > 0.5
+    assert np.all(np.asarray(out.mechanical_power)[ok] >= 0)
 
 
 @pytest.mark.parametrize("p,expected", [(5, 151.7), (15, 1000.0), (25, 1848.3)])
@@ -220,3 +262,27 @@ def test_bad_settings(kw, needle):
 def test_volume_beyond_capacity_fails_honestly():
     b = breathe(Settings(mode="volume", peep=25, vt_ml=1500, rr=10, ti=1.0), Mechanics(c_max=20, inflection=15, width=3))
     assert not b.success and "does not fit" in b.message and np.isnan(b.pplat)
+
+
+def test_pressure_control_that_does_not_fill_says_so():
+    """Issue 21 item 6: a square pressure wave fills a single compartment as 1 - exp(-Ti/tau)
+    (equation of motion); with Ti of one time constant (63 %) the Limits say the lung does not fill."""
+    from ventcast.app.engine import limit_checks
+    slow = breathe(Settings(mode="pressure", fio2=0.5, peep=5, inspiratory_pressure=15, rr=20, ti=0.6),
+                   Mechanics(c_max=40.0, resistance=25.0))
+    assert slow.success
+    tau = float(slow.tau)
+    assert float(slow.inspiratory_filling) == pytest.approx(1 - np.exp(-0.6 / tau), rel=1e-9)
+    assert float(slow.inspiratory_filling) < 0.95
+    full = breathe(Settings(mode="pressure", fio2=0.5, peep=5, inspiratory_pressure=15, rr=12, ti=2.0),
+                   Mechanics(c_max=40.0, resistance=5.0))
+    assert float(full.inspiratory_filling) > 0.99
+    volume = breathe(Settings(mode="volume", fio2=0.5, peep=5, vt_ml=450, rr=20, ti=0.8), Mechanics())
+    assert float(volume.inspiratory_filling) == 1.0
+    steady = {"pplat_cmh2o": 20.0, "driving_pressure_cmh2o": 15.0, "vt_ml_per_kg_pbw": 6.0, "ph": 7.4,
+              "pao2_mmhg": 80.0, "sao2": 0.95, "paco2_mmhg": 40.0, "intrinsic_peep_cmh2o": 0.0,
+              "mechanical_power_j_min": 10.0, "inspiratory_filling": float(slow.inspiratory_filling)}
+    codes = [line["code"] for line in limit_checks(steady)]
+    assert "pc_incomplete_filling" in codes
+    steady["inspiratory_filling"] = 0.99
+    assert "pc_incomplete_filling" not in [line["code"] for line in limit_checks(steady)]

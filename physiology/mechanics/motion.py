@@ -158,8 +158,16 @@ def mechanical_power_simplified(rr, vt, ppeak, pplat, peep):
 def mechanical_power_pressure_control(rr, vt, delta_pinsp, peep, compliance, resistance, t_slope=0.0):
     """Mechanical power in pressure control, Becher 2019 [J/min] [4].
 
-    ``MP = 0.098 RR [(dPinsp + PEEP) VT - dPinsp^2 C (0.5 - RC/Ts + (RC/Ts)^2 (1 - e^(-Ts/RC)))]``;
-    with no pressure ramp (``t_slope`` 0) the bracket tends to 0.5.
+    ``MP = 0.098 RR [(dPinsp + PEEP) VT - dPinsp^2 C (0.5 - RC/Ts + (RC/Ts)^2 (1 - e^(-Ts/RC)))]``.
+
+    With no pressure ramp (``t_slope`` 0, a square wave) the bracket tends to 0 (as Ts -> 0,
+    ``(RC/Ts)^2 (1 - e^(-Ts/RC)) = RC/Ts - 1/2 + Ts/(6 RC) + ...``), leaving Becher's simplified
+    form ``0.098 RR VT (dPinsp + PEEP)``: the airway pressure is PEEP + dPinsp throughout the
+    inflation, so the energy of a breath is that pressure times the volume delivered, whether or
+    not the lung fills within Ti. With a slow ramp (Ts >> RC) the bracket tends to 1/2. The result
+    is never negative for a lung that fills no further than ``C dPinsp``; a negative value (only
+    possible with a ramp and a ``compliance`` larger than the delivered volume implies) is refused
+    as NaN rather than shown.
 
     Parameters
     ----------
@@ -174,11 +182,12 @@ def mechanical_power_pressure_control(rr, vt, delta_pinsp, peep, compliance, res
     dp = np.asarray(delta_pinsp, float)
     c = np.asarray(compliance, float)
     if t_slope <= 0:
-        bracket = 0.5
+        bracket = 0.0
     else:
         k = np.asarray(resistance) * c / t_slope
         bracket = 0.5 - k + k ** 2 * (1 - np.exp(-1.0 / k))
-    return J_PER_L_CMH2O * np.asarray(rr) * ((dp + np.asarray(peep)) * np.asarray(vt) - dp ** 2 * c * bracket)
+    power = J_PER_L_CMH2O * np.asarray(rr) * ((dp + np.asarray(peep)) * np.asarray(vt) - dp ** 2 * c * bracket)
+    return np.where(power >= 0, power, np.nan)
 
 
 def mechanical_power_giosa(ve_l_min, ppeak, peep, flow_l_min):

@@ -157,7 +157,9 @@ class Breathing:
     success, message, reasons; vt_ml [mL]; pplat, ppeak, peep_total, intrinsic_peep, driving_pressure,
     mean_paw [cmH2O]; trapped_volume_ml [mL]; compliance [mL/cmH2O] (chord, VT / driving pressure);
     tau [s]; mechanical_power [J/min] (Gattinoni full form in volume control, Becher in pressure
-    control); mechanical_power_simplified [J/min]; open_fraction, open_fraction_end_expiration,
+    control); mechanical_power_simplified [J/min]; inspiratory_filling
+    [fraction] (pressure control: share of the equilibrium volume delivered within Ti; 1 in volume
+    control); open_fraction, open_fraction_end_expiration,
     aerated_fraction, overdistended_fraction [fraction]; minute_ventilation, alveolar_ventilation,
     series_ventilation [L/min]; series_dead_space_ml [mL]; flow [L/s]; ie_ratio [unitless];
     end_expiratory_volume_ml : aerated volume above relaxation at end-expiration (PEEP + trapped) [mL].
@@ -178,6 +180,7 @@ class Breathing:
     tau: np.ndarray
     mechanical_power: np.ndarray
     mechanical_power_simplified: np.ndarray
+    inspiratory_filling: np.ndarray
     open_fraction: np.ndarray
     open_fraction_end_expiration: np.ndarray
     aerated_fraction: np.ndarray
@@ -314,6 +317,9 @@ def breathe(settings: Settings, mechanics: Mechanics, pbw_kg=None, max_iter: int
     else:
         power = mechanical_power_pressure_control(b["rr"], vt, b["inspiratory_pressure"], peep, vt / driving, r)
     power_simple = mechanical_power_simplified(b["rr"], vt, ppeak, pplat, peep)
+    # Pressure control: the share of the equilibrium volume delivered by the end of Ti (square wave,
+    # single compartment: 1 - exp(-Ti/tau)); below ~0.95 flow has not stopped and a longer Ti adds VT.
+    filling = np.ones(n) if volume_mode else 1.0 - np.exp(-ti / tau)
     over = np.clip(2.0 / (1.0 + np.exp(-(pplat - infl) / width)) - 1.0, 0.0, 1.0)
     vds_ml = b["anatomic_dead_space_ml"] + b["apparatus_dead_space_ml"]
     ve = b["rr"] * vt
@@ -339,6 +345,7 @@ def breathe(settings: Settings, mechanics: Mechanics, pbw_kg=None, max_iter: int
         intrinsic_peep=out(peep_tot - peep), driving_pressure=out(driving), mean_paw=out(mean_paw),
         trapped_volume_ml=out(1000.0 * trapped), compliance=out(compliance_ml), tau=out(tau),
         mechanical_power=out(power), mechanical_power_simplified=out(power_simple),
+        inspiratory_filling=out(filling),
         open_fraction=out(f_eff), open_fraction_end_expiration=out(f_ee), aerated_fraction=out(aer),
         overdistended_fraction=out(over), minute_ventilation=out(ve), alveolar_ventilation=out(va),
         series_ventilation=out(series), series_dead_space_ml=out(vds_ml), flow=out(flow), ie_ratio=out(ie),
