@@ -8,9 +8,12 @@ wins and is drawn by updating plot items created once. Nothing here computes phy
 from __future__ import annotations
 
 import copy
+import hashlib
+import itertools
 import json
 import math
 import os
+import re
 import sys
 from dataclasses import dataclass
 from html import escape
@@ -24,7 +27,8 @@ from ventcast.physiology.fitting.fit import PARAMETERS
 from ventcast.physiology.forecast import predict
 
 from . import CAUTION, MMHG_PER_KPA, version
-from .casefile import CaseError, check_settings, load, load_demo, loads, read_text, write_atomic
+from .casefile import (CaseError, check_settings, load, load_demo, parse_json, read_text, validate,
+                       write_atomic)
 from .engine import (apply_sets, fit_case, forecast_fitted, limit_checks, now_block, plan_case, settings_dict,
                      settings_text, steady_block, to_settings, wean_case)
 from .report import SOURCES
@@ -76,8 +80,42 @@ def data_dir() -> Path:
     return Path(loc or Path.home() / ".ventcast")
 
 
-def recovery_path() -> Path:
-    return data_dir() / "recovery.ventcast.json"
+RECOVERY_GLOB = "recovery-*.ventcast.json"
+_window_serial = itertools.count(1)
+
+
+def _slug(text: str) -> str:
+    """A file-name-safe short form of a case's name (letters, digits, '-', '_', '.')."""
+    return re.sub(r"[^A-Za-z0-9_.-]+", "-", text).strip("-.")[:40] or "untitled"
+
+
+def new_recovery_path(case_name: str) -> Path:
+    """A recovery file of one window: named after its case, with this process and window, so that two
+    windows (or two processes) never share one and a clean close removes only its own."""
+    return data_dir() / f"recovery-{_slug(case_name)}-{os.getpid()}-{next(_window_serial)}.ventcast.json"
+
+
+def _process_alive(pid) -> bool:
+    if not isinstance(pid, int) or isinstance(pid, bool) or pid <= 0:
+        return False
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def file_stamp(path) -> str | None:
+    """SHA-256 of a file's bytes (None when it cannot be read): what a save compares to find a file
+    that another window or program changed since this window read or wrote it."""
+    try:
+        return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+    except OSError:
+        return None
 
 
 @dataclass
@@ -218,6 +256,8 @@ class MainWindow(QtWidgets.QMainWindow):
         self.runner.failed.connect(self._on_failure)
         self.undo_stack = QtGui.QUndoStack(self)
         self.case_unsaved = False  # an imported or recovered case that was never saved
+        self.recovery_file: Path | None = None  # this window's own autosave file (named after its case)
+        self.disk_stamp: str | None = None  # hash of the case file as this window last read or wrote it
         self.undo_stack.cleanChanged.connect(self._on_clean_changed)
         self.fit_result = None
         self.last_steady = None
@@ -267,6 +307,7 @@ class MainWindow(QtWidgets.QMainWindow):
         outer.addWidget(self.caution_label)
         self.setCentralWidget(central)
         self.status = QtWidgets.QLabel("")
+        self.status.setTextFormat(QtCore.Qt.PlainText)  # messages quote file text: never rich text
         self.progress = QtWidgets.QProgressBar()
         self.progress.setRange(0, 0)
         self.progress.setMaximumWidth(160)
@@ -625,7 +666,7 @@ class MainWindow(QtWidgets.QMainWindow):
         demos = m.addMenu("Open demo case")
         from .casefile import DEMO_NAMES
         for name in DEMO_NAMES:
-            demos.addAction(name).triggered.connect(lambda _c=False, n=name: self.load_case(load_demo(n), None))
+            demos.addAction(name).triggered.connect(lambda _c=False, n=name: self.open_demo(n))
         m.addSeparator()
         q = m.addAction("&Quit")
         q.setShortcut(QtGui.QKeySequence("Ctrl+Q"))
@@ -663,8 +704,16 @@ class MainWindow(QtWidgets.QMainWindow):
         self._refresh_recent()
 
     # --- case ---------------------------------------------------------------------------------------
+    def case_name(self) -> str:
+        """What the user calls this case: its file name, else its label."""
+        if self.state.path:
+            return Path(self.state.path).name
+        return self.state.case.get("label") or "unsaved case"
+
     def load_case(self, case: dict, path: str | None, trials: dict | None = None):
+        self._drop_recovery()
         self.case_unsaved = False
+        self.disk_stamp = file_stamp(path) if path else None
         self.state = TrialState(case=case, trials=trials or {"A": dict(case["settings"]), "B": None, "C": None},
                                 path=path)
         self.undo_stack.clear()
@@ -678,6 +727,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self._loading = False
         self._show_trial_controls()
         self._update_title()
+        self.recovery_file = new_recovery_path(self.case_name())
         if path:
             self._remember_recent(path)
         self.status.setText("fitting the lung model to the observations...")
@@ -1104,6 +1154,8 @@ class MainWindow(QtWidgets.QMainWindow):
 
     def set_goals(self, goals: dict):
         """New goals for this case (kept in the case file on Save); the Limits are checked again."""
+        if goals == (self.state.case.get("goals") or {}):
+            return
         self.state.case["goals"] = goals
         self.undo_stack.resetClean()
         self._update_title()
@@ -1167,12 +1219,47 @@ class MainWindow(QtWidgets.QMainWindow):
                             f"cancelled")
 
     # --- files --------------------------------------------------------------------------------------
+    def ask_unsaved(self, doing: str) -> str:
+        """Ask what to do with unsaved work before ``doing`` ('close the window', 'open another case'):
+        'save', 'discard' or 'cancel'. Tests replace this method."""
+        box = QtWidgets.QMessageBox(
+            QtWidgets.QMessageBox.Warning, "Unsaved changes",
+            f"{self.case_name()} has changes that are not saved (trials, goals or an imported case). "
+            f"Save them before you {doing}?", parent=self)
+        box.setTextFormat(QtCore.Qt.PlainText)
+        save = box.addButton("Save", QtWidgets.QMessageBox.AcceptRole)
+        discard = box.addButton("Discard changes", QtWidgets.QMessageBox.DestructiveRole)
+        box.addButton("Cancel", QtWidgets.QMessageBox.RejectRole)
+        box.exec()
+        clicked = box.clickedButton()
+        return "save" if clicked is save else "discard" if clicked is discard else "cancel"
+
+    def may_leave_case(self, doing: str) -> bool:
+        """True when the current case may be left: no unsaved work, or the user saved or discarded it.
+        Cancel (or a save that fails) keeps the window and its recovery file as they are."""
+        if not self.has_unsaved_work():
+            return True
+        answer = self.ask_unsaved(doing)
+        if answer == "save":
+            return bool(self.save())
+        return answer == "discard"
+
     def open_dialog(self):
+        if not self.may_leave_case("open another case"):
+            return
         path, _ = QtWidgets.QFileDialog.getOpenFileName(self, "Open case", "", "Ventcast case (*.ventcast.json)")
         if path:
-            self.open_path(path)
+            self.open_path(path, asked=True)
 
-    def open_path(self, path: str):
+    def open_demo(self, name: str) -> bool:
+        if not self.may_leave_case("open another case"):
+            return False
+        self.load_case(load_demo(name), None)
+        return True
+
+    def open_path(self, path: str, asked: bool = False):
+        if not asked and not self.may_leave_case("open another case"):
+            return False
         try:
             case = load(path)
         except CaseError as exc:
@@ -1194,14 +1281,33 @@ class MainWindow(QtWidgets.QMainWindow):
             path += ".ventcast.json"
         return self._save_to(path)
 
+    def ask_overwrite_changed(self, path) -> bool:
+        """The case file changed on disk since this window read or wrote it (another window or program
+        saved it): True to replace it anyway. Tests replace this method."""
+        box = QtWidgets.QMessageBox(
+            QtWidgets.QMessageBox.Warning, "Case file changed on disk",
+            f"{path} was changed by another window or program since this window opened or saved it. "
+            f"Saving replaces those changes with this window's case. Use Save as to keep both.", parent=self)
+        box.setTextFormat(QtCore.Qt.PlainText)
+        replace = box.addButton("Replace the file", QtWidgets.QMessageBox.DestructiveRole)
+        box.addButton("Cancel", QtWidgets.QMessageBox.RejectRole)
+        box.exec()
+        return box.clickedButton() is replace
+
     def _save_to(self, path):
         from .casefile import save
+        same_file = self.state.path is not None and Path(path).resolve() == Path(self.state.path).resolve()
+        if same_file and self.disk_stamp is not None and file_stamp(path) != self.disk_stamp:
+            if not self.ask_overwrite_changed(path):
+                self.status.setText(f"not saved: {path} changed on disk; use Save as to keep both")
+                return False
         try:
             save(path, self.state.case)  # trials are not part of a case file; the recovery file keeps them
         except (CaseError, OSError) as exc:
             self._on_failure(None, f"not saved: {exc}")
             return False
         self.state.path = str(path)
+        self.disk_stamp = file_stamp(path)
         self.case_unsaved = False
         self.undo_stack.setClean()
         self._remember_recent(str(path))
@@ -1312,7 +1418,7 @@ class MainWindow(QtWidgets.QMainWindow):
         except CaseError as exc:
             self._on_failure(None, f"not imported: {exc}")
             return None
-        self.load_case(case, None)
+        self.load_case(case, None, trials=self.state.trials)  # the trials stay: the settings did not change
         self.case_unsaved = True
         self._update_title()
         self.status.setText(f"imported {len(report['imported'])} value(s), skipped {len(report['skipped'])}; "
@@ -1346,7 +1452,9 @@ class MainWindow(QtWidgets.QMainWindow):
 
     # --- recovery -----------------------------------------------------------------------------------
     def recovery_document(self) -> dict:
-        return {"format": "ventcast.recovery", "version": 1, "path": self.state.path, "case": self.state.case,
+        return {"format": "ventcast.recovery", "version": 1, "pid": os.getpid(), "name": self.case_name(),
+                "saved_at": QtCore.QDateTime.currentDateTime().toString(QtCore.Qt.ISODate),
+                "path": self.state.path, "case": self.state.case,
                 "trials": self.state.trials, "active": self.state.active}
 
     def has_unsaved_work(self) -> bool:
@@ -1354,30 +1462,39 @@ class MainWindow(QtWidgets.QMainWindow):
         return self.case_unsaved or not self.undo_stack.isClean()
 
     def write_recovery(self):
-        """Autosave: the case and every trial as on screen, atomically, to the recovery file — only when
-        there is unsaved work (a case opened and left as it was needs no recovery after a crash)."""
-        if not self.has_unsaved_work():
+        """Autosave: the case and every trial as on screen, atomically, to this window's own recovery
+        file — only when there is unsaved work (a case opened and left as it was needs no recovery)."""
+        if not self.has_unsaved_work() or self.recovery_file is None:
             return
         try:
-            recovery_path().parent.mkdir(parents=True, exist_ok=True)
-            write_atomic(recovery_path(), json.dumps(self.recovery_document(), indent=1), mode=0o600)
+            self.recovery_file.parent.mkdir(parents=True, exist_ok=True)
+            write_atomic(self.recovery_file, json.dumps(self.recovery_document(), indent=1), mode=0o600)
         except OSError as exc:
             self.status.setText(f"\u26a0 autosave failed: {exc}")
+
+    def _drop_recovery(self):
+        """Remove this window's own recovery file (never another window's)."""
+        if self.recovery_file is not None:
+            try:
+                self.recovery_file.unlink()
+            except OSError:
+                pass
 
     def restore(self, doc: dict):
         self.load_case(doc["case"], doc.get("path"), trials=doc["trials"])
         self.case_unsaved = True  # recovered work is not in any file until it is saved
         self._update_title()
         self.trial_tabs.setCurrentIndex(TRIALS.index(doc.get("active", "A")))
+        self.write_recovery()  # under this window's name at once: the orphan it came from is removed next
 
     def closeEvent(self, event):
+        if not self.may_leave_case("close the window"):
+            event.ignore()
+            return
         self.autosave.stop()
         self.debounce.stop()
         self.undo_stack.cleanChanged.disconnect(self._on_clean_changed)  # it fires while being destroyed
-        try:
-            recovery_path().unlink()
-        except OSError:
-            pass
+        self._drop_recovery()
         self.runner.cancel("fit")
         self.runner.wait(60000)
         super().closeEvent(event)
@@ -1417,7 +1534,10 @@ class GoalsDialog(QtWidgets.QDialog):
         self.setWindowTitle("Goals and limits of this case")
         form = QtWidgets.QFormLayout(self)
         self.fields = {}
+        self.original = dict(goals)
+        self.defaults = {}
         for key, label, unit, default, lo, hi, step, dec in GOAL_FIELDS:
+            self.defaults[key] = list(default) if isinstance(default, tuple) else default
             value = goals.get(key, default)
             spins = []
             for v in (value if isinstance(default, tuple) else (value,)):
@@ -1443,10 +1563,14 @@ class GoalsDialog(QtWidgets.QDialog):
         form.addRow(buttons)
 
     def goals(self) -> dict:
-        out = {}
+        """The case's goals after the dialog: a goal the case had, or one the user moved from its
+        default. Pressing OK without editing leaves the goals exactly as they were."""
+        out = dict(self.original)
         for key, spins in self.fields.items():
             vals = [round(sp.value(), 4) for sp in spins]
-            out[key] = vals if len(vals) == 2 else vals[0]
+            value = vals if len(vals) == 2 else vals[0]
+            if key in self.original or value != self.defaults[key]:
+                out[key] = value
         return out
 
     def _accept(self):
@@ -1459,19 +1583,22 @@ class GoalsDialog(QtWidgets.QDialog):
         self.accept()
 
 
-def read_recovery() -> dict | None:
-    """The recovery document left by a window that did not close cleanly, or None."""
-    p = recovery_path()
-    if not p.exists():
-        return None
-    try:
-        doc = json.loads(p.read_text(encoding="utf-8"))
-        if doc.get("format") != "ventcast.recovery":
-            return None
-        doc["case"] = loads(json.dumps(doc["case"]))
-        return doc
-    except (OSError, ValueError, KeyError, TypeError):
-        return None
+def read_recoveries() -> list[tuple[Path, dict]]:
+    """Recovery files left by windows that did not close cleanly (their process is gone), newest first,
+    each with its document (case checked again). Files of windows still running are not offered."""
+    found = []
+    for p in sorted(data_dir().glob(RECOVERY_GLOB), key=lambda q: q.stat().st_mtime, reverse=True):
+        try:
+            doc = parse_json(read_text(p, str(p)), str(p))
+            if not isinstance(doc, dict) or doc.get("format") != "ventcast.recovery" or _process_alive(doc.get("pid")):
+                continue
+            doc["case"] = validate(doc["case"])
+            if not isinstance(doc.get("trials"), dict) or doc.get("active", "A") not in TRIALS:
+                continue
+            found.append((p, doc))
+        except (OSError, ValueError, KeyError, TypeError):
+            continue
+    return found
 
 
 def _icon() -> QtGui.QIcon:
@@ -1490,18 +1617,45 @@ def _quiet_offscreen_warnings(mode, context, message):
     print(message, file=sys.stderr)
 
 
-def offer_recovery(window: MainWindow) -> bool:
-    """If a window did not close cleanly, offer its autosaved case and trials; True when restored."""
-    recovered = read_recovery()
-    if recovered is None:
-        return False
-    answer = QtWidgets.QMessageBox.question(
-        window, "Recover unsaved work?",
-        "Ventcast did not close cleanly last time. Recover the case and trials as they were on screen?")
-    if answer != QtWidgets.QMessageBox.Yes:
-        return False
-    window.restore(recovered)
-    return True
+def ask_recovery(window, doc: dict, more: int) -> str:
+    """'recover', 'discard' or 'later' for one recovery document, naming its case. Tests replace this."""
+    text = (f"Ventcast did not close cleanly while {doc.get('name') or 'a case'} had unsaved work "
+            f"(autosaved {doc.get('saved_at') or 'earlier'}). Recover that case and its trials as they were on "
+            f"screen?")
+    if more:
+        text += f" ({more} more unsaved case(s) will be offered next.)"
+    box = QtWidgets.QMessageBox(QtWidgets.QMessageBox.Question, "Recover unsaved work?", text, parent=window)
+    box.setTextFormat(QtCore.Qt.PlainText)
+    recover = box.addButton("Recover", QtWidgets.QMessageBox.AcceptRole)
+    discard = box.addButton("Discard it", QtWidgets.QMessageBox.DestructiveRole)
+    box.addButton("Ask me next time", QtWidgets.QMessageBox.RejectRole)
+    box.exec()
+    clicked = box.clickedButton()
+    return "recover" if clicked is recover else "discard" if clicked is discard else "later"
+
+
+def offer_recovery(window: MainWindow, ask=None) -> bool:
+    """Offer each case whose window did not close cleanly, naming it; the first one recovered goes into
+    ``window`` and the others into windows of their own. True when something was restored."""
+    ask = ask or ask_recovery
+    found = read_recoveries()
+    restored = False
+    for i, (path, doc) in enumerate(found):
+        answer = ask(window, doc, len(found) - i - 1)
+        if answer == "later":
+            continue
+        if answer == "recover":
+            target = window
+            if restored:
+                target = MainWindow(doc["case"], path=doc.get("path"), synchronous=window.runner.synchronous)
+                target.show()
+            target.restore(doc)
+            restored = True
+        try:
+            path.unlink()
+        except OSError:
+            pass
+    return restored
 
 
 def run(case_path: str | None = None, demo: str | None = None, screenshot: str | None = None,
@@ -1686,6 +1840,7 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         self.log = QtWidgets.QListWidget()
         lay.addWidget(self.log, 4, 0)
         self.prompt = QtWidgets.QLabel(self.run.script.get("summary", ""))
+        self.prompt.setTextFormat(QtCore.Qt.PlainText)  # script text is shown as written, never as HTML
         self.prompt.setWordWrap(True)
         lay.addWidget(self.prompt, 5, 0, 1, 2)
         caution = QtWidgets.QLabel(CAUTION)
@@ -1695,6 +1850,7 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         lay.setColumnStretch(1, 1)
         self.setCentralWidget(central)
         self.status = QtWidgets.QLabel("")
+        self.status.setTextFormat(QtCore.Qt.PlainText)  # messages quote file text: never rich text
         self.statusBar().addWidget(self.status, 1)
         self.resize(1300, 850)
         self._show_clock()

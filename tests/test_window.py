@@ -5,6 +5,7 @@ The expected numbers come from the engine itself (``app.engine``), called direct
 must show what the engine says, not compute anything of its own.
 """
 
+import copy
 import json
 import os
 import signal
@@ -35,6 +36,14 @@ def isolated_settings(tmp_path, monkeypatch):
     monkeypatch.setenv("VENTCAST_DATA_DIR", str(tmp_path / "data"))
     QtCore.QSettings.setPath(QtCore.QSettings.NativeFormat, QtCore.QSettings.UserScope, str(tmp_path / "settings"))
     yield
+
+
+@pytest.fixture(autouse=True)
+def no_modal_questions(monkeypatch):
+    """A modal question would block an offscreen test forever: tests answer it. By default unsaved work
+    is discarded on close; tests of the questions themselves record and answer them."""
+    monkeypatch.setattr(win.MainWindow, "ask_unsaved", lambda self, doing: "discard")
+    monkeypatch.setattr(win.MainWindow, "ask_overwrite_changed", lambda self, path: pytest.fail("unexpected question"))
 
 
 @pytest.fixture(autouse=True)
@@ -406,48 +415,150 @@ def test_runner_drops_stale_results_and_reports_failures(qtbot):
     runner.deleteLater()
 
 
-def test_recovery_is_offered_and_identical(qtbot, qapp, monkeypatch, tmp_path):
-    """Kill a running window after an autosave; the next start offers the case and trials as they were."""
-    env = dict(os.environ, VENTCAST_AUTOSAVE_MS="300", QT_QPA_PLATFORM="offscreen")
+def _recovery_files():
+    return sorted(win.data_dir().glob(win.RECOVERY_GLOB))
+
+
+def _kill_after_autosave(demo, sets, env):
+    """Run a window in a subprocess, change trials, and SIGKILL it once its recovery file exists."""
     script = (
         "import os, signal, sys\n"
         "from PySide6 import QtCore, QtWidgets\n"
         "from ventcast.app.casefile import load_demo\n"
-        "from ventcast.app.window import MainWindow, recovery_path\n"
+        "from ventcast.app.window import MainWindow\n"
         "app = QtWidgets.QApplication([])\n"
-        "w = MainWindow(load_demo('copd-trapping'), synchronous=True)\n"
-        "w.set_trial_value('rr_per_min', 14)\n"
-        "w.trial_tabs.setCurrentIndex(1)\n"
-        "w.set_trial_value('fio2', 0.45)\n"
+        f"w = MainWindow(load_demo({demo!r}), synchronous=True)\n"
+        f"for tab, key, value in {sets!r}:\n"
+        "    w.trial_tabs.setCurrentIndex(tab)\n"
+        "    w.set_trial_value(key, value)\n"
         "def check():\n"
-        "    if recovery_path().exists():\n"
+        "    if w.recovery_file.exists():\n"
         "        print('autosaved', flush=True)\n"
         "        os.kill(os.getpid(), signal.SIGKILL)\n"
         "t = QtCore.QTimer(); t.timeout.connect(check); t.start(100)\n"
         "app.exec()\n")
-    proc = subprocess.run([sys.executable, "-c", script], cwd=ROOT, env=env, capture_output=True, text=True,
-                          timeout=300)
-    assert proc.returncode == -signal.SIGKILL, proc.stderr
-    assert "autosaved" in proc.stdout
-    doc = win.read_recovery()
-    assert doc is not None and doc["trials"]["A"]["rr_per_min"] == 14 and doc["trials"]["B"]["fio2"] == 0.45
-    monkeypatch.setattr(QtWidgets.QMessageBox, "question", staticmethod(lambda *a, **k: QtWidgets.QMessageBox.Yes))
+    return subprocess.Popen([sys.executable, "-c", script], cwd=ROOT, env=env, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+
+
+def test_recovery_is_offered_and_identical(qtbot, qapp, monkeypatch, tmp_path):
+    """Issue 21 items 1-2: two windows in two processes are killed with unsaved work; both cases survive,
+    each offer names its case, and what is restored is exactly what was on screen."""
+    env = dict(os.environ, VENTCAST_AUTOSAVE_MS="300", QT_QPA_PLATFORM="offscreen")
+    procs = [_kill_after_autosave("copd-trapping", [(0, "rr_per_min", 14), (1, "fio2", 0.45)], env),
+             _kill_after_autosave("postop-wean", [(0, "peep_cmh2o", 8)], env)]
+    for proc in procs:
+        out, err = proc.communicate(timeout=300)
+        assert proc.returncode == -signal.SIGKILL, err
+        assert "autosaved" in out
+    files = _recovery_files()
+    assert len(files) == 2 and any("COPD" in f.name for f in files), [f.name for f in files]
+    asked = []
+
+    def answer(window, doc, more):
+        asked.append((doc["name"], more))
+        return "recover"
+
     w = win.MainWindow(load_demo("ards-moderate"), synchronous=True)
-    assert win.offer_recovery(w)
-    assert w.state.case == load_demo("copd-trapping")
-    assert w.state.trials["A"]["rr_per_min"] == 14 and w.state.trials["B"]["fio2"] == 0.45
-    assert w.state.active == "B" and w.spins["fio2"].value() == 0.45
+    assert win.offer_recovery(w, ask=answer)
+    assert sorted(n for n, _ in asked) == sorted([load_demo("copd-trapping")["label"], load_demo("postop-wean")["label"]])
+    assert [more for _, more in asked] == [1, 0]  # the first offer says another one follows
+    windows = [x for x in qapp.topLevelWidgets() if isinstance(x, win.MainWindow)]
+    assert len(windows) == 2  # the second recovered case opens in a window of its own
+    copd = next(x for x in windows if x.state.case == load_demo("copd-trapping"))
+    postop = next(x for x in windows if x.state.case == load_demo("postop-wean"))
+    assert copd.state.trials["A"]["rr_per_min"] == 14 and copd.state.trials["B"]["fio2"] == 0.45
+    assert copd.state.active == "B" and copd.spins["fio2"].value() == 0.45
+    assert postop.state.trials["A"]["peep_cmh2o"] == 8
+    # the orphans are gone; each window now autosaves under its own name
+    assert sorted(_recovery_files()) == sorted([copd.recovery_file, postop.recovery_file])
+    _close(postop, qapp)
+    assert copd.recovery_file.exists(), "closing one window never removes another window's recovery"
+    assert not postop.recovery_file.exists()
+    _close(copd, qapp)
+    assert _recovery_files() == []
+
+
+def test_recovery_of_a_running_window_is_not_offered(window, qtbot):
+    """A recovery file whose process is still alive belongs to a window that is open: never offered."""
+    _change(qtbot, window, "peep_cmh2o", 12)
+    window.write_recovery()
+    assert window.recovery_file.exists()
+    assert win.read_recoveries() == []
+
+
+def test_closing_with_unsaved_work_asks_and_cancel_keeps_everything(qtbot, qapp, monkeypatch):
+    """Issue 21 item 1: closing (or opening another case) with unsaved trial or goal edits asks; Cancel
+    keeps the window, the edits and the recovery file."""
+    w = win.MainWindow(load_demo("ards-moderate"), synchronous=True)
+    w.show()
+    w.set_trial_value("peep_cmh2o", 12)
+    w.write_recovery()
+    asked = []
+    monkeypatch.setattr(win.MainWindow, "ask_unsaved", lambda self, doing: asked.append(doing) or "cancel")
+    w.close()
+    assert asked == ["close the window"] and w.isVisible() and w.recovery_file.exists()
+    assert not w.open_demo("postop-wean")
+    assert asked[-1] == "open another case" and w.state.trials["A"]["peep_cmh2o"] == 12
+    monkeypatch.setattr(win.MainWindow, "ask_unsaved", lambda self, doing: asked.append(doing) or "discard")
     _close(w, qapp)
-    assert not win.recovery_path().exists()  # a clean close removes it
+    assert not w.recovery_file.exists()
+
+
+def test_save_asks_when_the_file_changed_on_disk(qtbot, qapp, monkeypatch, tmp_path):
+    """Issue 21 item 3: two windows save the same case; the second is told the file changed since it
+    read it, instead of silently reverting the first window's change."""
+    from ventcast.app.casefile import load, save
+    path = tmp_path / "two.ventcast.json"
+    save(path, load_demo("ards-moderate"))
+    first = win.MainWindow(load(path), path=str(path), synchronous=True)
+    second = win.MainWindow(load(path), path=str(path), synchronous=True)
+    first.set_goals({"pplat_max_cmh2o": 28.0})
+    assert first.save()
+    second.set_goals({"pplat_max_cmh2o": 25.0})
+    asked = []
+    monkeypatch.setattr(win.MainWindow, "ask_overwrite_changed", lambda self, p: asked.append(p) or False)
+    assert not second.save()
+    assert asked and load(path)["goals"] == {"pplat_max_cmh2o": 28.0}, "the first window's change stands"
+    monkeypatch.setattr(win.MainWindow, "ask_overwrite_changed", lambda self, p: True)
+    assert second.save() and load(path)["goals"] == {"pplat_max_cmh2o": 25.0}
+    for w in (first, second):
+        _close(w, qapp)
+
+
+def test_goals_dialog_ok_without_editing_changes_nothing(window, qtbot):
+    """Issue 21 item 15: OK without an edit adds no goal and marks nothing unsaved."""
+    before = copy.deepcopy(window.state.case.get("goals"))
+    dialog = win.GoalsDialog(window.state.case.get("goals") or {}, window)
+    assert dialog.goals() == (before or {})
+    window.set_goals(dialog.goals())
+    assert window.state.case.get("goals") == before and not window.has_unsaved_work()
+    dialog.fields["pplat_max_cmh2o"][0].setValue(28)
+    assert dialog.goals()["pplat_max_cmh2o"] == 28
+    assert "mechanical_power_max_j_min" not in dialog.goals() or "mechanical_power_max_j_min" in (before or {})
+    dialog.deleteLater()
+
+
+def test_file_text_is_never_rendered_as_html(qtbot, qapp):
+    """Issue 21 item 16: a label from a case file shown as written, and the status line is plain text."""
+    case = load_demo("ards-moderate")
+    case["label"] = "<span style='font-size:40pt;color:red'>ALARM</span><img src='file:///etc/passwd'>"
+    w = win.MainWindow(case, synchronous=True)
+    assert w.status.textFormat() == QtCore.Qt.PlainText
+    assert "&lt;span" in w.case_label.text() and "<img" not in w.case_label.text()
+    _close(w, qapp)
 
 
 def test_autosave_writes_only_unsaved_work(window, qtbot):
     window.write_recovery()
-    assert not win.recovery_path().exists()  # a case opened and left as it was
+    assert not window.recovery_file.exists()  # a case opened and left as it was
     _change(qtbot, window, "peep_cmh2o", 12)
     assert window.windowTitle().endswith(" *")
     window.write_recovery()
-    assert json.loads(win.recovery_path().read_text())["trials"]["A"]["peep_cmh2o"] == 12
+    doc = json.loads(window.recovery_file.read_text())
+    assert doc["trials"]["A"]["peep_cmh2o"] == 12 and doc["pid"] == os.getpid()
+    assert doc["name"] == window.case_name() == load_demo("ards-moderate")["label"]
+    assert window.recovery_file.name.startswith("recovery-" + win._slug(doc["name"]) + "-")
 
 
 def _png_size(path):
