@@ -297,7 +297,8 @@ def _cmd_import_fhir(args) -> int:
     print(f"Wrote {out} ({len(case['observations'])} observation(s)).")
     print("Imported:")
     for it in report["imported"]:
-        print(f"  LOINC {it['code']:<8} -> {it['into']} = {it['value']}")
+        note = f"  ({it['note']})" if it.get("note") else ""
+        print(f"  LOINC {it['code']:<8} -> {it['into']} = {it['value']}{note}")
     print("Skipped:")
     for it in report["skipped"]:
         print(f"  {('LOINC ' + it['code']) if it['code'] else '':<14} {it['what']}: {it['why']}")

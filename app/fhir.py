@@ -23,6 +23,7 @@ from __future__ import annotations
 import copy
 import json
 import math
+import re
 from datetime import datetime
 
 from . import MMHG_PER_KPA
@@ -132,7 +133,9 @@ def _fraction(v, unit, where, kind):
         if 21.0 <= v <= 100.0:
             return v / 100.0
         raise BundleError(where + ".value", f"FiO2 {v:g} is neither a fraction 0.21-1.0 nor a percentage 21-100")
-    if unit == "%" or v > 1.0:
+    # A saturation of 1 % or less is not compatible with life: such a value is a fraction whatever the
+    # unit says (0.93 with unit '%' is 93 %, not 0.93 %), as for FiO2.
+    if v > 1.0:
         v = v / 100.0
     if not 0.0 <= v <= 1.0:
         raise BundleError(where + ".value", f"saturation {v:g} is outside 0-1 (0-100 %)")
@@ -152,18 +155,61 @@ def _time(resource, where):
     return parsed
 
 
-def _is_lab(resource) -> bool:
-    for cat in resource.get("category", []) or []:
-        for c in (cat.get("coding", []) if isinstance(cat, dict) else []):
+def _list(resource, key, where) -> list:
+    """An optional FHIR list element: absent is empty, anything but a list is refused with its path."""
+    value = resource.get(key)
+    if value is None:
+        return []
+    if not isinstance(value, list):
+        raise BundleError(_path(*where, key), f"{key} must be a list, not {type(value).__name__}")
+    return value
+
+
+def _is_lab(resource, where) -> bool:
+    for cat in _list(resource, "category", where):
+        for c in (cat.get("coding", []) if isinstance(cat, dict) else []) or []:
             if isinstance(c, dict) and c.get("code") == "laboratory":
                 return True
     return False
 
 
-def _specimen_arterial(resource) -> bool:
+#: Specimen types by SNOMED CT code (Specimen.type). Decided by code, never by display text.
+#: 122555007 and 119297000 as in the FHIR R4 Specimen examples; 122552005 and 122554006 from memory.
+SNOMED = "http://snomed.info/sct"
+SPECIMEN_KIND = {"122552005": "arterial", "122555007": "venous", "122554006": "capillary",
+                 "119297000": "blood, unspecified"}
+#: Observation.status: imported as they are / imported with a note / skipped.
+STATUS_IMPORTED = ("final", "amended", "corrected")
+STATUS_NOTED = ("preliminary",)
+STATUS_SKIPPED = ("registered", "cancelled", "entered-in-error", "unknown")
+
+
+def _specimen_kind(resource, where, specimens) -> str | None:
+    """'arterial', 'venous', 'capillary', 'blood, unspecified' or None, from the SNOMED CT type code
+    of the Specimen the Observation refers to (contained, or an entry of the bundle)."""
     spec = resource.get("specimen")
-    text = json.dumps(spec).lower() if spec is not None else ""
-    return "arterial" in text
+    if spec is None:
+        return None
+    if not isinstance(spec, dict) or not isinstance(spec.get("reference"), str):
+        raise BundleError(_path(*where, "specimen"), "specimen must be a Reference with a 'reference' string")
+    ref = spec["reference"]
+    target = None
+    if ref.startswith("#"):
+        for c in _list(resource, "contained", where):
+            if isinstance(c, dict) and c.get("resourceType") == "Specimen" and c.get("id") == ref[1:]:
+                target = c
+    else:
+        target = specimens.get(ref)
+    if target is None:
+        return None
+    spec_type = target.get("type")
+    codings = spec_type.get("coding") if isinstance(spec_type, dict) else None
+    kinds = {SPECIMEN_KIND.get(c.get("code")) for c in (codings if isinstance(codings, list) else [])
+             if isinstance(c, dict) and c.get("system") == SNOMED}
+    kinds.discard(None)
+    if len(kinds) > 1:
+        raise BundleError(_path(*where, "specimen"), f"the specimen's SNOMED CT codes disagree: {sorted(kinds)}")
+    return kinds.pop() if kinds else None
 
 
 def read_bundle(text: str) -> dict:
@@ -174,19 +220,23 @@ def read_bundle(text: str) -> dict:
     entries = doc.get("entry")
     if not isinstance(entries, list):
         raise BundleError("bundle.entry", "a Bundle needs an entry list")
-    panel_members = set()
+    panel_members, specimens = set(), {}
     for i, e in enumerate(entries):
         r = e.get("resource") if isinstance(e, dict) else None
+        if isinstance(r, dict) and r.get("resourceType") == "Specimen":
+            for key in (e.get("fullUrl"), f"Specimen/{r.get('id')}" if isinstance(r.get("id"), str) else None):
+                if isinstance(key, str):
+                    specimens[key] = r
         if isinstance(r, dict) and r.get("resourceType") == "Observation":
             try:
                 codes = _loinc_codes(r, ("entry", i, "resource"))
             except BundleError:
                 continue
             if "24336-0" in codes:
-                for m in r.get("hasMember", []) or []:
+                for m in _list(r, "hasMember", ("entry", i, "resource")):
                     if isinstance(m, dict) and isinstance(m.get("reference"), str):
                         panel_members.add(m["reference"])
-    items, skipped, gender = [], [], None
+    items, skipped, gender, gender_path = [], [], None, None
     for i, e in enumerate(entries):
         where = ("entry", i, "resource")
         if not isinstance(e, dict) or not isinstance(e.get("resource"), dict):
@@ -198,15 +248,25 @@ def read_bundle(text: str) -> dict:
             if g not in ("female", "male", None):
                 raise BundleError(_path(*where, "gender"), f"gender {g!r} cannot give a predicted body weight; "
                                                            f"accepted: 'female', 'male'")
-            gender = g
+            if g is not None and gender is not None and g != gender:
+                raise BundleError(_path(*where, "gender"), f"gender {g!r} contradicts {gender!r} at {gender_path}: "
+                                                           f"the predicted body weight depends on it")
+            if g is not None:
+                gender, gender_path = g, _path(*where, "gender")
             continue
         if rtype != "Observation":
             skipped.append({"code": None, "what": f"{rtype} resource", "why": "only Observations are read"})
             continue
-        if r.get("status") in ("entered-in-error", "cancelled"):
-            skipped.append({"code": None, "what": f"entry {i}", "why": f"status {r.get('status')}"})
+        status = r.get("status")
+        if not isinstance(status, str) or status not in STATUS_IMPORTED + STATUS_NOTED + STATUS_SKIPPED:
+            raise BundleError(_path(*where, "status"), f"value {status!r} is not an Observation status; accepted: "
+                                                       f"{', '.join(STATUS_IMPORTED + STATUS_NOTED + STATUS_SKIPPED)}")
+        if status in STATUS_SKIPPED:
+            skipped.append({"code": None, "what": f"entry {i}", "why": f"status {status}"})
             continue
         codes = _loinc_codes(r, where)
+        for key in ("category", "hasMember", "contained"):
+            _list(r, key, where)
         full_url = e.get("fullUrl", "")
         in_panel = any(full_url.endswith(ref) or ref == full_url for ref in panel_members) if full_url else False
         rid = f"Observation/{r.get('id')}" if r.get("id") else None
@@ -214,14 +274,19 @@ def read_bundle(text: str) -> dict:
         target = None
         for c in codes:
             if c == "2708-6":
-                if "59408-5" in codes or not (_is_lab(r) or in_panel):
+                if "59408-5" in codes or not (_is_lab(r, where) or in_panel):
                     skipped.append({"code": c, "what": "oxygen saturation", "why": "pulse oximetry, not a blood gas"})
                     target = "skip"
                     break
-            if c in ARTERIAL:
+            specimen = _specimen_kind(r, where, specimens)
+            if specimen in ("venous", "capillary") and (c in ARTERIAL or c in UNSPECIFIED_BLOOD):
+                skipped.append({"code": c, "what": f"blood gas from a {specimen} specimen (SNOMED CT)",
+                                "why": "venous or capillary sample: never used as arterial"})
+                target = "skip"
+            elif c in ARTERIAL:
                 target = ("observation",) + ARTERIAL[c] + (c,)
             elif c in UNSPECIFIED_BLOOD:
-                if _specimen_arterial(r) or in_panel:
+                if specimen == "arterial" or in_panel:
                     target = ("observation",) + UNSPECIFIED_BLOOD[c] + (c,)
                 else:
                     skipped.append({"code": c, "what": "blood gas, specimen unspecified",
@@ -260,10 +325,28 @@ def read_bundle(text: str) -> dict:
                 raise BundleError(_path(*where, "valueCodeableConcept"),
                                   "the ventilation mode must say volume control or pressure control")
         else:
+            comparator = r.get("valueQuantity", {}).get("comparator") if isinstance(r.get("valueQuantity"), dict) else None
+            if comparator is not None:
+                skipped.append({"code": code, "what": f"{key} {comparator} {r['valueQuantity'].get('value')!r}",
+                                "why": "a bound, not a measured value: never taken as the value itself"})
+                continue
             value = _number(r, where, kind)
-        items.append({"part": part, "key": key, "value": value, "code": code, "time": _time(r, where),
-                      "path": _path(*where)})
+        item = {"part": part, "key": key, "value": value, "code": code, "time": _time(r, where), "path": _path(*where)}
+        if status in STATUS_NOTED:
+            item["note"] = f"status {status}: confirm the final result"
+        items.append(item)
     return {"items": items, "gender": gender, "skipped": skipped}
+
+
+def _one_value_per_time(items):
+    """Refuse two different values of one quantity at one time (the last would silently win)."""
+    seen = {}
+    for it in items:
+        slot = (it["part"], it["key"], it["time"])
+        if slot in seen and seen[slot]["value"] != it["value"]:
+            raise BundleError(it["path"], f"{it['key']} {it['value']!r} contradicts {seen[slot]['value']!r} at "
+                                          f"{seen[slot]['path']}, both at {it['time'].isoformat()}")
+        seen[slot] = it
 
 
 def import_bundle(text: str, into: dict | None = None) -> tuple[dict, dict]:
@@ -274,19 +357,27 @@ def import_bundle(text: str, into: dict | None = None) -> tuple[dict, dict]:
     """
     parsed = read_bundle(text)
     items = sorted(parsed["items"], key=lambda it: it["time"])
+    _one_value_per_time(items)
     gas_times = sorted({it["time"] for it in items if it["part"] == "observation"})
     case = copy.deepcopy(into) if into is not None else None
     settings_now, patient = {}, {}
     observations = []
     imported = []
+    # bundle path of each value, by the case field it becomes: a value the case checks refuse is
+    # named where the user can find it, in the bundle
+    origin = {"patient": {}, "settings": {}, "observations": []}
+    settings_origin = {}
     for it in items:
         if it["part"] == "patient":
             patient[it["key"]] = round(it["value"], 3)
-            imported.append({"code": it["code"], "into": f"patient.{it['key']}", "value": patient[it["key"]]})
+            origin["patient"][it["key"]] = it["path"]
+            imported.append({"code": it["code"], "into": f"patient.{it['key']}", "value": patient[it["key"]],
+                             **({"note": it["note"]} if "note" in it else {})})
     for t in gas_times:
         for it in items:
             if it["part"] == "settings" and it["time"] <= t:
                 settings_now[it["key"]] = it["value"]
+                settings_origin[it["key"]] = it["path"]
         values = {it["key"]: it["value"] for it in items if it["part"] == "observation" and it["time"] == t}
         missing = [k for k in ("pao2_mmhg", "paco2_mmhg", "ph") if k not in values]
         if missing:
@@ -301,13 +392,17 @@ def import_bundle(text: str, into: dict | None = None) -> tuple[dict, dict]:
         if settings_now:
             obs["settings"] = dict(settings_now)
         observations.append(obs)
+        where = {it["key"]: it["path"] for it in items if it["part"] == "observation" and it["time"] == t}
+        origin["observations"].append({**where, "settings": dict(settings_origin)})
         for it in items:
             if it["part"] == "observation" and it["time"] == t:
                 imported.append({"code": it["code"], "into": f"observation {obs['taken_at']}.{it['key']}",
-                                 "value": round(it["value"], 4)})
+                                 "value": round(it["value"], 4), **({"note": it["note"]} if "note" in it else {})})
     for it in items:
         if it["part"] == "settings" and any(it["time"] <= t for t in gas_times):
-            imported.append({"code": it["code"], "into": f"settings.{it['key']}", "value": it["value"]})
+            imported.append({"code": it["code"], "into": f"settings.{it['key']}", "value": it["value"],
+                             **({"note": it["note"]} if "note" in it else {})})
+    origin["settings"] = dict(settings_origin)
     if not observations:
         raise BundleError("bundle.entry", "no arterial blood gas (PaO2, PaCO2 and pH at one time) was found")
     if case is None:
@@ -326,8 +421,30 @@ def import_bundle(text: str, into: dict | None = None) -> tuple[dict, dict]:
         if "settings" in o and o["settings"].get("mode") == "volume" and o["settings"].get("vt_ml") is None:
             raise BundleError("bundle.entry", f"the settings in force at {o['taken_at']} are volume control without a "
                                               f"set tidal volume (LOINC 20112-9)")
-    case = validate(json.loads(json.dumps(case)))
+    first_new = len(case["observations"]) - len(observations)
+    try:
+        case = validate(json.loads(json.dumps(case)))
+    except CaseError as exc:
+        where = _bundle_origin(exc.field, origin, first_new)
+        if where is None:
+            raise
+        raise BundleError(where, f"{str(exc).split(': ', 1)[-1]} (becomes the case's {exc.field})") from None
     return case, {"imported": imported, "skipped": parsed["skipped"]}
+
+
+def _bundle_origin(field: str, origin: dict, first_new: int) -> str | None:
+    """The bundle path of the value that became case field ``field`` (None: not from the bundle)."""
+    m = re.fullmatch(r"observations\[(\d+)\]\.(settings\.)?(\w+)", field)
+    if m:
+        k = int(m.group(1)) - first_new
+        if not 0 <= k < len(origin["observations"]):
+            return None
+        block = origin["observations"][k]["settings"] if m.group(2) else origin["observations"][k]
+        return block.get(m.group(3))
+    part, _, key = field.partition(".")
+    if part in ("patient", "settings"):
+        return origin[part].get(key)
+    return None
 
 
 def _zone(t) -> str:

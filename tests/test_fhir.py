@@ -70,9 +70,104 @@ def test_unspecified_blood_counts_as_arterial_only_when_the_specimen_says_so():
     assert any("no arterial pao2_mmhg" in s["why"] for s in report["skipped"])
     for e in b["entry"]:
         if e["resource"].get("code", {}).get("coding", [{}])[0].get("code") == "11556-8":
-            e["resource"]["specimen"] = {"display": "Arterial blood specimen"}
+            e["resource"]["specimen"] = {"reference": "#s1", "display": "Arterial blood specimen"}
+            e["resource"]["contained"] = [{"resourceType": "Specimen", "id": "s1"}]
+    # display text never decides: no SNOMED CT code, still not arterial
+    case, _ = import_bundle(json.dumps(b))
+    assert len(case["observations"]) == 1
+    for e in b["entry"]:
+        if e["resource"].get("code", {}).get("coding", [{}])[0].get("code") == "11556-8":
+            e["resource"]["contained"][0]["type"] = {"coding": [{"system": "http://snomed.info/sct",
+                                                                 "code": "122552005"}]}
     case, _ = import_bundle(json.dumps(b))
     assert case["observations"][1]["pao2_mmhg"] == 71.0
+
+
+def _gas_at(b, suffix):
+    """The arterial PO2, PCO2 and pH entries of the gas whose time ends with ``suffix``."""
+    return [e for e in b["entry"] if e["resource"].get("code", {}).get("coding", [{}])[0].get("code")
+            in ("2703-7", "2019-8", "2744-1") and e["resource"]["effectiveDateTime"].endswith(suffix)]
+
+
+@pytest.mark.parametrize("code,kind", [("122555007", "venous"), ("122554006", "capillary")])
+def test_specimen_code_venous_or_capillary_is_never_arterial(code, kind):
+    """Issue 21 item 7: the specimen decides by SNOMED CT code, even under an arterial LOINC code and
+    whatever its text says ("Capillary blood (arterialized)", "Venous blood - not arterial")."""
+    b = _bundle()
+    b["entry"].append({"fullUrl": "urn:uuid:spec-1", "resource": {
+        "resourceType": "Specimen", "id": "spec-1", "type": {
+            "coding": [{"system": "http://snomed.info/sct", "code": code}], "text": "arterial blood"}}})
+    for e in _gas_at(b, "+01:00"):
+        e["resource"]["specimen"] = {"reference": "urn:uuid:spec-1", "display": "Arterial"}
+    case, report = import_bundle(json.dumps(b))
+    assert len(case["observations"]) == 1
+    assert sum(f"{kind} specimen" in s["what"] for s in report["skipped"]) == 3
+
+
+def test_comparator_values_are_never_taken_as_measured():
+    """Issue 21 item 8: PaO2 '> 71' is a bound; the gas lacks a PaO2 and is not imported as 71."""
+    b = _bundle()
+    _gas_at(b, "+01:00")[0]["resource"]["valueQuantity"]["comparator"] = ">"
+    case, report = import_bundle(json.dumps(b))
+    assert len(case["observations"]) == 1
+    assert any("a bound, not a measured value" in s["why"] for s in report["skipped"])
+
+
+def test_preliminary_is_noted_and_bad_status_refused():
+    b = _bundle()
+    _gas_at(b, "+01:00")[0]["resource"]["status"] = "preliminary"
+    _case, report = import_bundle(json.dumps(b))
+    assert sum("preliminary" in it.get("note", "") for it in report["imported"]) == 1
+    _gas_at(b, "+01:00")[0]["resource"]["status"] = 5
+    with pytest.raises(BundleError, match=r"status.*5"):
+        import_bundle(json.dumps(b))
+
+
+def test_saturation_fraction_with_percent_unit_is_a_fraction():
+    """Issue 21 item 9: SaO2 0.93 with unit '%' is 93 %, not 0.93 % (as for FiO2)."""
+    b = _bundle()
+    q = _entry("2708-6")(b)["resource"]["valueQuantity"]
+    q.update(value=0.93, code="%", unit="%")
+    case, _ = import_bundle(json.dumps(b))
+    assert any(o.get("sao2") == 0.93 for o in case["observations"])
+
+
+def test_contradictory_values_and_patients_are_refused_naming_both():
+    """Issue 21 item 10: two PaO2 at one time, or two Patients of different sex, are refused."""
+    b = _bundle()
+    twin = json.loads(json.dumps(_gas_at(b, "+01:00")[0]))
+    twin["resource"]["valueQuantity"]["value"] = 250
+    b["entry"].append(twin)
+    with pytest.raises(BundleError, match="contradicts"):
+        import_bundle(json.dumps(b))
+    b = _bundle()
+    other = json.loads(json.dumps(b["entry"][0]))
+    other["resource"]["gender"] = "female" if b["entry"][0]["resource"]["gender"] == "male" else "male"
+    b["entry"].append(other)
+    with pytest.raises(BundleError, match="gender .* contradicts"):
+        import_bundle(json.dumps(b))
+
+
+@pytest.mark.parametrize("key", ["hasMember", "category", "contained"])
+def test_list_elements_of_the_wrong_type_are_refused_with_the_path(key):
+    """Issue 21 item 17: hasMember 5 or category 5 named, not a TypeError."""
+    b = _bundle()
+    r = _entry("2703-7")(b)["resource"]
+    r[key] = 5
+    if key == "contained":
+        r["specimen"] = {"reference": "#x"}
+    if key == "hasMember":
+        r["code"]["coding"][0]["code"] = "24336-0"
+    with pytest.raises(BundleError, match=key):
+        import_bundle(json.dumps(b))
+
+
+def test_out_of_range_values_are_named_by_their_bundle_path():
+    b = _bundle()
+    _entry("2744-1")(b)["resource"]["valueQuantity"]["value"] = 9.5
+    with pytest.raises(BundleError) as err:
+        import_bundle(json.dumps(b))
+    assert err.value.field == f"bundle.entry[{_index('2744-1')}].resource" and "ph" in str(err.value)
 
 
 def test_into_adds_to_a_copy_and_leaves_the_existing_case_untouched(tmp_path, capsys):
