@@ -15,6 +15,7 @@ import math
 import os
 import stat
 import tempfile
+from datetime import datetime, timedelta, timezone
 from importlib import resources
 from pathlib import Path
 
@@ -77,6 +78,37 @@ def _path(parts) -> str:
     return out or "(case)"
 
 
+def short(value, limit: int = 60) -> str:
+    """repr of a value, cut to ``limit`` characters: an error message never dumps a whole array."""
+    text = repr(value)
+    return text if len(text) <= limit else text[:limit - 5] + " ...]" if text[0] == "[" else text[:limit - 4] + " ..."
+
+
+def schema_error(err, path: str) -> CaseError:
+    """A jsonschema error as a CaseError naming the field, the value (shortened) and what is accepted."""
+    where = path
+    s = err.schema
+    if err.validator in ("maxItems", "minItems"):
+        bound = "at most" if err.validator == "maxItems" else "at least"
+        return CaseError(where, f"{len(err.instance)} items; {bound} {err.validator_value} are accepted")
+    if err.validator in ("maxLength", "minLength"):
+        bound = "at most" if err.validator == "maxLength" else "at least"
+        return CaseError(where, f"text of {len(err.instance)} characters; {bound} {err.validator_value} are accepted")
+    if err.validator == "pattern":
+        return CaseError(where, f"value {short(err.instance)} is not of the accepted form")
+    if err.validator in ("minimum", "maximum", "exclusiveMinimum", "exclusiveMaximum"):
+        low = s.get("minimum", s.get("exclusiveMinimum"))
+        high = s.get("maximum", s.get("exclusiveMaximum"))
+        return CaseError(where, f"value {short(err.instance)} is outside the accepted range {low} to {high}")
+    if err.validator == "type":
+        return CaseError(where, f"value {short(err.instance)} has the wrong type; expected {err.validator_value}")
+    if err.validator in ("enum", "const"):
+        allowed = err.validator_value if err.validator == "enum" else [err.validator_value]
+        return CaseError(where, f"value {short(err.instance)} is not accepted; expected one of {allowed}")
+    message = err.message
+    return CaseError(where, message if len(message) <= 200 else message[:195] + " ...")
+
+
 def _schema_errors(doc: dict) -> None:
     validator = jsonschema.Draft202012Validator(_schema())
     errors = sorted(validator.iter_errors(doc), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
@@ -90,16 +122,7 @@ def _schema_errors(doc: dict) -> None:
     if err.validator == "required":
         missing = [k for k in err.validator_value if k not in err.instance][0]
         raise CaseError(_path(list(err.absolute_path) + [missing]), "required field is missing")
-    if err.validator in ("minimum", "maximum"):
-        s = err.schema
-        raise CaseError(where, f"value {err.instance!r} is outside the accepted range "
-                               f"{s.get('minimum')} to {s.get('maximum')}")
-    if err.validator == "type":
-        raise CaseError(where, f"value {err.instance!r} has the wrong type; expected {err.validator_value}")
-    if err.validator in ("enum", "const"):
-        allowed = err.validator_value if err.validator == "enum" else [err.validator_value]
-        raise CaseError(where, f"value {err.instance!r} is not accepted; expected one of {allowed}")
-    raise CaseError(where, err.message)
+    raise schema_error(err, where)
 
 
 def _finite(field: str, value) -> float:
@@ -233,7 +256,30 @@ def validate(doc) -> dict:
                             f"{obs['paco2_mmhg']:g} mmHg: the alveolar PO2 is only {pa_ideal:.0f} mmHg "
                             f"(accepted up to {pa_ideal + PAO2_ABOVE_ALVEOLAR_TOLERANCE:.0f}). Likely causes: "
                             f"FiO2 recorded wrongly, or air in the sample")
+    times = [check_taken_at(f"observations[{i}].taken_at", o["taken_at"]) for i, o in enumerate(case["observations"])]
+    # "now" is the newest gas, whatever order the file lists them in (a stable sort keeps equal times)
+    order = sorted(range(len(times)), key=lambda i: times[i])
+    case["observations"] = [case["observations"][i] for i in order]
     return case
+
+
+#: A gas may be dated at most this far after the clock of this computer (time zones and clock drift).
+FUTURE_TOLERANCE = timedelta(days=1)
+
+
+def check_taken_at(field: str, text: str) -> datetime:
+    """The time a gas was taken: a real date and time with its zone, not in the future."""
+    try:
+        t = datetime.fromisoformat(text.replace("Z", "+00:00"))
+    except ValueError:
+        raise CaseError(field, f"value {text!r} is not a real date and time (ISO 8601, e.g. 2026-03-14T05:40:00Z)") \
+            from None
+    if t.tzinfo is None:
+        raise CaseError(field, f"value {text!r} has no time zone (add Z or +hh:mm)")
+    latest = datetime.now(timezone.utc) + FUTURE_TOLERANCE
+    if t > latest:
+        raise CaseError(field, f"value {text!r} is in the future; accepted up to {latest:%Y-%m-%d %H:%M} UTC")
+    return t
 
 
 MAX_DEPTH = 32
@@ -368,7 +414,60 @@ def _umask() -> int:
     return mask
 
 
-def write_atomic(path, text: str, mode: int | None = None) -> None:
+#: First bytes of the files Ventcast writes, to recognise "a file of the same kind" before replacing one.
+MAGIC = {".pdf": b"%PDF", ".png": b"\x89PNG", ".svg": b"<", ".json": b"{", ".csv": b""}
+
+
+def check_output_file(option: str, path, force: bool = False) -> Path:
+    """Before anything is computed or written, refuse an output path that cannot or must not be
+    written: a folder or special file, a missing parent folder (or a parent that is a file), a folder
+    we may not write into, or an existing file of another kind (replaced only with ``force``)."""
+    p = Path(path)
+    if p.exists() and not p.is_file():
+        raise CaseError(option, f"value {str(p)!r} exists and is not a regular file")
+    parent = p.parent if str(p.parent) else Path(".")
+    if not parent.is_dir():
+        raise CaseError(option, f"value {str(p)!r}: the folder {str(parent)!r} does not exist")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise CaseError(option, f"value {str(p)!r}: the folder {str(parent)!r} is not writable")
+    if p.is_file() and not force:
+        magic = MAGIC.get(p.suffix.lower())
+        try:
+            with open(p, "rb") as fh:
+                head = fh.read(8).lstrip()
+        except OSError as exc:
+            raise CaseError(option, f"value {str(p)!r} cannot be read: {exc.strerror}") from None
+        if magic is None or not head.startswith(magic):
+            raise CaseError(option, f"value {str(p)!r} exists and is not a {p.suffix or 'file'} Ventcast wrote; "
+                                    f"refusing to replace it")
+    return p
+
+
+def check_output_folder(option: str, path) -> Path:
+    """A folder to write into: an existing folder, or one whose parent exists (it is created)."""
+    p = Path(path)
+    if p.exists() and not p.is_dir():
+        raise CaseError(option, f"value {str(p)!r} exists and is not a folder")
+    if not p.exists():
+        parent = p.parent if str(p.parent) else Path(".")
+        if not parent.is_dir():
+            raise CaseError(option, f"value {str(p)!r}: the folder {str(parent)!r} does not exist")
+    elif not os.access(p, os.W_OK | os.X_OK):
+        raise CaseError(option, f"value {str(p)!r} is not a writable folder")
+    return p
+
+
+def check_output_files(option: str, folder, names, force: bool = False) -> Path:
+    """A folder to write ``names`` into (see :func:`check_output_folder`), and each file in it that
+    already exists checked as :func:`check_output_file` does."""
+    out = check_output_folder(option, folder)
+    if out.is_dir():
+        for name in names:
+            check_output_file(option, out / name, force=force)
+    return out
+
+
+def write_atomic(path, text: str | bytes, mode: int | None = None) -> None:
     """Write ``text`` to ``path`` atomically: temporary file in the same folder, fsync, rename.
 
     The file keeps the permissions of the one it replaces; a new file gets ``mode`` (default: what
@@ -384,8 +483,8 @@ def write_atomic(path, text: str, mode: int | None = None) -> None:
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=folder)
     try:
         os.fchmod(fd, keep if keep is not None else (mode if mode is not None else 0o666 & ~_umask()))
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(text.encode("utf-8") if isinstance(text, str) else text)
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, target)

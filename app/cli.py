@@ -14,7 +14,8 @@ from pathlib import Path
 from . import CAUTION
 from .bedside import bedside_indices
 from .engine import ModelError
-from .casefile import DEMO_NAMES, CaseError, demo_text, load, load_demo, read_text, write_atomic
+from .casefile import (DEMO_NAMES, CaseError, check_output_file, check_output_files, demo_text, load, load_demo,
+                       read_text, write_atomic)
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_MODEL = 0, 1, 2, 3
 
@@ -49,8 +50,8 @@ BEDSIDE_ROWS = [
 
 def _cmd_demo(args) -> int:
     if args.out:
-        out = Path(args.out)
-        out.mkdir(parents=True, exist_ok=True)
+        out = check_output_files("--out", args.out, [f"{n}.ventcast.json" for n in DEMO_NAMES], force=True)
+        out.mkdir(exist_ok=True)
         for name in DEMO_NAMES:
             write_atomic(out / f"{name}.ventcast.json", demo_text(name))
         if args.format == "json":
@@ -184,6 +185,8 @@ def _cmd_open(args) -> int:
     apply_sets(case, args.set)
     if args.screenshot and not args.screenshot.lower().endswith(".png"):
         raise CaseError("--screenshot", f"value {args.screenshot!r} must name a .png file")
+    if args.screenshot:
+        check_output_file("--screenshot", args.screenshot)
     from .window import run
     quit_ms = None if args.quit_after is None else int(args.quit_after * 1000)
     return run(case_path=args.case, demo=args.demo, screenshot=args.screenshot, size=size, quit_after_ms=quit_ms,
@@ -270,10 +273,7 @@ def _cmd_wean(args) -> int:
 def _check_output_path(option: str, path: Path, force: bool) -> None:
     """Before anything is computed or written: the folder exists, and an existing file is replaced
     only with --force (a directory or a special file never)."""
-    if path.exists() and not path.is_file():
-        raise CaseError(option, f"value {str(path)!r} exists and is not a regular file")
-    if not path.parent.is_dir():
-        raise CaseError(option, f"value {str(path)!r}: the folder {str(path.parent)!r} does not exist")
+    check_output_file(option, path, force=True)
     if path.is_file() and not force:
         raise CaseError(option, f"value {str(path)!r} exists; give --force to replace it")
 
@@ -312,8 +312,9 @@ def _cmd_report(args) -> int:
     out = Path(args.out)
     if out.suffix.lower() != ".pdf":
         raise CaseError("--out", f"value {args.out!r} must name a .pdf file")
-    if not out.parent.exists():
-        raise CaseError("--out", f"folder {str(out.parent)!r} does not exist")
+    check_output_file("--out", out)
+    if args.csv:  # every output path is checked before anything is written
+        check_output_files("--csv", args.csv, ("course.csv", "observations.csv"))
     trials = {"A": args.set}
     for name, sets in (("B", args.set_b), ("C", args.set_c)):
         if sets:
@@ -484,6 +485,10 @@ def main(argv=None) -> int:
         return 130
     except BrokenPipeError:  # the reader went away (e.g. piped into head): nothing left to say
         return EXIT_OK
+    except OSError as exc:  # the machine refused a read or write (disk full, permissions): not our fault
+        where = f" {exc.filename}" if exc.filename else ""
+        print(f"ventcast: cannot read or write{where}: {exc.strerror or exc}", file=sys.stderr)
+        return EXIT_INPUT
     except Exception as exc:  # never a traceback; say plainly that this is our fault
         print(f"ventcast: internal error ({type(exc).__name__}: {exc}); please report it", file=sys.stderr)
         return EXIT_INTERNAL

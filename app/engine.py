@@ -7,6 +7,7 @@ ready for JSON, tables or the window.
 from __future__ import annotations
 
 import math
+import re
 
 import numpy as np
 
@@ -60,31 +61,51 @@ def to_observations(case: dict):
     return out
 
 
-def apply_sets(case: dict, sets) -> dict:
-    """Trial settings: the case settings with each ``KEY=VALUE`` applied and range-checked."""
+_NUMBER = re.compile(r"[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?")
+#: Settings that mean something in one mode only: setting them in the other is refused, never ignored.
+MODE_ONLY = {"vt_ml": "volume", "inspiratory_pressure_cmh2o": "pressure"}
+
+
+def apply_sets(case: dict, sets, where: str = "--set") -> dict:
+    """Trial settings: the case settings with each ``KEY=VALUE`` applied and range-checked.
+
+    ``where`` names the source in errors: a command-line option ('--set', refusals read '--set KEY')
+    or a file field ('script.start_settings', refusals read 'script.start_settings.KEY')."""
+    option = re.fullmatch(r"--[a-z-]+", where) is not None
+
+    def field(key):
+        return f"{where} {key}" if option else f"{where}.{key}"
+
     trial = dict(case["settings"])
+    given = []
     for item in sets or ():
         if "=" not in item:
-            raise CaseError("--set", f"value {item!r} is not of the form KEY=VALUE")
+            raise CaseError(where, f"value {item!r} is not of the form KEY=VALUE")
         key, value = item.split("=", 1)
-        key = key.strip()
+        key, value = key.strip(), value.strip()
         if key not in SETTING_KEYS:
-            raise CaseError("--set", f"key {key!r} is not a setting; accepted keys: {', '.join(SETTING_KEYS)}")
+            raise CaseError(where, f"key {key!r} is not a setting; accepted keys: {', '.join(SETTING_KEYS)}")
+        given.append(key)
         if key == "mode":
             if value not in ("volume", "pressure"):
-                raise CaseError("--set mode", f"value {value!r} is not accepted; expected 'volume' or 'pressure'")
+                raise CaseError(field("mode"), f"value {value!r} is not accepted; expected 'volume' or 'pressure'")
             trial[key] = value
             continue
-        try:
-            v = float(value)
-        except ValueError:
-            raise CaseError(f"--set {key}", f"value {value!r} is not a number") from None
+        if not _NUMBER.fullmatch(value):  # float() would also take '1_2', 'nan' and 'inf'
+            raise CaseError(field(key), f"value {value!r} is not a number (finite, in digits with an "
+                                        f"optional decimal point and exponent, e.g. 12 or 0.45)")
+        v = float(value)
         if not math.isfinite(v):
-            raise CaseError(f"--set {key}", f"value {value!r} must be a finite number")
+            raise CaseError(field(key), f"value {value!r} must be a finite number")
         trial[key] = v
+    for key in given:
+        mode = MODE_ONLY.get(key)
+        if mode is not None and trial["mode"] != mode:
+            raise CaseError(field(key), f"applies in {mode} mode only, and the trial is in {trial['mode']} mode; "
+                                        f"add mode={mode} to change the mode")
     from ventcast.physiology.indices import predicted_body_weight
     pbw = float(predicted_body_weight(case["patient"]["height_cm"], case["patient"]["sex"]))
-    return check_settings("trial settings", trial, pbw)
+    return check_settings("trial settings" if option else where, trial, pbw)
 
 
 def _f(x):

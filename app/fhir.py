@@ -29,6 +29,7 @@ from datetime import datetime
 from . import MMHG_PER_KPA
 from .casefile import CaseError, FORMAT, PATIENT_DEFAULTS, VERSION, parse_json, validate
 
+MAX_GAS_TIMES = 200  # as many blood gases as a case holds (case.schema.json)
 HB_G_DL_PER_MMOL_L = 1.611  # haemoglobin (monomer) 16.11 g/mmol, common practice
 
 #: Arterial blood gas: code -> (observation key, kind). Temperature-adjusted codes are accepted.
@@ -113,6 +114,8 @@ def _number(resource, where, kind):
     if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
         raise BundleError(_path(*where, "valueQuantity", "value"), f"value {v!r} is not a finite number")
     unit = q.get("code", q.get("unit", ""))
+    if not isinstance(unit, str):
+        raise BundleError(_path(*where, "valueQuantity", "code"), f"unit {unit!r} is not a UCUM unit (a string)")
     if kind in ("fio2", "saturation"):
         return _fraction(v, unit, _path(*where, "valueQuantity"), kind)
     table = UNITS[kind]
@@ -373,17 +376,24 @@ def import_bundle(text: str, into: dict | None = None) -> tuple[dict, dict]:
             origin["patient"][it["key"]] = it["path"]
             imported.append({"code": it["code"], "into": f"patient.{it['key']}", "value": patient[it["key"]],
                              **({"note": it["note"]} if "note" in it else {})})
+    if len(gas_times) > MAX_GAS_TIMES:
+        raise BundleError("bundle.entry", f"{len(gas_times)} result times; a case holds at most {MAX_GAS_TIMES} "
+                                          f"blood gases: import a shorter period")
+    at_time = {}
+    for it in items:
+        if it["part"] == "observation":
+            at_time.setdefault(it["time"], []).append(it)
+    settings_items = [it for it in items if it["part"] == "settings"]  # sorted by time, as items are
+    next_setting = 0
     for t in gas_times:
-        for it in items:
-            if it["part"] == "settings" and it["time"] <= t:
-                settings_now[it["key"]] = it["value"]
-                settings_origin[it["key"]] = it["path"]
-        values = {it["key"]: it["value"] for it in items if it["part"] == "observation" and it["time"] == t}
+        while next_setting < len(settings_items) and settings_items[next_setting]["time"] <= t:
+            it = settings_items[next_setting]
+            settings_now[it["key"]] = it["value"]
+            settings_origin[it["key"]] = it["path"]
+            next_setting += 1
+        values = {it["key"]: it["value"] for it in at_time[t]}
         missing = [k for k in ("pao2_mmhg", "paco2_mmhg", "ph") if k not in values]
         if missing:
-            for it in items:
-                if it["part"] == "observation" and it["time"] == t:
-                    it["incomplete"] = True
             parsed["skipped"].append({"code": None, "what": f"results at {t.isoformat()}",
                                       "why": f"no arterial {', '.join(missing)} at that time: not a blood gas"})
             continue
@@ -392,14 +402,13 @@ def import_bundle(text: str, into: dict | None = None) -> tuple[dict, dict]:
         if settings_now:
             obs["settings"] = dict(settings_now)
         observations.append(obs)
-        where = {it["key"]: it["path"] for it in items if it["part"] == "observation" and it["time"] == t}
+        where = {it["key"]: it["path"] for it in at_time[t]}
         origin["observations"].append({**where, "settings": dict(settings_origin)})
-        for it in items:
-            if it["part"] == "observation" and it["time"] == t:
-                imported.append({"code": it["code"], "into": f"observation {obs['taken_at']}.{it['key']}",
-                                 "value": round(it["value"], 4), **({"note": it["note"]} if "note" in it else {})})
-    for it in items:
-        if it["part"] == "settings" and any(it["time"] <= t for t in gas_times):
+        for it in at_time[t]:
+            imported.append({"code": it["code"], "into": f"observation {obs['taken_at']}.{it['key']}",
+                             "value": round(it["value"], 4), **({"note": it["note"]} if "note" in it else {})})
+    for it in settings_items:
+        if gas_times and it["time"] <= gas_times[-1]:
             imported.append({"code": it["code"], "into": f"settings.{it['key']}", "value": it["value"],
                              **({"note": it["note"]} if "note" in it else {})})
     origin["settings"] = dict(settings_origin)

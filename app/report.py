@@ -287,7 +287,7 @@ def render_report(case: dict, forecasts: dict, out, csv_dir=None, plan: dict | N
     written = []
     if csv_dir is not None:
         folder = Path(csv_dir)
-        folder.mkdir(parents=True, exist_ok=True)
+        folder.mkdir(exist_ok=True)  # its parent was checked before any work (check_output_folder)
         for name, text in (("course.csv", course_csv(forecasts)), ("observations.csv", observations_csv(case))):
             write_atomic(folder / name, text)
             written.append(str(folder / name))

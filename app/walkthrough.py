@@ -20,7 +20,7 @@ import numpy as np
 from ventcast.physiology.scenario import EVENT_KINDS, Action, Event, Timeline
 
 from . import CAUTION
-from .casefile import CaseError, DEMO_NAMES, load, load_demo, parse_json, read_text, validate
+from .casefile import CaseError, DEMO_NAMES, load, load_demo, parse_json, read_text, schema_error, validate
 from .engine import apply_sets, fit_case, settings_dict, to_settings
 
 FORMAT = "ventcast.walkthrough"
@@ -66,7 +66,7 @@ def loads_script(text: str) -> dict:
         if e.validator == "additionalProperties":
             extra = sorted(set(e.instance) - set(e.schema.get("properties", {})))
             raise CaseError(_where(e.absolute_path), f"unknown key {extra[0]!r}")
-        raise CaseError(_where(e.absolute_path), f"value {e.instance!r} is not accepted: {e.message}")
+        raise schema_error(e, _where(e.absolute_path))
     duration = float(doc.get("duration_min", 60.0))
     for i, ev in enumerate(doc["events"]):
         name, (lo, hi), _what = EVENT_KINDS[ev["kind"]]
@@ -102,10 +102,19 @@ def resolve_case(script: dict, folder: Path | None) -> dict:
             raise CaseError("script.case", f"value {ref!r}: no such demo case; accepted: "
                                            + ", ".join(f"demo:{n}" for n in DEMO_NAMES))
         return load_demo(name)
+    if folder is None:
+        raise CaseError("script.case", f"value {ref!r}: a built-in script names a demo case or holds its case inline")
     path = Path(ref)
-    if not path.is_absolute() and folder is not None:
-        path = folder / path
-    return load(path)
+    # A script names files beside it or below it, never elsewhere on the disk.
+    inside = folder.resolve()
+    full = (inside / path).resolve()
+    if path.is_absolute() or (full != inside and inside not in full.parents):
+        raise CaseError("script.case", f"value {ref!r} is outside the script's folder: give a path relative to the "
+                                       f"script, in its folder or below")
+    try:
+        return load(full)
+    except CaseError as exc:
+        raise CaseError(f"script.case ({ref}) {exc.field}", str(exc).split(": ", 1)[1]) from None
 
 
 class Run:
@@ -115,7 +124,8 @@ class Run:
         self.script = script
         self.case = resolve_case(script, folder)
         if script.get("start_settings"):
-            self.case["settings"] = apply_sets(self.case, [f"{k}={v}" for k, v in script["start_settings"].items()])
+            self.case["settings"] = apply_sets(self.case, [f"{k}={v}" for k, v in script["start_settings"].items()],
+                                               where="script.start_settings")
         _patient, _obs, fitted = fit_case(self.case)
         self.fit = fitted
         self.duration = float(script.get("duration_min", 60.0))
@@ -133,14 +143,15 @@ class Run:
         self.timeline.add_event(Event(float(minute), kind, float(value), note, source="instructor"))
         self._course = None
 
-    def act(self, minute: float, sets) -> dict:
-        """The learner changes settings at ``minute`` (KEY=VALUE list or a dict of case-file settings keys)."""
+    def act(self, minute: float, sets, where: str = "--set") -> dict:
+        """The learner changes settings at ``minute`` (KEY=VALUE list or a dict of case-file settings keys);
+        ``where`` names the source in a refusal."""
         self._check_minute(minute)
         current = settings_dict(self.timeline.settings_at(minute))
         case_now = dict(self.case, settings=current)
         if isinstance(sets, dict):
             sets = [f"{k}={v}" for k, v in sets.items()]
-        new = apply_sets(case_now, sets)
+        new = apply_sets(case_now, sets, where=where)
         self.timeline.add_action(Action(float(minute), to_settings(new), ", ".join(sets)))
         self.action_log.append({"minute": float(minute), "settings": new, "changed": list(sets)})
         self._course = None
@@ -213,10 +224,20 @@ class Run:
 
 def apply_actions_file(run: Run, text: str) -> None:
     """Learner actions for a headless run: a JSON list of {minute, set: {KEY: VALUE}} | {minute, draw: true}
-    | {minute, event: {kind, value, note}}."""
+    | {minute, event: {kind, value, note}}. A refusal names the action by its index."""
     items = parse_json(text, "--actions")
     if not isinstance(items, list):
         raise CaseError("--actions", "the actions file is a JSON list")
+
+    def named(prefix, fn, *args, **kwargs):
+        try:
+            return fn(*args, **kwargs)
+        except CaseError as exc:
+            field = exc.field if exc.field.startswith(prefix) else f"{prefix}.{exc.field}"
+            raise CaseError(field, str(exc).split(": ", 1)[1]) from None
+        except ValueError as exc:
+            raise CaseError(prefix, str(exc)) from None
+
     # Events and settings first, then draws, so that every draw sees the whole schedule.
     for i, it in enumerate(items):
         where = f"--actions[{i}]"
@@ -224,17 +245,15 @@ def apply_actions_file(run: Run, text: str) -> None:
             raise CaseError(where, "each action needs a numeric minute")
         keys = set(it) - {"minute"}
         if keys == {"set"} and isinstance(it["set"], dict):
-            run.act(float(it["minute"]), it["set"])
+            named(where, run.act, float(it["minute"]), it["set"], where=f"{where}.set")
         elif keys == {"event"} and isinstance(it["event"], dict):
             ev = it["event"]
             if ev.get("kind") not in EVENT_KINDS or not isinstance(ev.get("value"), (int, float)):
                 raise CaseError(f"{where}.event", f"needs a kind ({', '.join(sorted(EVENT_KINDS))}) and a numeric value")
-            try:
-                run.inject(float(it["minute"]), ev["kind"], float(ev["value"]), ev.get("note", "instructor"))
-            except ValueError as exc:
-                raise CaseError(f"{where}.event", str(exc)) from None
+            named(f"{where}.event", run.inject, float(it["minute"]), ev["kind"], float(ev["value"]),
+                  str(ev.get("note", "instructor")))
         elif keys != {"draw"} or it["draw"] is not True:
             raise CaseError(where, "expected one of: set (an object), draw (true), event (an object)")
-    for it in items:
+    for i, it in enumerate(items):
         if "draw" in it:
-            run.draw(float(it["minute"]))
+            named(f"--actions[{i}]", run.draw, float(it["minute"]))

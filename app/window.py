@@ -1349,6 +1349,15 @@ class MainWindow(QtWidgets.QMainWindow):
         if self.fit_result is None:
             self._on_failure(None, "the lung model is not fitted yet: nothing to report")
             return
+        from .casefile import check_output_file, check_output_files
+        try:  # every output path is checked before any work, so that nothing is half-written
+            if path:
+                check_output_file("report", path)
+            if csv_dir:
+                check_output_files("CSV folder", csv_dir, ("course.csv", "observations.csv"))
+        except CaseError as exc:
+            self._on_failure(None, f"not exported: {exc}")
+            return
         from .report import compute_forecasts
         case, result, trials = copy.deepcopy(self.state.case), self.fit_result, self._trial_settings()
         self._pending_export = {"pdf": path, "csv": csv_dir, "case": case}
@@ -1367,7 +1376,7 @@ class MainWindow(QtWidgets.QMainWindow):
                 written = [res["pdf"]] + res["csv"]
             else:
                 folder = Path(job["csv"])
-                folder.mkdir(parents=True, exist_ok=True)
+                folder.mkdir(exist_ok=True)
                 written = []
                 for name, text in (("course.csv", course_csv(forecasts)), ("observations.csv", observations_csv(job["case"]))):
                     write_atomic(folder / name, text)
@@ -1381,8 +1390,14 @@ class MainWindow(QtWidgets.QMainWindow):
     def export_charts(self, folder: str) -> list:
         """PNG and SVG of each Outlook chart into ``folder``."""
         from PySide6 import QtSvg
-        out = Path(folder)
-        out.mkdir(parents=True, exist_ok=True)
+
+        from .casefile import check_output_files
+        try:
+            out = check_output_files("chart folder", folder, [f"outlook-{k}.{e}" for k in self.plots for e in ("png", "svg")])
+        except CaseError as exc:
+            self._on_failure(None, f"not exported: {exc}")
+            return []
+        out.mkdir(exist_ok=True)
         written = []
         for key, plot in self.plots.items():
             rect = plot.sceneBoundingRect()
@@ -1393,19 +1408,28 @@ class MainWindow(QtWidgets.QMainWindow):
             plot.scene().render(painter, QtCore.QRectF(image.rect()), rect)
             painter.end()
             png, svg = out / f"outlook-{key}.png", out / f"outlook-{key}.svg"
-            if not image.save(str(png) + ".tmp", "PNG"):
-                raise OSError(f"could not write {png}")
-            os.replace(str(png) + ".tmp", png)
+            data = QtCore.QByteArray()
+            buffer = QtCore.QBuffer(data)
+            buffer.open(QtCore.QIODevice.WriteOnly)
+            image.save(buffer, "PNG")
             # QSvgGenerator, not pyqtgraph's SVG exporter (it fails on the filled likely-range band).
+            svg_data = QtCore.QByteArray()
+            svg_buffer = QtCore.QBuffer(svg_data)
+            svg_buffer.open(QtCore.QIODevice.WriteOnly)
             gen = QtSvg.QSvgGenerator()
-            gen.setFileName(str(svg) + ".tmp")
+            gen.setOutputDevice(svg_buffer)
             gen.setSize(size)
             gen.setViewBox(QtCore.QRect(0, 0, size.width(), size.height()))
             gen.setTitle(f"Ventcast Outlook: {key}")
             painter = QtGui.QPainter(gen)
             plot.scene().render(painter, QtCore.QRectF(0, 0, size.width(), size.height()), rect)
             painter.end()
-            os.replace(str(svg) + ".tmp", svg)
+            try:
+                write_atomic(png, bytes(data))
+                write_atomic(svg, bytes(svg_data))
+            except OSError as exc:
+                self._on_failure(None, f"not exported: {exc}")
+                return written
             written += [str(png), str(svg)]
         self.status.setText(f"exported {len(written)} chart files to {out}")
         return written
@@ -1712,10 +1736,12 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
         image = window.grab()
         if image.size().width() != size[0] or image.size().height() != size[1]:
             image = image.scaled(size[0], size[1])
-        tmp = f"{screenshot}.tmp"
-        if not image.save(tmp, "PNG"):
-            raise OSError(f"could not write {screenshot}")
-        os.replace(tmp, screenshot)
+        data = QtCore.QByteArray()
+        buffer = QtCore.QBuffer(data)
+        buffer.open(QtCore.QIODevice.WriteOnly)
+        if not image.save(buffer, "PNG"):
+            raise OSError(f"could not encode the screenshot for {screenshot}")
+        write_atomic(screenshot, bytes(data))  # whole or not at all; no temporary file left behind
         window.close()
         _dispose(window, app)
         return 0
@@ -1969,9 +1995,15 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         import csv
         import io
         from .report import chart_images, write_pdf
+        from .casefile import check_output_files
+        try:
+            folder = check_output_files("debrief folder", folder,
+                                        ("debrief-timeline.csv", "debrief-course.csv", "debrief.pdf"))
+        except CaseError as exc:
+            self.status.setText(f"\u2716 not exported: {exc}")
+            return []
         out = getattr(self, "debrief", None) or self.finish()
-        folder = Path(folder)
-        folder.mkdir(parents=True, exist_ok=True)
+        folder.mkdir(exist_ok=True)
         timeline = io.StringIO()
         w = csv.writer(timeline, lineterminator="\n")
         w.writerow(["minute [min]", "what", "detail"])

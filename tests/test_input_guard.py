@@ -170,3 +170,122 @@ def test_import_fhir_does_not_replace_an_existing_case_without_force(tmp_path, c
     os.chmod(existing, 0o644)
     assert main(["import-fhir", str(bundle), "--out", str(existing), "--force"]) == 0
     assert existing.read_bytes() != before and stat.S_IMODE(existing.stat().st_mode) == 0o644
+
+
+def test_observations_out_of_order_use_the_newest_and_bad_dates_are_refused():
+    """Item 12: 'now' came from the older gas when the file listed the newer first; impossible and
+    far-future dates were accepted."""
+    doc = json.loads(_demo_text())
+    assert len(doc["observations"]) >= 2
+    newest = max(doc["observations"], key=lambda o: o["taken_at"])
+    doc["observations"] = list(reversed(doc["observations"]))
+    case = casefile.validate(doc)
+    assert case["observations"][-1] == casefile.validate(json.loads(_demo_text()))["observations"][-1]
+    assert case["observations"][-1]["taken_at"] == newest["taken_at"]
+    for bad, words in (("2026-02-31T25:61Z", "not a real date"), ("2026-02-30T10:00Z", "not a real date"),
+                       ("2999-01-01T10:00Z", "in the future")):
+        doc = json.loads(_demo_text())
+        doc["observations"][0]["taken_at"] = bad
+        with pytest.raises(CaseError) as info:
+            casefile.validate(doc)
+        assert info.value.field == "observations[0].taken_at" and words in str(info.value)
+
+
+def test_a_long_array_is_named_by_its_length_not_dumped(tmp_path, capsys):
+    """Unclear messages: 201 observations dumped 57 KB of stderr."""
+    doc = json.loads(_demo_text())
+    doc["observations"] = doc["observations"] * 101
+    path = tmp_path / "long.ventcast.json"
+    path.write_text(json.dumps(doc))
+    assert main(["fit", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert "observations" in err and "at most 200" in err and len(err) < 300
+
+
+@pytest.mark.parametrize("value,words", [("1_2", "not a number"), ("nan", "not a number"), ("0x10", "not a number"),
+                                         ("1e999", "finite")])
+def test_set_values_are_plain_finite_numbers(capsys, value, words):
+    """Unclear messages: 'peep_cmh2o=1_2' was read as 12."""
+    assert main(["predict", "--demo", "ards-moderate", "--set", f"peep_cmh2o={value}"]) == 2
+    err = capsys.readouterr().err
+    assert "--set peep_cmh2o" in err and words in err
+
+
+def test_a_setting_of_the_other_mode_is_refused_not_ignored(capsys):
+    """Unclear messages: --set inspiratory_pressure_cmh2o=20 in volume mode was silently ignored."""
+    assert main(["predict", "--demo", "ards-moderate", "--set", "inspiratory_pressure_cmh2o=20"]) == 2
+    err = capsys.readouterr().err
+    assert "--set inspiratory_pressure_cmh2o" in err and "pressure mode only" in err
+    from ventcast.app.engine import apply_sets
+    trial = apply_sets(casefile.load_demo("ards-moderate"), ["mode=pressure", "inspiratory_pressure_cmh2o=20"])
+    assert trial["mode"] == "pressure" and trial["inspiratory_pressure_cmh2o"] == 20
+
+
+def _script(tmp_path, **changes):
+    from ventcast.app.walkthrough import built_in_text
+    doc = json.loads(built_in_text("hypoxaemia-needs-peep"))
+    doc.update(changes)
+    path = tmp_path / "s.walkthrough.json"
+    path.write_text(json.dumps(doc))
+    return path
+
+
+def test_script_case_paths_stay_in_the_scripts_folder(tmp_path, capsys):
+    """Item 19: a script's case path could be absolute or climb out with '../'."""
+    outside = tmp_path / "elsewhere.ventcast.json"
+    outside.write_text(_demo_text())
+    inner = tmp_path / "scripts"
+    inner.mkdir()
+    for ref in ("../elsewhere.ventcast.json", str(outside), "/dev/zero"):
+        script = _script(inner, case=ref)
+        assert main(["walkthrough", str(script), "--headless"]) == 2
+        err = capsys.readouterr().err
+        assert "script.case" in err and "outside the script's folder" in err, err
+    (inner / "beside.ventcast.json").write_text(_demo_text())
+    script = _script(inner, case="beside.ventcast.json", duration_min=20)
+    assert main(["walkthrough", str(script), "--headless", "--until", "1", "--format", "json"]) == 0
+
+
+def test_bad_start_settings_and_actions_are_named_where_they_are(tmp_path, capsys):
+    """Unclear messages: bad start_settings were reported as '--set fio2'; bad actions lacked their index."""
+    script = _script(tmp_path, start_settings={"fio2": 60})
+    assert main(["walkthrough", str(script), "--headless"]) == 2
+    err = capsys.readouterr().err
+    assert "script.start_settings.fio2" in err and "--set" not in err
+    actions = tmp_path / "a.json"
+    actions.write_text(json.dumps([{"minute": 1, "draw": True}, {"minute": 5, "set": {"peep_cmh2o": 99}}]))
+    assert main(["walkthrough", "hypoxaemia-needs-peep", "--headless", "--actions", str(actions)]) == 2
+    err = capsys.readouterr().err
+    assert "--actions[1].set" in err and "peep_cmh2o" in err
+    actions.write_text(json.dumps([{"minute": 1, "draw": True}, {"minute": 500, "draw": True}]))
+    assert main(["walkthrough", "hypoxaemia-needs-peep", "--headless", "--actions", str(actions)]) == 2
+    assert "--actions[1]" in capsys.readouterr().err
+
+
+def test_bad_output_paths_exit_2_before_anything_is_written(tmp_path, capsys):
+    """Item 18: a folder, a missing parent or a path under a file gave exit 1; report --csv FILE failed
+    after the PDF was written; a bad screenshot path left x.png.tmp behind."""
+    a_file = tmp_path / "file.txt"
+    a_file.write_text("keep")
+    (tmp_path / "dir.pdf").mkdir()
+    cases = [
+        (["report", "--demo", "ards-moderate", "--out", str(tmp_path / "dir.pdf")], "--out", "not a regular file"),
+        (["report", "--demo", "ards-moderate", "--out", str(tmp_path / "no" / "r.pdf")], "--out", "does not exist"),
+        (["report", "--demo", "ards-moderate", "--out", str(a_file / "r.pdf")], "--out", "does not exist"),
+        (["report", "--demo", "ards-moderate", "--out", str(tmp_path / "r.pdf"), "--csv", str(a_file)], "--csv",
+         "not a folder"),
+        (["report", "--demo", "ards-moderate", "--out", str(a_file.with_suffix(".pdf"))], None, None),
+        (["open", "--demo", "ards-moderate", "--screenshot", str(tmp_path / "no" / "x.png")], "--screenshot",
+         "does not exist"),
+        (["demo", "--out", str(a_file)], "--out", "not a folder"),
+        (["demo", "--out", str(a_file / "sub")], "--out", "does not exist"),
+    ]
+    (tmp_path / "file.pdf").write_text("not a pdf")
+    cases[4] = (cases[4][0], "--out", "refusing to replace it")
+    before = sorted(p.name for p in tmp_path.iterdir())
+    for args, option, words in cases:
+        assert main(args) == 2, args
+        err = capsys.readouterr().err
+        assert option in err and words in err and "Traceback" not in err, (args, err)
+    assert sorted(p.name for p in tmp_path.iterdir()) == before
+    assert a_file.read_text() == "keep" and (tmp_path / "file.pdf").read_text() == "not a pdf"

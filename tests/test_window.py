@@ -593,3 +593,17 @@ def test_window_starts_and_quits(tmp_path):
                           cwd=ROOT, capture_output=True, text=True, timeout=300, env=env)
     assert proc.returncode == 0, proc.stderr
     assert "Traceback" not in proc.stderr
+
+
+def test_exports_to_bad_paths_write_nothing_and_say_so(window, tmp_path):
+    """Issue 21 item 18: exports check every output path first; no folder is made anywhere else."""
+    missing = tmp_path / "no" / "such"
+    assert window.export_charts(str(missing)) == []
+    assert "not exported" in window.status.text() and "does not exist" in window.status.text()
+    window.export_report(str(missing / "r.pdf"))
+    assert "not exported" in window.status.text()
+    a_file = tmp_path / "f.txt"
+    a_file.write_text("keep")
+    window.export_csv(str(a_file))
+    assert "not a folder" in window.status.text()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["f.txt"] and a_file.read_text() == "keep"

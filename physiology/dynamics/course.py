@@ -630,7 +630,9 @@ def _co2_balance(X, t, u0, u_last, patient0, patient_last):
     produced = np.where(np.isclose(np.asarray(u0["vco2"]).sum(axis=1), np.asarray(u_last["vco2"]).sum(axis=1)),
                         produced, np.nan)
     moved = np.abs(s1 - s0_at_last) + exhaled + produced
-    return (s1 - s0_at_last + exhaled - produced) / moved
+    # A course too short to move any CO2 (or one whose VCO2 changed) has no balance to check: NaN.
+    err = s1 - s0_at_last + exhaled - produced
+    return np.divide(err, moved, out=np.full_like(err, np.nan, dtype=float), where=np.isfinite(moved) & (moved > 0))
 
 
 def _failed(pred: Prediction, message: str) -> Course:

@@ -455,7 +455,12 @@ def fit(patient: Patient, observations, n_draws: int = 200, seed: int = 0, max_n
         residuals[i][q] = float(rr)
     poor = [(i, q, v) for i, d in enumerate(residuals) for q, v in d.items() if abs(v) > 3.0]
     converged = bool(sol.success) and np.all(np.abs(data_r) < 1e2)
-    if not converged:
+    if not converged and sol.success:
+        # least_squares stopped (its tolerances met) at parameters that do not reproduce the data
+        worst = max(((i, q, v) for i, d in enumerate(residuals) for q, v in d.items()), key=lambda t: abs(t[2]))
+        message = (f"the fit did not converge: no parameters within the priors reproduce the data (worst: "
+                   f"{worst[1]} of observation {worst[0] + 1}, {'no steady state' if abs(worst[2]) >= 1e3 else f'{worst[2]:+.0f} SD'})")
+    elif not converged:
         message = f"the fit did not converge: {sol.message}"
     elif sampled:
         converged = False
