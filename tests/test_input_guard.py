@@ -289,3 +289,21 @@ def test_bad_output_paths_exit_2_before_anything_is_written(tmp_path, capsys):
         assert option in err and words in err and "Traceback" not in err, (args, err)
     assert sorted(p.name for p in tmp_path.iterdir()) == before
     assert a_file.read_text() == "keep" and (tmp_path / "file.pdf").read_text() == "not a pdf"
+
+
+def test_a_very_short_course_warns_nothing(recwarn):
+    """Noise on stderr: a course of a few seconds printed a numpy RuntimeWarning (0/0 in its CO2
+    balance); it now says the balance is not defined (NaN) and warns nothing."""
+    import warnings
+    from dataclasses import replace
+
+    import numpy as np
+
+    from ventcast.physiology.dynamics.course import Change, simulate
+    from ventcast.physiology.forecast import PatientModel
+    from ventcast.physiology.mechanics.ventilator import Settings
+    s = Settings(mode="volume", fio2=0.5, peep=5.0, vt_ml=450.0, rr=16.0, ti=1.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        course = simulate(PatientModel(), s, [Change(0.0, settings=replace(s, peep=8.0))], minutes=0.01)
+    assert bool(np.all(course.success)) and np.isnan(course.co2_balance_error)
