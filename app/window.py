@@ -1222,17 +1222,12 @@ class MainWindow(QtWidgets.QMainWindow):
     def ask_unsaved(self, doing: str) -> str:
         """Ask what to do with unsaved work before ``doing`` ('close the window', 'open another case'):
         'save', 'discard' or 'cancel'. Tests replace this method."""
-        box = QtWidgets.QMessageBox(
-            QtWidgets.QMessageBox.Warning, "Unsaved changes",
-            f"{self.case_name()} has changes that are not saved (trials, goals or an imported case). "
-            f"Save them before you {doing}?", parent=self)
-        box.setTextFormat(QtCore.Qt.PlainText)
-        save = box.addButton("Save", QtWidgets.QMessageBox.AcceptRole)
-        discard = box.addButton("Discard changes", QtWidgets.QMessageBox.DestructiveRole)
-        box.addButton("Cancel", QtWidgets.QMessageBox.RejectRole)
-        box.exec()
-        clicked = box.clickedButton()
-        return "save" if clicked is save else "discard" if clicked is discard else "cancel"
+        return ask_plain(self, QtWidgets.QMessageBox.Warning, "Unsaved changes",
+                         f"{self.case_name()} has changes that are not saved (trials, goals or an imported case). "
+                         f"Save them before you {doing}?",
+                         [("Save", QtWidgets.QMessageBox.AcceptRole, "save"),
+                          ("Discard changes", QtWidgets.QMessageBox.DestructiveRole, "discard"),
+                          ("Cancel", QtWidgets.QMessageBox.RejectRole, "cancel")])
 
     def may_leave_case(self, doing: str) -> bool:
         """True when the current case may be left: no unsaved work, or the user saved or discarded it.
@@ -1284,15 +1279,11 @@ class MainWindow(QtWidgets.QMainWindow):
     def ask_overwrite_changed(self, path) -> bool:
         """The case file changed on disk since this window read or wrote it (another window or program
         saved it): True to replace it anyway. Tests replace this method."""
-        box = QtWidgets.QMessageBox(
-            QtWidgets.QMessageBox.Warning, "Case file changed on disk",
-            f"{path} was changed by another window or program since this window opened or saved it. "
-            f"Saving replaces those changes with this window's case. Use Save as to keep both.", parent=self)
-        box.setTextFormat(QtCore.Qt.PlainText)
-        replace = box.addButton("Replace the file", QtWidgets.QMessageBox.DestructiveRole)
-        box.addButton("Cancel", QtWidgets.QMessageBox.RejectRole)
-        box.exec()
-        return box.clickedButton() is replace
+        return ask_plain(self, QtWidgets.QMessageBox.Warning, "Case file changed on disk",
+                         f"{path} was changed by another window or program since this window opened or saved it. "
+                         f"Saving replaces those changes with this window's case. Use Save as to keep both.",
+                         [("Replace the file", QtWidgets.QMessageBox.DestructiveRole, True),
+                          ("Cancel", QtWidgets.QMessageBox.RejectRole, False)])
 
     def _save_to(self, path):
         from .casefile import save
@@ -1648,14 +1639,20 @@ def ask_recovery(window, doc: dict, more: int) -> str:
             f"screen?")
     if more:
         text += f" ({more} more unsaved case(s) will be offered next.)"
-    box = QtWidgets.QMessageBox(QtWidgets.QMessageBox.Question, "Recover unsaved work?", text, parent=window)
+    return ask_plain(window, QtWidgets.QMessageBox.Question, "Recover unsaved work?", text,
+                     [("Recover", QtWidgets.QMessageBox.AcceptRole, "recover"),
+                      ("Discard it", QtWidgets.QMessageBox.DestructiveRole, "discard"),
+                      ("Ask me next time", QtWidgets.QMessageBox.RejectRole, "later")])
+
+
+def ask_plain(parent, icon, title: str, text: str, buttons):
+    """A modal question in plain text (it may quote file names and case labels: never rich text);
+    ``buttons`` are (label, role, answer); the answer of the button pressed (the last one if none)."""
+    box = QtWidgets.QMessageBox(icon, title, text, parent=parent)
     box.setTextFormat(QtCore.Qt.PlainText)
-    recover = box.addButton("Recover", QtWidgets.QMessageBox.AcceptRole)
-    discard = box.addButton("Discard it", QtWidgets.QMessageBox.DestructiveRole)
-    box.addButton("Ask me next time", QtWidgets.QMessageBox.RejectRole)
+    made = [(box.addButton(label, role), answer) for label, role, answer in buttons]
     box.exec()
-    clicked = box.clickedButton()
-    return "recover" if clicked is recover else "discard" if clicked is discard else "later"
+    return next((answer for button, answer in made if box.clickedButton() is button), made[-1][1])
 
 
 def offer_recovery(window: MainWindow, ask=None) -> bool:

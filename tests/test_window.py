@@ -623,3 +623,21 @@ def test_exports_to_bad_paths_write_nothing_and_say_so(window, tmp_path):
     window.export_csv(str(a_file))
     assert "not a folder" in window.status.text()
     assert sorted(p.name for p in tmp_path.iterdir()) == ["f.txt"] and a_file.read_text() == "keep"
+
+
+def test_questions_are_plain_text_and_return_the_button_pressed(qtbot, qapp):
+    """The modal questions (unsaved work, file changed on disk, recovery) quote case names and paths:
+    shown as plain text, and each button gives its own answer."""
+    seen = {}
+
+    def press():
+        box = QtWidgets.QApplication.activeModalWidget()
+        seen["format"] = box.textFormat()
+        next(b for b in box.buttons() if b.text() == "Discard changes").click()
+
+    QtCore.QTimer.singleShot(200, press)
+    answer = win.ask_plain(None, QtWidgets.QMessageBox.Warning, "t", "<b>case</b>",
+                           [("Save", QtWidgets.QMessageBox.AcceptRole, "save"),
+                            ("Discard changes", QtWidgets.QMessageBox.DestructiveRole, "discard"),
+                            ("Cancel", QtWidgets.QMessageBox.RejectRole, "cancel")])
+    assert answer == "discard" and seen["format"] == QtCore.Qt.PlainText
