@@ -37,7 +37,15 @@ def median_ms(fn, repeats: int = 7, warmup: int = 1, min_seconds: float = 0.0) -
         times.append((time.perf_counter() - t0) * 1000.0)
         if len(times) >= 200:
             break
+    median_ms.last_spread = max(times) / min(times)
     return statistics.median(times)
+
+
+def timed(results: dict, key: str, fn, **options) -> None:
+    """``results[key]`` = the median of ``fn`` [ms], and ``results[key + '_spread']`` = the slowest repeat
+    over the fastest: a noisy figure shows itself (the machines are shared)."""
+    results[key] = median_ms(fn, **options)
+    results[f"{key}_spread"] = median_ms.last_spread
 
 
 def bench_steady(results: dict) -> None:
@@ -47,7 +55,7 @@ def bench_steady(results: dict) -> None:
     from reference_solver import solve_reference
 
     one = LungParameters(shunt=0.15, log_sd=1.0, alveolar_ventilation=5.0, cardiac_output=5.0, fio2=0.5)
-    results["steady_single_ms"] = median_ms(lambda: solve_steady_state(one), repeats=51, warmup=3)
+    timed(results, "steady_single_ms", lambda: solve_steady_state(one), repeats=51, warmup=3)
 
     rng = np.random.default_rng(7)
     n = 10_000
@@ -56,7 +64,7 @@ def bench_steady(results: dict) -> None:
         alveolar_ventilation=rng.uniform(3.0, 10.0, n), cardiac_output=rng.uniform(3.5, 7.0, n),
         fio2=rng.uniform(0.25, 1.0, n), dead_space_fraction=rng.uniform(0.0, 0.3, n),
     )
-    results["steady_batch_10000_ms"] = median_ms(lambda: solve_steady_state(batch), repeats=5, warmup=1)
+    timed(results, "steady_batch_10000_ms", lambda: solve_steady_state(batch), repeats=5, warmup=1)
 
     # Speed ratio on the same 20 cases: the reference solves them one by one; the engine as it is
     # used (one batched call), and also one call per case (reported separately).
@@ -85,12 +93,12 @@ def bench_prediction(results: dict) -> None:
     patient = PatientModel(pbw_kg=57, shunt_fixed=0.08, log_sd=0.9, dead_space_fraction=0.25, hb=10.5,
                            mechanics=Mechanics(resistance=15, c_max=35, recruitable=0.35))
     one = Settings(mode="volume", fio2=0.6, peep=12.0, vt_ml=400.0, rr=22.0, ti=0.9)
-    results["prediction_single_ms"] = median_ms(lambda: predict(patient, one), repeats=51, warmup=3)
+    timed(results, "prediction_single_ms", lambda: predict(patient, one), repeats=51, warmup=3)
     rng = np.random.default_rng(3)
     n = 10_000
     many = Settings(mode="volume", fio2=rng.choice(np.arange(0.3, 1.0001, 0.05), n), peep=rng.integers(5, 21, n) * 1.0,
                     vt_ml=rng.uniform(300, 480, n), rr=rng.integers(14, 33, n) * 1.0, ti=0.8)
-    results["prediction_batch_10000_ms"] = median_ms(lambda: predict(patient, many), repeats=3, warmup=1)
+    timed(results, "prediction_batch_10000_ms", lambda: predict(patient, many), repeats=3, warmup=1)
 
 
 def bench_course(results: dict) -> None:
@@ -105,13 +113,13 @@ def bench_course(results: dict) -> None:
                            mechanics=Mechanics(resistance=10, c_max=50))
     now = Settings(mode="pressure", fio2=0.35, peep=6, inspiratory_pressure=10, rr=12, ti=1.0)
     trial = Settings(mode="pressure", fio2=0.55, peep=8, inspiratory_pressure=10, rr=14, ti=1.0)
-    results["course_60min_ms"] = median_ms(lambda: simulate(patient, now, trial), repeats=11, warmup=2)
+    timed(results, "course_60min_ms", lambda: simulate(patient, now, trial), repeats=11, warmup=2)
     rng = np.random.default_rng(1)
     b = 200
     draws = PatientModel(pbw_kg=70, shunt_fixed=rng.uniform(0.03, 0.15, b), log_sd=rng.uniform(0.4, 0.9, b),
                          dead_space_fraction=rng.uniform(0.1, 0.2, b), hb=12,
                          mechanics=Mechanics(resistance=10, c_max=rng.uniform(40, 60, b)))
-    results["course_draws_200_ms"] = median_ms(lambda: simulate(draws, now, trial), repeats=3, warmup=1)
+    timed(results, "course_draws_200_ms", lambda: simulate(draws, now, trial), repeats=3, warmup=1)
 
 
 def bench_fit(results: dict) -> None:
@@ -133,11 +141,11 @@ def bench_fit(results: dict) -> None:
 
     one = [obs(0.6, 10)]
     six = [obs(f, pe) for f, pe in ((0.4, 8), (0.5, 8), (0.6, 10), (0.7, 10), (0.6, 12), (0.5, 12))]
-    results["fit_one_ms"] = median_ms(lambda: fit(pt, one), repeats=5, warmup=1)
-    results["fit_six_ms"] = median_ms(lambda: fit(pt, six), repeats=5, warmup=1)
+    timed(results, "fit_one_ms", lambda: fit(pt, one), repeats=5, warmup=1)
+    timed(results, "fit_six_ms", lambda: fit(pt, six), repeats=5, warmup=1)
     f = fit(pt, one)
     trial = Settings(mode="volume", fio2=0.5, peep=14, vt_ml=400, rr=22, ti=0.9, apparatus_dead_space_ml=50)
-    results["range_draws_200_ms"] = median_ms(lambda: likely_range(f, trial), repeats=7, warmup=1)
+    timed(results, "range_draws_200_ms", lambda: likely_range(f, trial), repeats=7, warmup=1)
 
 
 def bench_planning(results: dict) -> None:
@@ -158,7 +166,7 @@ def bench_planning(results: dict) -> None:
         res = search(fitted.model, fitted.draws, now, goals, patient.pbw_kg)
         screened["n"] = res.screened
 
-    results["plan_search_ms"] = median_ms(run_search, repeats=3, warmup=1)
+    timed(results, "plan_search_ms", run_search, repeats=3, warmup=1)
     results["plan_candidates_screened"] = screened["n"]
     # A step-down plan with several steps: an invented patient with a modest shunt, fitted from one blood
     # gas at FiO2 0.7 and PEEP 14 (the demo case stops after one step: its SpO2 is near the goal).
@@ -180,7 +188,7 @@ def bench_planning(results: dict) -> None:
     def run_wean():
         plan["steps"] = len(step_down(f2.model, f2.draws, start, Goals()).steps)
 
-    results["wean_plan_ms"] = median_ms(run_wean, repeats=5, warmup=1)
+    timed(results, "wean_plan_ms", run_wean, repeats=5, warmup=1)
     results["wean_plan_steps"] = plan["steps"]
 
 
@@ -245,7 +253,9 @@ def bench_window(results: dict) -> None:
             steady.append((marks["steady"] - t0) * 1000.0)
             course.append((marks["course"] - t0) * 1000.0)
     results["window_update_ms"] = statistics.median(steady)
+    results["window_update_ms_spread"] = max(steady) / min(steady)
     results["window_course_ms"] = statistics.median(course)
+    results["window_course_ms_spread"] = max(course) / min(course)
     w.close()
     w.deleteLater()
     app.processEvents()
@@ -260,6 +270,7 @@ def bench_window(results: dict) -> None:
         starts.append((float(out[0]) - t0) * 1000.0)  # process start to the window shown
         rss.append(float(out[1]))
     results["cold_start_ms"] = statistics.median(starts)
+    results["cold_start_ms_spread"] = max(starts) / min(starts)
     results["window_rss_mb"] = statistics.median(rss)
 
 
