@@ -170,7 +170,8 @@ def _list(resource, key, where) -> list:
 
 def _is_lab(resource, where) -> bool:
     for cat in _list(resource, "category", where):
-        for c in (cat.get("coding", []) if isinstance(cat, dict) else []) or []:
+        codings = cat.get("coding") if isinstance(cat, dict) else None
+        for c in codings if isinstance(codings, list) else []:
             if isinstance(c, dict) and c.get("code") == "laboratory":
                 return True
     return False
@@ -275,13 +276,13 @@ def read_bundle(text: str) -> dict:
         rid = f"Observation/{r.get('id')}" if r.get("id") else None
         in_panel = in_panel or (rid in panel_members)
         target = None
+        specimen = _specimen_kind(r, where, specimens)
         for c in codes:
             if c == "2708-6":
                 if "59408-5" in codes or not (_is_lab(r, where) or in_panel):
                     skipped.append({"code": c, "what": "oxygen saturation", "why": "pulse oximetry, not a blood gas"})
                     target = "skip"
                     break
-            specimen = _specimen_kind(r, where, specimens)
             if specimen in ("venous", "capillary") and (c in ARTERIAL or c in UNSPECIFIED_BLOOD):
                 skipped.append({"code": c, "what": f"blood gas from a {specimen} specimen (SNOMED CT)",
                                 "why": "venous or capillary sample: never used as arterial"})
@@ -341,6 +342,11 @@ def read_bundle(text: str) -> dict:
     return {"items": items, "gender": gender, "skipped": skipped}
 
 
+def _note(item) -> dict:
+    """The note an imported value carries into the report ({} when it has none)."""
+    return {"note": item["note"]} if "note" in item else {}
+
+
 def _one_value_per_time(items):
     """Refuse two different values of one quantity at one time (the last would silently win)."""
     seen = {}
@@ -375,7 +381,7 @@ def import_bundle(text: str, into: dict | None = None) -> tuple[dict, dict]:
             patient[it["key"]] = round(it["value"], 3)
             origin["patient"][it["key"]] = it["path"]
             imported.append({"code": it["code"], "into": f"patient.{it['key']}", "value": patient[it["key"]],
-                             **({"note": it["note"]} if "note" in it else {})})
+                             **_note(it)})
     if len(gas_times) > MAX_GAS_TIMES:
         raise BundleError("bundle.entry", f"{len(gas_times)} result times; a case holds at most {MAX_GAS_TIMES} "
                                           f"blood gases: import a shorter period")
@@ -406,11 +412,11 @@ def import_bundle(text: str, into: dict | None = None) -> tuple[dict, dict]:
         origin["observations"].append({**where, "settings": dict(settings_origin)})
         for it in at_time[t]:
             imported.append({"code": it["code"], "into": f"observation {obs['taken_at']}.{it['key']}",
-                             "value": round(it["value"], 4), **({"note": it["note"]} if "note" in it else {})})
+                             "value": round(it["value"], 4), **_note(it)})
     for it in settings_items:
         if gas_times and it["time"] <= gas_times[-1]:
             imported.append({"code": it["code"], "into": f"settings.{it['key']}", "value": it["value"],
-                             **({"note": it["note"]} if "note" in it else {})})
+                             **_note(it)})
     origin["settings"] = dict(settings_origin)
     if not observations:
         raise BundleError("bundle.entry", "no arterial blood gas (PaO2, PaCO2 and pH at one time) was found")

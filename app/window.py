@@ -104,8 +104,8 @@ def _process_alive(pid) -> bool:
         os.kill(pid, 0)
     except ProcessLookupError:
         return False
-    except PermissionError:
-        return True
+    except PermissionError:  # alive, owned by another user
+        pass
     return True
 
 
