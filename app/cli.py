@@ -259,7 +259,7 @@ def _cmd_wean(args) -> int:
         print(f"   SaO2 {v['sao2']:.3f} ({r['sao2'][0]:.3f} to {r['sao2'][1]:.3f}), PaO2 {v['pao2_mmhg']:.0f} mmHg "
               f"({r['pao2_mmhg'][0]:.0f} to {r['pao2_mmhg'][1]:.0f}), PaCO2 {v['paco2_mmhg']:.1f} mmHg, pH {v['ph']:.2f}")
         hold = "-" if st["hold_min"] is None else f"{st['hold_min']:.0f} min"
-        print(f"   hold at least {hold} (90 % of the change), then check; {st['stop_if']}")
+        print(f"   hold at least {hold} ({st['hold_basis']}), then check; {st['stop_if']}")
     print("\nReadiness for a spontaneous breathing trial at the last step:")
     for c in out["readiness"]:
         mark = {True: "[ok]", False: "[no]", None: "[ ?]"}[c["met"]]

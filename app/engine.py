@@ -474,7 +474,8 @@ def wean_case(case: dict, result=None, table: str | None = None, target_fio2: fl
               "steady": steady_block(st.forecast),
               "likely_range": {"pao2_mmhg": list(st.likely_range["pao2"]), "paco2_mmhg": list(st.likely_range["paco2"]),
                                "ph": list(st.likely_range["ph"]), "sao2": list(st.likely_range["sao2"])},
-              "hold_min": _f(st.hold_min), "stop_if": st.stop_if} for st in res.steps]
+              "hold_min": _f(st.hold_min), "hold_basis": st.hold_basis,
+              "stop_if": st.stop_if} for st in res.steps]
     return {"goals": goals.as_dict(), "table": table, "target": {"fio2": target_fio2, "peep_cmh2o": target_peep},
             "success": res.success, "message": res.message, "steps": steps, "reached_target": res.reached_target,
             "stopped_because": res.stopped_because, "readiness": res.readiness, "caution": CAUTION}

@@ -630,7 +630,7 @@ class MainWindow(QtWidgets.QMainWindow):
             v, r = st["steady"], st["likely_range"]
             forecast = (f"SaO2 {v['sao2']:.3f} ({r['sao2'][0]:.3f}\u2013{r['sao2'][1]:.3f}), {self._gas(v['pao2_mmhg'])}, "
                         f"PaCO2 {self._gas(v['paco2_mmhg'], 1)}, pH {v['ph']:.2f}\n{st['stop_if']}")
-            hold = "-" if st["hold_min"] is None else f"{st['hold_min']:.0f} min"
+            hold = "-" if st["hold_min"] is None else f"{st['hold_min']:.0f} min\n({st.get('hold_basis', '')})"
             for j, text in enumerate((f"{i + 1}. {st['change']}\n({st['why']})", forecast, hold)):
                 self.wean_steps.setItem(i, j, QtWidgets.QTableWidgetItem(text))
         self.wean_steps.resizeRowsToContents()

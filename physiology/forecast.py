@@ -40,6 +40,9 @@ class PatientModel:
     cardiac_output_ref : cardiac output at ``mean_paw_ref`` [L/min]
     mean_paw_ref : mean airway pressure at which ``cardiac_output_ref`` holds [cmH2O]
     preload_dependence : how much PEEP lowers cardiac output [unitless] (0 none, 1 typical, 2 hypovolaemic)
+    specific_ventilation_sd : spread of ventilation per unit of gas volume between lung units, SD on the
+        natural-log scale [unitless]; sets how slowly the slowest units wash in or out after an FiO2
+        change (time-course model only; 0 = every unit turns over at the same rate)
     mechanics : :class:`Mechanics`
     """
 
@@ -58,6 +61,7 @@ class PatientModel:
     cardiac_output_ref: object = 5.0
     mean_paw_ref: object = 10.0
     preload_dependence: object = 1.0
+    specific_ventilation_sd: object = 0.5
     mechanics: Mechanics = field(default_factory=Mechanics)
 
     def replace(self, **changes) -> "PatientModel":

@@ -259,3 +259,13 @@ def test_course_band_leaves_out_draws_it_cannot_follow(monkeypatch):
     copies = int(np.sum(np.isclose(np.asarray(result.draws.shunt_fixed), bad_shunt)))
     assert left_before < left_out <= left_before + copies
     assert pao2.shape == paco2.shape and pao2.shape[0] == 200 - left_out
+
+
+def test_recheck_time_is_set_by_pao2_not_by_an_unmeasurable_paco2_drift(capsys):
+    """FiO2 0.6 -> 1.0 in the ARDS demo: PaCO2 drifts by well under one measurement SD (Haldane
+    effect), so the re-check time is PaO2's 90 % time, minutes, not a quarter of an hour."""
+    assert main(["predict", "--demo", "ards-moderate", "--set", "fio2=1.0", "--format", "json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["recheck_after_min"] is not None and 0.5 < out["recheck_after_min"] < 10.0
+    paco2 = out["course"]["paco2_mmhg"]
+    assert abs(paco2[-1] - paco2[0]) < 1.5 + 0.02 * paco2[0]  # one measurement SD (physiology.measurement)

@@ -29,17 +29,89 @@ def _rate_constant(course):
     return k
 
 
-def test_fio2_step_time_constant():
-    """Cakar et al. 2001: after FiO2 0.35 -> 0.55 in PCV patients without obstruction, PaO2 follows
-    PaO2b + dPaO2 (1 - e^(-kt)) with k = 1.01 +/- 0.71 /min rising and 0.69 +/- 0.42 /min falling
-    (test range 0.3-1.7); 90 % of the change within 10 min ("10 minutes adequate")."""
-    up = simulate(PATIENT, pc(fio2=0.35), pc(fio2=0.55))
-    down = simulate(PATIENT, pc(fio2=0.55), pc(fio2=0.35))
+#: Cakar et al. 2001 (Intensive Care Med 27:655, abstract): blood gases 3, 5, 7, 9, 11, 15, 20, 25 and
+#: 30 min after each step; the 30-min value taken as the new equilibrium; k fitted to
+#: PaO2b + (PaO2end - PaO2b)(1 - e^(-kt)). Rise k = 1.01 +/- 0.71 /min, fall k = 0.69 +/- 0.42 /min.
+CAKAR_SAMPLES_MIN = np.array([3, 5, 7, 9, 11, 15, 20, 25, 30.0])
+CAKAR_RISE = (1.01 - 0.71, 1.01 + 0.71)
+CAKAR_FALL = (0.69 - 0.42, 0.69 + 0.42)
+#: Non-COPD patients with P/F >= 180 at FiO2 0.35 (Cakar's inclusion), PCV, RR 12, VT ~10 mL/kg PBW,
+#: PEEP 5 (Cakar 1998 conference report).
+CAKAR_PATIENTS = [dict(shunt_fixed=0.08, log_sd=0.6), dict(shunt_fixed=0.15, log_sd=0.8),
+                  dict(shunt_fixed=0.04, log_sd=0.5)]
+
+
+def _cakar_k(course):
+    """k fitted as Cakar et al. 2001 did: from the sampled PaO2 values with the 30-min value as the end."""
+    y = np.interp(CAKAR_SAMPLES_MIN, course.minutes, course.pao2)
+    y0, y_end = course.pao2[0], y[-1]
+    (k,), _ = curve_fit(lambda t, k: y0 + (y_end - y0) * (1 - np.exp(-k * t)), np.r_[0.0, CAKAR_SAMPLES_MIN],
+                        np.r_[y0, y], p0=[1.0], bounds=(0.01, 20.0))
+    return k
+
+
+def _cakar_steps(patient):
+    def s(fio2):
+        return Settings(mode="pressure", fio2=fio2, peep=5, inspiratory_pressure=14, rr=12, ti=1.2)
+    up = simulate(patient, s(0.35), s(0.55), minutes=30, step_s=5)
+    down = simulate(patient, s(0.55), s(0.35), minutes=30, step_s=5)
     assert up.success and down.success
-    for course in (up, down):
-        assert 0.3 <= _rate_constant(course) <= 1.7
-        assert course.t90_pao2 < 10.0
-    assert up.pao2[-1] > up.pao2[0] + 50
+    assert up.pao2[0] / 0.35 >= 180
+    return up, down
+
+
+def _cakar_patient(**kw):
+    return PatientModel(pbw_kg=70, dead_space_fraction=0.15, hb=12, mechanics=Mechanics(resistance=10, c_max=50), **kw)
+
+
+@pytest.mark.parametrize("kw", CAKAR_PATIENTS)
+def test_fio2_rise_rate_constant_matches_cakar_2001(kw):
+    """Cakar et al. 2001: after FiO2 0.35 -> 0.55, k = 1.01 +/- 0.71 /min (mean +/- SD), fitted on their
+    sampling times; 90 % of the change within 10 min (Cakar 1998: "10 min adequate")."""
+    up, down = _cakar_steps(_cakar_patient(**kw))
+    assert CAKAR_RISE[0] <= _cakar_k(up) <= CAKAR_RISE[1]
+    assert up.t90_pao2 < 10.0 and down.t90_pao2 < 10.0
+    assert up.pao2[-1] > up.pao2[0] + 30
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "known divergence from Cakar et al. 2001: the model's fall is faster (k 1.4-1.8 /min for these "
+    "patients, published 0.69 +/- 0.42) and faster than its rise (published: slower). The model lacks "
+    "a slow process on the fall; the step-down plan holds at least 10 min (HOLD_FLOOR_MIN) because of it"))
+@pytest.mark.parametrize("kw", CAKAR_PATIENTS)
+def test_fio2_fall_rate_constant_matches_cakar_2001(kw):
+    """Cakar et al. 2001: after FiO2 0.55 -> 0.35, k = 0.69 +/- 0.42 /min, and the fall is not faster
+    than the rise."""
+    up, down = _cakar_steps(_cakar_patient(**kw))
+    assert CAKAR_FALL[0] <= _cakar_k(down) <= CAKAR_FALL[1]
+    assert _cakar_k(down) <= _cakar_k(up)
+
+
+def test_obstructive_lungs_wash_in_and_out_more_slowly():
+    """Slow units: lungs with low-V/Q units, high resistance and a wide spread of specific ventilation
+    (multiple-breath washout in obstructive disease, common practice) settle more slowly in both
+    directions than the non-COPD patients of Cakar et al. 2001."""
+    typical_up, typical_down = _cakar_steps(_cakar_patient(**CAKAR_PATIENTS[0]))
+    obstructive = PatientModel(pbw_kg=70, shunt_fixed=0.03, log_sd=1.3, dead_space_fraction=0.3, hb=12,
+                               specific_ventilation_sd=1.0, mechanics=Mechanics(resistance=25, c_max=60))
+    up, down = _cakar_steps(obstructive)
+    assert _cakar_k(up) < 0.7 * _cakar_k(typical_up)
+    assert _cakar_k(down) < 0.8 * _cakar_k(typical_down)
+    assert up.t90_pao2 > typical_up.t90_pao2 and down.t90_pao2 > typical_down.t90_pao2
+
+
+def test_specific_ventilation_spread_slows_the_tail_only():
+    """Independent calculation: with every unit turning over at V_lung / VA the course is one family of
+    exponentials; spreading specific ventilation (same volume, same ventilation) keeps the end point
+    (the steady state does not depend on gas volumes) and lengthens the 90 % time."""
+    even = simulate(_cakar_patient(shunt_fixed=0.08, log_sd=0.6, specific_ventilation_sd=0.0),
+                    Settings(mode="pressure", fio2=0.35, peep=5, inspiratory_pressure=14, rr=12, ti=1.2),
+                    Settings(mode="pressure", fio2=0.55, peep=5, inspiratory_pressure=14, rr=12, ti=1.2))
+    spread = simulate(_cakar_patient(shunt_fixed=0.08, log_sd=0.6, specific_ventilation_sd=1.2),
+                      Settings(mode="pressure", fio2=0.35, peep=5, inspiratory_pressure=14, rr=12, ti=1.2),
+                      Settings(mode="pressure", fio2=0.55, peep=5, inspiratory_pressure=14, rr=12, ti=1.2))
+    assert abs(even.pao2[-1] - spread.pao2[-1]) < 0.5
+    assert spread.t90_pao2 > 1.1 * even.t90_pao2
 
 
 def _fraction_of_change(course):

@@ -159,3 +159,21 @@ def test_plan_table_output_ends_with_caution(capsys):
     assert main(["wean", "--demo", "postop-wean"]) == 0
     lines = capsys.readouterr().out.strip().splitlines()
     assert "not a medical device" in lines[-1]
+
+
+def test_step_down_holds_at_least_its_own_90_percent_time_and_the_floor():
+    """Every step holds no less than its own course's 90 % time of PaO2 and PaCO2 (the model's) and no
+    less than 10 min (common practice: a gas 10-30 min after a change; Cakar 1998 found 10 min adequate
+    after FiO2 changes), and says which set it."""
+    from ventcast.physiology.dynamics.course import simulate
+    from ventcast.physiology.planning.stepdown import HOLD_FLOOR_MIN
+    model = _truth({**TRUE, "shunt_fixed": 0.05, "recruitable": 0.05, "log_sd": 0.6})
+    res = step_down(model, model, vc(0.8, 14), GOALS)
+    assert len(res.steps) >= 2
+    current = vc(0.8, 14)
+    for st in res.steps:
+        course = simulate(model, current, st.settings, minutes=60.0)
+        assert st.hold_min >= HOLD_FLOOR_MIN
+        assert st.hold_min >= float(np.nanmax([course.t90_pao2, course.t90_paco2]))
+        assert "90 %" in st.hold_basis and ("floor" in st.hold_basis or "takes" in st.hold_basis)
+        current = st.settings

@@ -26,6 +26,13 @@ ventilation and perfusion shares, cardiac output, VO2 and VCO2. At equilibrium t
 balances are exactly those of :mod:`physiology.gasexchange.compartments`, so a long
 course ends at the steady-state engine's answer.
 
+Slow and fast units: real lungs do not turn their gas over at one rate. Unit i's share of the lung
+volume is its share of inspired ventilation times ``exp(sd z_i - sd^2/2)`` (normalised), where
+``sd`` is the patient's ``specific_ventilation_sd`` and ``z_i`` are standard-normal quantiles paired
+with the V/Q units in a fixed scrambled order (independent of V/Q: a unit of any V/Q ratio can be
+slow). Obstructive lungs have the wider spread (multiple-breath washout: a large lung clearance
+index). With sd = 0 every unit has the time constant V_lung / VA.
+
 Simplifications (documented, not hidden): the lung volume, cardiac output and the
 mechanics move with a setting change at once (they settle within breaths and beats);
 recruitment changes the shunt over minutes but the tidal mechanics shown are those of
@@ -52,16 +59,22 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import sparse
 from scipy.integrate import solve_ivp
+from scipy.special import erfinv
 
 from ..bloodgas.acidbase import _ph_invivo
 from ..forecast import PatientModel, Prediction, predict
 from ..gasexchange.alveolar import btps_factor, water_vapour_pressure_antoine
 from ..gasexchange.compartments import N_MAIN_UNITS, blood_chemistry, invert_contents
+from ..measurement import measurement_sd
 from ..mechanics.ventilator import Settings
 
 __all__ = ["BodyStores", "Course", "rhs", "simulate", "Change", "time_to_fraction"]
 
 N = N_MAIN_UNITS
+#: Standard-normal quantiles of the units' specific-ventilation factors, in a fixed scrambled order
+#: (seeded permutation) so that the factor is independent of the unit's V/Q ratio.
+_Z_SPECIFIC = np.sqrt(2.0) * erfinv(
+    2.0 * (np.arange(N) + 0.5) / N - 1.0)[np.random.default_rng(20261203).permutation(N)]
 S = 2 * N + 8  # state length of one case
 I_TP, I_TC, I_CVO2, I_CVCO2, I_OPEN, I_EXH = 2 * N, 2 * N + 2, 2 * N + 4, 2 * N + 5, 2 * N + 6, 2 * N + 7
 
@@ -111,7 +124,8 @@ class Course:
 
     minutes [min]; pao2, paco2, pvo2, petco2 [mmHg]; ph [pH units]; sao2 [fraction]; vd_vt [fraction];
     shunt, open_fraction [fraction]; cardiac_output [L/min]; t90_pao2, t90_paco2 [min] (time to 90 % of the
-    change of the last segment); recheck_after_min [min]; co2_balance_error [fraction of CO2 moved];
+    change of the last segment); recheck_after_min [min] (the later 90 % time of PaO2 and PaCO2, counting
+    only a change larger than one measurement SD of the quantity); co2_balance_error [fraction of CO2 moved];
     final : the steady-state Prediction of the last segment; success, message.
     """
 
@@ -165,7 +179,9 @@ def _segment(pred: Prediction, patient: PatientModel, body: BodyStores, weight_k
     br = pred.breathing
     v_lung = (body.lung_volume_zeep_l * col(br.aerated_fraction) + col(br.end_expiratory_volume_ml) / 1000.0
               + 0.5 * col(br.vt_ml) / 1000.0)
-    v_unit = np.maximum(v_lung * vi_unit / np.sum(vi_unit, axis=1, keepdims=True), 1e-6)
+    sv_sd = col(patient.specific_ventilation_sd)
+    share = vi_unit * np.exp(sv_sd * _Z_SPECIFIC[None, :] - 0.5 * sv_sd ** 2)
+    v_unit = np.maximum(v_lung * share / np.sum(share, axis=1, keepdims=True), 1e-6)
     mech = patient.mechanics
     shunt_closed = col(np.asarray(patient.recruitable_shunt_ratio) * np.asarray(mech.recruitable))
     wt = col(weight_kg)
@@ -416,10 +432,11 @@ def _outputs(X, u):
     return out
 
 
-def time_to_fraction(minutes, values, start, end, fraction=0.9):
+def time_to_fraction(minutes, values, start, end, fraction=0.9, min_change=0.5):
     """First time after which ``values`` stay within (1 - fraction) of the change ``start -> end`` [min].
 
-    Returns 0 where the change is below 0.5 (in the values' unit) and NaN if never reached.
+    Returns 0 where the change is below ``min_change`` (in the values' unit; scalar or one per row)
+    and NaN if never reached.
     """
     minutes = np.asarray(minutes)
     values = np.atleast_2d(values)
@@ -428,8 +445,9 @@ def time_to_fraction(minutes, values, start, end, fraction=0.9):
     band = (1.0 - fraction) * np.abs(end - start)
     outside = np.abs(values - end) > band
     out = np.full(values.shape[0], np.nan)
+    min_change = np.broadcast_to(np.asarray(min_change, dtype=float), (values.shape[0],))
     for i in range(values.shape[0]):
-        if abs(float(end[i, 0] - start[i, 0])) < 0.5:
+        if abs(float(end[i, 0] - start[i, 0])) < min_change[i]:
             out[i] = 0.0
             continue
         idx = np.flatnonzero(outside[i])
@@ -567,7 +585,13 @@ def simulate(patient: PatientModel, settings_now: Settings, changes=(), minutes:
     end_paco2 = np.broadcast_to(np.atleast_1d(target.gas.paco2), (b,))
     t90_o2 = time_to_fraction(t_all[sel] - t_ref, o["pao2"][:, sel], o["pao2"][:, sel][:, 0], end_pao2)
     t90_co2 = time_to_fraction(t_all[sel] - t_ref, o["paco2"][:, sel], o["paco2"][:, sel][:, 0], end_paco2)
-    recheck = np.fmax(t90_o2, t90_co2)
+    # Re-check: only a change larger than the measurement error of the quantity can be seen in a blood
+    # gas (physiology.measurement), so smaller drifts (e.g. a Haldane shift of PaCO2) do not set it.
+    seen_o2 = time_to_fraction(t_all[sel] - t_ref, o["pao2"][:, sel], o["pao2"][:, sel][:, 0], end_pao2,
+                               min_change=measurement_sd("pao2", end_pao2))
+    seen_co2 = time_to_fraction(t_all[sel] - t_ref, o["paco2"][:, sel], o["paco2"][:, sel][:, 0], end_paco2,
+                                min_change=measurement_sd("paco2", end_paco2))
+    recheck = np.fmax(seen_o2, seen_co2)
     # CO2 balance over the course: stores + exhaled - produced.
     co2_err = _co2_balance(X_ends, t_all, u0, u, patient, seg_patient)
     single = not _is_batch(patient, settings_now, changes)

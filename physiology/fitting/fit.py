@@ -23,11 +23,7 @@ Cardiac output and VO2 are unknown nuisance parameters with population priors (n
 fixed): their uncertainty reaches the likely range. When measured, they enter as
 observations.
 
-Measurement-error model (one standard deviation; from memory, informed by analyser
-performance limits and short-term within-patient variation): PaO2 2 mmHg + 5 %;
-PaCO2 1.5 mmHg + 2 %; pH 0.01; SaO2 0.015; PetCO2 2 mmHg; Pplat 1.5 cmH2O; Ppeak 2 cmH2O;
-exhaled VT 5 % + 10 mL; VE 5 % + 0.2 L/min; VCO2 8 %; cardiac output 10 % (thermodilution,
-from memory).
+Measurement-error model: :mod:`physiology.measurement` (one SD per quantity, from memory).
 
 Population priors (from memory unless cited): shunt 0.10 (logit SD 1.0); recruitable lung
 fraction 0.10 (Gattinoni 2006: 13 +/- 11 % of lung weight; logit SD 1.0); V/Q log SD 0.8
@@ -64,6 +60,7 @@ from ..forecast import PatientModel, Prediction, predict
 from ..gasexchange.alveolar import alveolar_po2
 from ..indices import predicted_body_weight
 from ..mechanics.ventilator import Mechanics, Settings
+from ..measurement import SD
 
 __all__ = ["Patient", "Observation", "FitResult", "fit", "check_observation", "InputError",
            "PARAMETERS", "likely_range", "next_best_measurement", "population_defaults"]
@@ -125,10 +122,6 @@ _BOUNDS = {"shunt_fixed": (0.0, 0.7), "recruitable": (0.0, 0.6), "log_sd": (0.05
            "dead_space_fraction": (0.0, 0.75), "vco2": (60.0, 650.0), "vo2": (80.0, 750.0),
            "cardiac_output_ref": (1.5, 18.0), "c_max": (6.0, 190.0), "resistance": (2.5, 55.0),
            "base_excess": (-28.0, 28.0)}
-
-SD = {"pao2": (2.0, 0.05), "paco2": (1.5, 0.02), "ph": (0.01, 0.0), "sao2": (0.015, 0.0),
-      "petco2": (2.0, 0.0), "pplat": (1.5, 0.0), "ppeak": (2.0, 0.0), "vte_ml": (10.0, 0.05),
-      "ve_l_min": (0.2, 0.05), "vco2": (0.0, 0.08), "cardiac_output": (0.0, 0.10)}
 
 #: Mean airway pressure at which the fitted ``cardiac_output_ref`` holds [cmH2O].
 MEAN_PAW_REFERENCE = 10.0

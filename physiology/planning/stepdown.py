@@ -29,12 +29,21 @@ __all__ = ["Step", "StepDownResult", "step_down", "readiness"]
 RATE_STEP = 2.0
 #: The percentile of the draws that must stay within the lower oxygenation goal [%].
 SAFETY_PERCENTILE = 5.0
+#: Shortest hold after a step before its blood gas [min]. Common practice is a gas 10-30 min after a
+#: change; Cakar et al. (Crit Care 1998;2:P088, conference report) found 10 min adequate for PaO2 to
+#: equilibrate after FiO2 changes in pressure control. The model's own 90 % time is shorter for most
+#: patients (its oxygen washout is faster than Cakar et al. 2001 measured after a decrease), so it
+#: never sets a hold below this floor.
+HOLD_FLOOR_MIN = 10.0
+HOLD_FLOOR_SOURCE = ("floor 10 min: a gas 10-30 min after a change is common practice; Cakar 1998 found "
+                     "10 min adequate after FiO2 changes")
 
 
 @dataclass(frozen=True)
 class Step:
     """One step: settings, what changed and why, forecast at the fitted patient (Prediction), likely
-    range {quantity: (low, high)}, hold time [min] and the stop rule."""
+    range {quantity: (low, high)}, hold time [min] (never shorter than the model's 90 % time of the
+    step, nor than :data:`HOLD_FLOOR_MIN`), what set the hold, and the stop rule."""
 
     settings: object
     change: str
@@ -43,6 +52,7 @@ class Step:
     likely_range: dict
     hold_min: float
     stop_if: str
+    hold_basis: str = ""
 
 
 @dataclass(frozen=True)
@@ -179,10 +189,9 @@ def step_down(model: PatientModel, draws: PatientModel, now, goals: Goals, targe
             break
         settings, why, q, pred = chosen
         course = simulate(model, current, settings, minutes=60.0)
-        hold = float(course.recheck_after_min) if course.success else np.nan
+        hold, basis = _hold(course)
         steps.append(Step(settings=settings, change="; ".join(changes_from(current, settings)), why=why, forecast=pred,
-                          likely_range=_ranges(q), hold_min=max(round(hold), 1.0) if np.isfinite(hold) else np.nan,
-                          stop_if=rule))
+                          likely_range=_ranges(q), hold_min=hold, stop_if=rule, hold_basis=basis))
         if table and check_oxygen:
             rungs = rungs[1:]
         current = settings
@@ -196,6 +205,18 @@ def step_down(model: PatientModel, draws: PatientModel, now, goals: Goals, targe
     else:
         message = f"target not reached after {len(steps)} step(s): {stopped}"
     return StepDownResult(True, message, tuple(steps), reached, None if reached else stopped, ready)
+
+
+def _hold(course) -> tuple:
+    """Hold time [min] after a step and what set it: the later of the model's 90 % times of PaO2 and
+    PaCO2 (rounded up, so never shorter) and :data:`HOLD_FLOOR_MIN`. NaN when the course failed."""
+    if not bool(np.all(course.success)):
+        return np.nan, "the time course could not be computed: hold per local protocol"
+    t90 = float(np.nanmax([course.t90_pao2, course.t90_paco2, course.recheck_after_min]))
+    model = float(np.ceil(t90 * 10.0) / 10.0)
+    if model >= HOLD_FLOOR_MIN:
+        return float(np.ceil(t90)), f"90 % of the change takes {model:.1f} min in the model"
+    return HOLD_FLOOR_MIN, f"model 90 % time {model:.1f} min; {HOLD_FLOOR_SOURCE}"
 
 
 def readiness(pred: Prediction, settings, spontaneous_rr=None, spontaneous_vt_ml=None) -> list:
