@@ -35,7 +35,9 @@ def bedside_indices(case: dict, observation_index: int = -1) -> dict:
         "driving_pressure_cmh2o": dp,
         "compliance_ml_per_cmh2o": crs,
         "ventilatory_ratio": float(indices.ventilatory_ratio(ve, obs["paco2_mmhg"], pbw)) if ve else None,
-        "berlin_category": indices.berlin_category(pf, peep),
+        # The Berlin definition grades ARDS only; for any other condition the P/F ratio stands alone.
+        "berlin_category": (indices.berlin_category(pf, peep) if patient.get("condition") == "ards"
+                            else f"not graded (condition: {patient.get('condition') or 'other'})"),
         "base_excess_mmol_l": float(base_excess_van_slyke(obs["ph"], obs["paco2_mmhg"], patient["hb_g_dl"],
                                                           sao2 if sao2 is not None else 1.0)),
     }

@@ -30,7 +30,8 @@ MAX_BYTES = 1_000_000
 DEMO_NAMES = ("ards-moderate", "copd-trapping", "postop-wean", "refractory-shunt")
 
 #: Defaults for optional fields, documented in the README.
-PATIENT_DEFAULTS = {"temperature_c": 37.0, "barometric_mmhg": 760.0, "hb_g_dl": 12.0, "age_years": None}
+PATIENT_DEFAULTS = {"temperature_c": 37.0, "barometric_mmhg": 760.0, "hb_g_dl": 12.0, "age_years": None,
+                    "condition": "other"}
 SETTINGS_DEFAULTS = {"apparatus_dead_space_ml": 0.0, "vt_ml": None, "inspiratory_pressure_cmh2o": None}
 
 # (low, high, unit) accepted in code, after the schema.

@@ -40,7 +40,7 @@ BEDSIDE_ROWS = [
     ("A-a gradient", "aa_gradient_mmhg", "mmHg", 0),
     ("PBW", "pbw_kg", "kg", 1),
     ("VT", "vt_ml_per_kg_pbw", "mL/kg PBW", 1),
-    ("Driving pressure", "driving_pressure_cmh2o", "cmH2O", 0),
+    ("Driving pressure (Pplat - set PEEP)", "driving_pressure_cmh2o", "cmH2O", 0),
     ("Crs", "compliance_ml_per_cmh2o", "mL/cmH2O", 0),
     ("Ventilatory ratio", "ventilatory_ratio", "", 2),
     ("Base excess", "base_excess_mmol_l", "mmol/L", 1),
@@ -96,7 +96,7 @@ def _num(v, d=1):
 STEADY_ROWS = [("PaO2", "pao2_mmhg", "mmHg", 0), ("PaCO2", "paco2_mmhg", "mmHg", 1), ("pH", "ph", "", 2),
                ("SaO2", "sao2", "", 3), ("PetCO2", "petco2_mmhg", "mmHg", 1), ("VD/VT", "vd_vt", "", 2),
                ("Qs/Qt (shunt)", "shunt_fraction", "", 2), ("Pplat", "pplat_cmh2o", "cmH2O", 1),
-               ("Ppeak", "ppeak_cmh2o", "cmH2O", 1), ("Driving pressure", "driving_pressure_cmh2o", "cmH2O", 1),
+               ("Ppeak", "ppeak_cmh2o", "cmH2O", 1), ("Driving pressure (Pplat - total PEEP)", "driving_pressure_cmh2o", "cmH2O", 1),
                ("Intrinsic PEEP", "intrinsic_peep_cmh2o", "cmH2O", 1),
                ("Mechanical power", "mechanical_power_j_min", "J/min", 1), ("VT", "vt_ml_per_kg_pbw", "mL/kg PBW", 1),
                ("P/F ratio", "pf_ratio_mmhg", "mmHg", 0), ("Cardiac output", "cardiac_output_l_min", "L/min", 1),
@@ -162,7 +162,11 @@ def _cmd_fit(args) -> int:
              ("VO2 [mL/min]", "vo2_ml_min", "vo2"), ("cardiac output [L/min]", "cardiac_output_l_min", None),
              ("compliance [mL/cmH2O]", "compliance_ml_per_cmh2o", "c_max"),
              ("resistance [cmH2O/L/s]", "resistance_cmh2o_l_s", "resistance"),
-             ("base excess [mmol/L]", "base_excess_mmol_l", "base_excess")]
+             ("base excess [mmol/L]", "base_excess_mmol_l", "base_excess"),
+             ("respiratory quotient", "respiratory_quotient", "rq"),
+             ("series dead space [mL]", "series_dead_space_ml", None)]
+    if block["condition"] == "obstructive":
+        names.append(("low-V/Q mode (share of flow)", "low_vq_fraction", "low_vq_fraction"))
     print(f"Lung fit: {block['message']}")
     for title, key, rkey in names:
         band = ""
@@ -172,6 +176,9 @@ def _cmd_fit(args) -> int:
         print(f"  {title:<30} {block[key]:>9.2f}  {band}")
     for m in block["identifiability"] + block["warnings"]:
         print(f"  [i ] {m}")
+    print("Model assumptions:")
+    for m in block["assumptions"]:
+        print(f"  - {m}")
     print()
     print(CAUTION)
     return EXIT_OK

@@ -13,9 +13,11 @@ import numpy as np
 
 from ventcast.physiology.dynamics.course import simulate
 from ventcast.physiology.fitting.fit import Observation, Patient, fit, likely_range, next_best_measurement
+from ventcast.physiology.fitting.priors import CONDITION_LABELS, structure
 from ventcast.physiology.forecast import predict
 from ventcast.physiology.indices import oxygenation_index
 from ventcast.physiology.mechanics.motion import mean_airway_pressure, mechanical_power_simplified
+from ventcast.physiology.mechanics.recruitment import aerated_volume
 from ventcast.physiology.mechanics.ventilator import Settings
 from ventcast.physiology.planning.search import Goals, margins, search
 from ventcast.physiology.planning.stepdown import step_down
@@ -46,7 +48,8 @@ def to_patient(case: dict) -> Patient:
     p = case["patient"]
     return Patient(sex=p["sex"], height_cm=float(p["height_cm"]), weight_kg=float(p["weight_kg"]),
                    age_years=p.get("age_years"), temperature_c=float(p["temperature_c"]),
-                   hb_g_dl=float(p["hb_g_dl"]), barometric_mmhg=float(p["barometric_mmhg"]))
+                   hb_g_dl=float(p["hb_g_dl"]), barometric_mmhg=float(p["barometric_mmhg"]),
+                   condition=p.get("condition") or "other")
 
 
 def to_observations(case: dict):
@@ -138,9 +141,25 @@ def fit_block(result, current: Settings) -> dict:
         "cardiac_output_l_min": _f(now.cardiac_output), "alveolar_ventilation_l_min": _f(now.breathing.alveolar_ventilation),
         "hb_g_dl": float(result.patient.hb_g_dl), "compliance_ml_per_cmh2o": e["c_max"],
         "resistance_cmh2o_l_s": e["resistance"], "base_excess_mmol_l": e["base_excess"],
+        "respiratory_quotient": e["rq"], "series_dead_space_ml": _f(now.breathing.series_dead_space_ml),
+        "low_vq_fraction": e.get("low_vq_fraction", 0.0),
+        "condition": result.patient.condition, "assumptions": model_assumptions(result.patient.condition),
         "identifiability": list(result.identifiability), "warnings": list(result.warnings),
         "likely_range": {k: [float(a), float(b)] for k, (a, b) in result.ranges.items()},
     }
+
+
+def model_assumptions(condition: str) -> list:
+    """What the model assumes for this case, in words (shown with every fit and forecast)."""
+    st = structure(condition)
+    out = [f"condition: {CONDITION_LABELS[condition]} (sets the population priors)",
+           "a passive patient: no spontaneous breaths or inspiratory effort (volume or pressure control)"]
+    if st["flow_limitation"] > 0:
+        out.append("expiratory flow limitation: set PEEP below about 80 % of intrinsic PEEP does not raise total "
+                   "PEEP (Tobin & Lodato 1989)")
+    if st.get("low_vq_ratio"):
+        out.append("blood flow may go to a low-V/Q mode (poorly ventilated units) with little true shunt")
+    return out
 
 
 def steady_block(pred) -> dict:
@@ -211,7 +230,7 @@ def limit_checks(steady: dict, goals: dict | None = None, fio2: float | None = N
          f"Pplat {x or 0:.0f} cmH2O is above {pplat_max:g} cmH2O", f"{x or 0:.1f} cmH2O")
     x = v["driving_pressure_cmh2o"]
     line("driving_pressure", "Driving pressure", x, f"<= {dp_max:g} cmH2O", x is not None and x > dp_max,
-         "driving_pressure_high", "caution", f"driving pressure {x or 0:.0f} cmH2O is above {dp_max:g} cmH2O",
+         "driving_pressure_high", "caution", f"driving pressure {x or 0:.0f} cmH2O (Pplat - total PEEP) is above {dp_max:g} cmH2O",
          f"{x or 0:.1f} cmH2O")
     x = v["vt_ml_per_kg_pbw"]
     line("vt_per_kg", "VT", x, f"{vt_lo:g}-{vt_hi:g} mL/kg PBW", x is not None and not vt_lo <= x <= vt_hi,
@@ -279,6 +298,31 @@ def forecast_case(case: dict, sets=(), minutes: float = 60.0, with_course: bool 
     return forecast_fitted(case, result, trial_dict, minutes=minutes, with_course=with_course)
 
 
+def capacity_refusal(model, trial: Settings, pred) -> str:
+    """Why a trial the fitted lung cannot take is refused (the input's fault, not the model's), or ''.
+
+    A VT beyond the model lung's capacity at the trial PEEP: the plateau pressure would have to pass the
+    top of the pressure-volume curve (inflection + 2 x width), where the model lung holds no more.
+    """
+    reason = str(pred.breathing.reasons) if np.ndim(pred.breathing.reasons) == 0 else ""
+    if "beyond total capacity" not in reason and "does not exceed the series dead space" not in reason:
+        return ""
+    mech = model.mechanics
+    if "series dead space" in reason:
+        vds = float(mech.anatomic_dead_space_ml) + float(trial.apparatus_dead_space_ml or 0.0)
+        return (f"the trial VT {float(trial.vt_ml or 0):g} mL does not exceed the series dead space (about {vds:.0f} mL "
+                f"incl. apparatus): no alveolar ventilation; choose a larger VT")
+    top = float(mech.inflection) + 2.0 * float(mech.width)
+    c = float(mech.c_max) / 1000.0
+    most = 1000.0 * (aerated_volume(np.inf, c, float(mech.inflection), float(mech.width))
+                     - aerated_volume(float(trial.peep), c, float(mech.inflection), float(mech.width)))
+    drive = f"VT {float(trial.vt_ml):g} mL" if trial.mode == "volume" else \
+        f"inspiratory pressure {float(trial.inspiratory_pressure):g} cmH2O"
+    return (f"{drive} at PEEP {float(trial.peep):g} cmH2O is beyond the fitted lung's capacity: it would need a "
+            f"plateau pressure above the top of its pressure-volume curve (about {top:.0f} cmH2O), and the aerated "
+            f"lung holds at most about {most:.0f} mL above PEEP. Choose a smaller VT or a lower PEEP")
+
+
 def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0, with_course: bool = True,
                     with_band: bool = True, with_next: bool = True) -> dict:
     """Forecast checked trial settings (case-file keys) for an already fitted case (same blocks as ``predict``).
@@ -290,6 +334,9 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
     current = to_settings(case["settings"])
     pred = predict(result.model, trial)
     if not pred.success:
+        refusal = capacity_refusal(result.model, trial, pred)
+        if refusal:
+            raise CaseError("trial settings", refusal)
         raise ModelError(f"no steady state at the trial settings: {pred.message}")
     steady = steady_block(pred)
     ranges, _table, ok_share = likely_range(result, trial)

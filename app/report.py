@@ -157,7 +157,11 @@ def report_html(case: dict, forecasts: dict, plan: dict | None = None, generated
     names = {"shunt_fixed": "shunt (not recruitable)", "recruitable": "recruitable lung", "log_sd": "V/Q mismatch (log SD)",
              "dead_space_fraction": "alveolar dead space", "vco2": "VCO2 [mL/min]", "vo2": "VO2 [mL/min]",
              "cardiac_output_ref": "cardiac output at mean Paw 10 cmH2O [L/min]", "c_max": "compliance [mL/cmH2O]",
-             "resistance": "resistance [cmH2O/L/s]", "base_excess": "base excess [mmol/L]"}
+             "resistance": "resistance [cmH2O/L/s]", "base_excess": "base excess [mmol/L]",
+             "rq": "respiratory quotient (VCO2/VO2)", "anatomic_dead_space": "series dead space below the Y-piece [mL]",
+             "inflection": "upper inflection pressure [cmH2O]",
+             "overdistension_dead_space": "dead space of overdistended lung",
+             "low_vq_fraction": "low-V/Q mode (share of blood flow)"}
     estimates = first.get("estimates") or {}
     for key, (lo, hi) in fit["likely_range"].items():
         est = estimates.get(key)
@@ -166,13 +170,16 @@ def report_html(case: dict, forecasts: dict, plan: dict | None = None, generated
     if fit["identifiability"]:
         h.append("<p>What the data cannot tell apart:</p><ul>" + "".join(f"<li>{escape(m)}</li>"
                                                                           for m in fit["identifiability"]) + "</ul>")
+    if fit.get("assumptions"):
+        h.append("<p>Model assumptions:</p><ul>" + "".join(f"<li>{escape(m)}</li>" for m in fit["assumptions"])
+                 + "</ul>")
     h.append("<h2>Trials compared</h2><table border='1' cellspacing='0' cellpadding='3'><tr><th>quantity</th>"
              "<th>now (model)</th>" + "".join(f"<th>Trial {escape(t)}</th>" for t in forecasts) + "</tr>")
     h.append("<tr><td>settings</td><td>" + escape(settings_text(case["settings"])) + "</td>"
              + "".join(f"<td>{escape(settings_text(f['settings']))}</td>" for f in forecasts.values()) + "</tr>")
     for label, key, d in (("PaO2 [mmHg]", "pao2_mmhg", 0), ("PaCO2 [mmHg]", "paco2_mmhg", 1), ("pH", "ph", 2),
                           ("SaO2", "sao2", 3), ("VD/VT", "vd_vt", 2), ("Pplat [cmH2O]", "pplat_cmh2o", 1),
-                          ("driving pressure [cmH2O]", "driving_pressure_cmh2o", 1),
+                          ("driving pressure, Pplat - total PEEP [cmH2O]", "driving_pressure_cmh2o", 1),
                           ("mechanical power [J/min]", "mechanical_power_j_min", 1),
                           ("VT [mL/kg PBW]", "vt_ml_per_kg_pbw", 1), ("cardiac output [L/min]", "cardiac_output_l_min", 1)):
         now = first.get("now_steady", {}).get(key)

@@ -23,14 +23,13 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from ventcast.physiology.fitting.fit import PARAMETERS
 from ventcast.physiology.forecast import predict
 
 from . import CAUTION, MMHG_PER_KPA, version
 from .casefile import (CaseError, check_settings, load, load_demo, parse_json, read_text, validate,
                        write_atomic)
-from .engine import (apply_sets, fit_case, forecast_fitted, limit_checks, now_block, plan_case, settings_dict,
-                     settings_text, steady_block, to_settings, wean_case)
+from .engine import (apply_sets, fit_case, forecast_fitted, limit_checks, model_assumptions, now_block, plan_case,
+                     settings_dict, settings_text, steady_block, to_settings, wean_case)
 from .report import SOURCES
 from .worker import EngineRunner
 
@@ -330,7 +329,7 @@ class MainWindow(QtWidgets.QMainWindow):
         for key, label in (("pao2", "PaO2"), ("paco2", "PaCO2"), ("ph", "pH"), ("sao2", "SaO2"),
                            ("settings", "Settings"), ("pf_ratio_mmhg", "P/F ratio"),
                            ("aa_gradient_mmhg", "A\u2013a gradient"), ("vd_vt", "VD/VT (model)"),
-                           ("driving_pressure_cmh2o", "Driving pressure"), ("compliance_ml_per_cmh2o", "Crs"),
+                           ("driving_pressure_cmh2o", "Driving pressure (Pplat \u2212 set PEEP)"), ("compliance_ml_per_cmh2o", "Crs"),
                            ("pbw_kg", "PBW"), ("vt_ml_per_kg_pbw", "VT"), ("mechanical_power_j_min", "Mechanical power"),
                            ("ventilatory_ratio", "Ventilatory ratio"), ("oxygenation_index", "Oxygenation index"),
                            ("berlin_category", "Berlin category"), ("base_excess_mmol_l", "Base excess")):
@@ -994,17 +993,29 @@ class MainWindow(QtWidgets.QMainWindow):
                  "vco2": ("VCO2", "mL/min", 0), "vo2": ("VO2", "mL/min", 0),
                  "cardiac_output_ref": ("cardiac output at mean Paw 10 cmH2O", "L/min", 1),
                  "c_max": ("compliance of aerated lung", "mL/cmH2O", 0), "resistance": ("resistance", "cmH2O/L/s", 1),
-                 "base_excess": ("base excess", "mmol/L", 1)}
-        self.fit_table.setRowCount(len(PARAMETERS))
-        for i, n in enumerate(PARAMETERS):
+                 "base_excess": ("base excess", "mmol/L", 1), "rq": ("respiratory quotient (VCO2/VO2)", "", 2),
+                 "anatomic_dead_space": ("series dead space below the Y-piece", "mL", 0),
+                 "inflection": ("upper inflection pressure", "cmH2O", 0),
+                 "overdistension_dead_space": ("dead space of overdistended lung", "", 2),
+                 "low_vq_fraction": ("low-V/Q mode (share of blood flow)", "", 2)}
+        rows = [n for n in f.free if n in names] + ["vco2"]
+        self.fit_table.setRowCount(len(rows))
+        for i, n in enumerate(rows):
             label, unit, d = names[n]
             lo, hi = f.ranges[n]
             for j, text in enumerate((label, f"{f.estimates[n]:.{d}f} ({lo:.{d}f}\u2013{hi:.{d}f}) {unit}".strip())):
                 self.fit_table.setItem(i, j, QtWidgets.QTableWidgetItem(text))
         symbol = "\u2713" if f.success else "\u2716"
         self.fit_message.setText(f"{symbol} {escape(f.message)}")
-        self.ident_label.setText("<b>What the data cannot tell apart:</b><br>" + "<br>".join(
-            "\u2022 " + escape(m) for m in f.identifiability) if f.identifiability else "")
+        parts = []
+        if f.identifiability:
+            parts.append("<b>What the data cannot tell apart:</b><br>" + "<br>".join(
+                "\u2022 " + escape(m) for m in f.identifiability))
+        if f.warnings:
+            parts.append("<b>Data-quality notes:</b><br>" + "<br>".join("\u26a0 " + escape(m) for m in f.warnings))
+        parts.append("<b>Model assumptions:</b><br>" + "<br>".join(
+            "\u2022 " + escape(m) for m in model_assumptions(f.patient.condition)))
+        self.ident_label.setText("<br>".join(parts))
         now = self.now_prediction
         if now is not None and bool(np.all(now.success)):
             g = now.gas
@@ -1105,7 +1116,7 @@ class MainWindow(QtWidgets.QMainWindow):
 
     COMPARE_ROWS = (("PaO2", "pao2_mmhg", "gas", 0), ("PaCO2", "paco2_mmhg", "gas", 1), ("pH", "ph", "", 2),
                     ("SaO2", "sao2", "", 3), ("VD/VT", "vd_vt", "", 2), ("Pplat", "pplat_cmh2o", "cmH2O", 1),
-                    ("Driving pressure", "driving_pressure_cmh2o", "cmH2O", 1),
+                    ("Driving pressure (Pplat \u2212 total PEEP)", "driving_pressure_cmh2o", "cmH2O", 1),
                     ("Mechanical power", "mechanical_power_j_min", "J/min", 1),
                     ("VT", "vt_ml_per_kg_pbw", "mL/kg PBW", 1), ("Cardiac output", "cardiac_output_l_min", "L/min", 1))
     RANGE_KEYS = {"pao2_mmhg", "paco2_mmhg", "ph", "sao2"}

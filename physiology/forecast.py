@@ -33,6 +33,8 @@ class PatientModel:
     recruitable_shunt_ratio : shunt carried by collapsed recruitable lung per unit of its lung fraction
         [unitless]; 1 = perfused in proportion to its share (hypoxic vasoconstriction ignored)
     log_sd : V/Q dispersion of the perfused lung [unitless]
+    low_vq_fraction : share of the perfused lung's blood flow in a low-V/Q mode [fraction]
+    low_vq_ratio : centre of that mode relative to the main mode's V/Q [unitless]
     dead_space_fraction : alveolar dead space at no overdistension [fraction of alveolar ventilation]
     overdistension_dead_space : extra alveolar dead space of fully overdistended lung [fraction]
     vo2, vco2 : [mL/min STPD]
@@ -43,6 +45,8 @@ class PatientModel:
     specific_ventilation_sd : spread of ventilation per unit of gas volume between lung units, SD on the
         natural-log scale [unitless]; sets how slowly the slowest units wash in or out after an FiO2
         change (time-course model only; 0 = every unit turns over at the same rate)
+    end_tidal_share : where end-tidal PCO2 sits between the mixed alveolar PCO2 (0) and the arterial (1)
+        [fraction]; 0.25 with parallel emptying, higher with the sequential emptying of obstructed lungs
     mechanics : :class:`Mechanics`
     """
 
@@ -50,6 +54,8 @@ class PatientModel:
     shunt_fixed: object = 0.05
     recruitable_shunt_ratio: object = 1.0
     log_sd: object = 0.5
+    low_vq_fraction: object = 0.0
+    low_vq_ratio: object = 0.1
     dead_space_fraction: object = 0.1
     overdistension_dead_space: object = 0.3
     vo2: object = 250.0
@@ -62,6 +68,7 @@ class PatientModel:
     mean_paw_ref: object = 10.0
     preload_dependence: object = 1.0
     specific_ventilation_sd: object = 0.5
+    end_tidal_share: object = 0.25
     mechanics: Mechanics = field(default_factory=Mechanics)
 
     def replace(self, **changes) -> "PatientModel":
@@ -93,8 +100,9 @@ class Prediction:
     alveolar_dead_space: np.ndarray
     cardiac_output: np.ndarray
     vt_per_kg_pbw: np.ndarray
-    settings: Settings = field(repr=False)
-    patient: PatientModel = field(repr=False)
+    mixed_alveolar_pco2: np.ndarray = None
+    settings: Settings = field(repr=False, default=None)
+    patient: PatientModel = field(repr=False, default=None)
 
 
 def _masked(result, ok):
@@ -132,12 +140,17 @@ def predict(patient: PatientModel, settings: Settings) -> Prediction:
                                  patient.preload_dependence)
     va = np.nan_to_num(br.alveolar_ventilation, nan=1.0)
     lung = LungParameters(
-        fio2=settings.fio2, shunt=shunt, log_sd=patient.log_sd, alveolar_ventilation=np.clip(va, 0.5, 30.0),
+        fio2=settings.fio2, shunt=shunt, log_sd=patient.log_sd, low_vq_fraction=patient.low_vq_fraction,
+        low_vq_ratio=patient.low_vq_ratio, alveolar_ventilation=np.clip(va, 0.5, 30.0),
         dead_space_fraction=ads, cardiac_output=np.clip(co, 1.0, 20.0), vo2=patient.vo2, vco2=patient.vco2,
         hb=patient.hb, temperature=patient.temperature, barometric=patient.barometric,
         base_excess=patient.base_excess, series_ventilation=np.nan_to_num(br.series_ventilation, nan=0.0),
     )
     gas = solve_steady_state(lung)
+    # End-tidal PCO2: the engine gives the mixed alveolar PCO2 (alveolar dead space included); end-tidal
+    # gas sits between it and the arterial by the patient's end-tidal share.
+    mixed_alveolar = gas.petco2
+    gas = replace(gas, petco2=mixed_alveolar + np.asarray(patient.end_tidal_share) * (gas.paco2 - mixed_alveolar))
     ok = np.asarray(br.success) & np.asarray(gas.success)
     if np.all(ok):
         message = "forecast computed"
@@ -155,4 +168,4 @@ def predict(patient: PatientModel, settings: Settings) -> Prediction:
     return Prediction(success=ok, message=message, breathing=br, gas=gas, shunt=shunt * nan,
                       alveolar_dead_space=ads * nan, cardiac_output=co * nan,
                       vt_per_kg_pbw=br.vt_ml / np.asarray(patient.pbw_kg) * nan,
-                      settings=settings, patient=patient)
+                      mixed_alveolar_pco2=mixed_alveolar * nan, settings=settings, patient=patient)

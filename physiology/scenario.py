@@ -8,7 +8,8 @@ drift, no lost events). A new event or action recomputes the schedule (tens of m
 Events (each changes the patient from its minute on; amounts accumulate):
 ``shunt_up`` (amount, fraction of cardiac output: secretions, consolidation), ``lung_collapse`` (amount,
 fraction of the lung that collapses and can be recruited again: atelectasis), ``compliance_down``
-(factor on the aerated-lung compliance), ``resistance_up`` (factor on airway resistance:
+(factor on the aerated-lung compliance), ``resistance_up`` (factor on airway resistance, and blood flow
+moved to low-V/Q units:
 bronchospasm), ``metabolism_up`` (factor on VO2 and VCO2: fever), ``cardiac_output_down`` (factor:
 bleeding), ``circuit_leak`` (fraction of the set VT lost — in pressure control, of the inspiratory
 pressure), ``recruitment_manoeuvre`` (pressure held, cmH2O: lung opened up to it stays open above
@@ -124,7 +125,12 @@ class Timeline:
                 elif e.kind == "compliance_down":
                     p = p.replace(c_max=float(np.asarray(p.mechanics.c_max) * e.value))
                 elif e.kind == "resistance_up":
-                    p = p.replace(resistance=float(np.asarray(p.mechanics.resistance) * e.value))
+                    # Bronchospasm narrows airways unevenly: blood flow moves to poorly ventilated (low-V/Q)
+                    # units with little true shunt (MIGET in acute severe asthma, Rodriguez-Roisin 1989; from
+                    # memory). Ours: each doubling of resistance moves a tenth of the perfused lung's flow there.
+                    low = float(np.asarray(p.low_vq_fraction))
+                    p = p.replace(resistance=float(np.asarray(p.mechanics.resistance) * e.value),
+                                  low_vq_fraction=float(np.clip(low + LOW_VQ_PER_DOUBLING * np.log2(e.value), 0.0, 0.5)))
                 elif e.kind == "metabolism_up":
                     p = p.replace(vo2=float(np.asarray(p.vo2) * e.value), vco2=float(np.asarray(p.vco2) * e.value))
                 elif e.kind == "cardiac_output_down":
@@ -157,6 +163,11 @@ class Timeline:
         return d
 
 
+#: Share of the perfused lung's blood flow moved to the low-V/Q mode per doubling of airway resistance in
+#: a ``resistance_up`` event (ours; see Timeline.schedule).
+LOW_VQ_PER_DOUBLING = 0.10
+
+
 def _leaky(s: Settings, leak: float) -> Settings:
     if leak <= 0:
         return s
@@ -165,7 +176,7 @@ def _leaky(s: Settings, leak: float) -> Settings:
     return replace(s, inspiratory_pressure=float(s.inspiratory_pressure) * (1.0 - leak))
 
 
-_PATIENT_KEYS = ("shunt_fixed", "vo2", "vco2", "cardiac_output_ref")
+_PATIENT_KEYS = ("shunt_fixed", "vo2", "vco2", "cardiac_output_ref", "low_vq_fraction")
 _MECH_KEYS = ("c_max", "resistance", "pressure_history", "recruitable")
 
 

@@ -27,7 +27,8 @@ def _bundle():
 def test_bundle_imports_to_the_expected_case():
     case, report = import_bundle(DATA.read_text())
     assert case["patient"] == {"sex": "male", "height_cm": 180.0, "weight_kg": 86.0, "temperature_c": 37.6,
-                               "hb_g_dl": 11.2, "barometric_mmhg": 760.0, "age_years": None}
+                               "hb_g_dl": 11.2, "barometric_mmhg": 760.0, "age_years": None,
+                                "condition": "other"}
     first, second = case["observations"]
     assert first["taken_at"] == "2026-04-02T06:10:00Z"
     assert first["pao2_mmhg"] == pytest.approx(9.2 * 7.50062, abs=1e-3)   # kPa -> mmHg

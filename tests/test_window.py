@@ -94,8 +94,9 @@ def test_opens_the_demo_with_bedside_fit_and_caution(window):
     assert window.bedside_values["pao2"].text() == "68 mmHg"
     assert window.bedside_values["berlin_category"].text() == "moderate"
     assert window.fit_result is not None and window.fit_result.success
-    assert window.fit_table.rowCount() == 10
+    assert window.fit_table.rowCount() == len(window.fit_result.free) + 1  # and VCO2 = RQ x VO2
     assert "cannot tell apart" in window.ident_label.text()
+    assert "condition: ARDS" in window.ident_label.text() and "passive patient" in window.ident_label.text()
     assert "Next best measurement" in window.next_label.text()
     assert window.history.rowCount() == 2
     # The V/Q picture: ventilation and perfusion for every perfused unit, shunt and dead space apart.

@@ -203,6 +203,7 @@ def _segment(pred: Prediction, patient: PatientModel, body: BodyStores, weight_k
         "apnoea": apnoea, "dead_space_va": col(g.parameters.alveolar_ventilation) * col(
             g.parameters.dead_space_fraction) * (0.0 if apnoea else 1.0),
         "ve": col(pred.breathing.minute_ventilation) * (0.0 if apnoea else 1.0),
+        "et_share": col(patient.end_tidal_share),
     }
 
 
@@ -401,7 +402,7 @@ def _outputs(X, u):
     flat = X.reshape(b * nt, S)
     uu = {**u}
     rep = {}
-    for key in ("k", "pdry", "pio2", "co", "shunt_open", "shunt_closed", "dead_space_va", "ve"):
+    for key in ("k", "pdry", "pio2", "co", "shunt_open", "shunt_closed", "dead_space_va", "ve", "et_share"):
         rep[key] = np.repeat(u[key], nt, axis=0)
     for key in ("w", "vi"):
         rep[key] = np.repeat(u[key], nt, axis=0)
@@ -422,7 +423,8 @@ def _outputs(X, u):
     co2_flow = np.sum(va * C, axis=1, keepdims=True)
     va_total = np.sum(va, axis=1, keepdims=True) + uu["dead_space_va"]
     with np.errstate(invalid="ignore", divide="ignore"):
-        petco2 = np.where(va_total > 0, co2_flow / np.where(va_total > 0, va_total, 1.0), np.nan)
+        mixed = np.where(va_total > 0, co2_flow / np.where(va_total > 0, va_total, 1.0), np.nan)
+        petco2 = mixed + uu["et_share"] * (pa_co2 - mixed)  # end-tidal, as in physiology.forecast.predict
         pe_co2 = np.where(uu["ve"] > 0, co2_flow / np.where(uu["ve"] > 0, uu["ve"], 1.0), np.nan)
     out = {"pao2": pa_o2, "paco2": pa_co2, "sao2": sa, "pvo2": pv_o2, "petco2": petco2,
            "vd_vt": (pa_co2 - pe_co2) / pa_co2, "shunt": shunt, "open_fraction": f,

@@ -61,6 +61,7 @@ from ..gasexchange.alveolar import alveolar_po2
 from ..indices import predicted_body_weight
 from ..mechanics.ventilator import Mechanics, Settings
 from ..measurement import SD
+from .priors import RQ_WARNING_RANGE, condition_priors, parameter_names, structure
 
 __all__ = ["Patient", "Observation", "FitResult", "fit", "check_observation", "InputError",
            "PARAMETERS", "likely_range", "next_best_measurement", "population_defaults"]
@@ -73,7 +74,7 @@ class InputError(ValueError):
 @dataclass(frozen=True)
 class Patient:
     """What is known about the patient [units]: sex, height_cm, weight_kg, age_years, temperature_c,
-    hb_g_dl, barometric_mmhg."""
+    hb_g_dl, barometric_mmhg, condition (one of :data:`physiology.fitting.priors.CONDITIONS`)."""
 
     sex: str
     height_cm: float
@@ -82,6 +83,7 @@ class Patient:
     temperature_c: float = 37.0
     hb_g_dl: float = 12.0
     barometric_mmhg: float = 760.0
+    condition: str = "other"
 
     @property
     def pbw_kg(self) -> float:
@@ -114,14 +116,23 @@ class Observation:
 
 
 #: Fitted parameters: (name, transform, where it goes).
-PARAMETERS = ("shunt_fixed", "recruitable", "log_sd", "dead_space_fraction", "vco2", "vo2",
-              "cardiac_output_ref", "c_max", "resistance", "base_excess")
-_LOGIT = {"shunt_fixed", "recruitable", "dead_space_fraction"}
+#: VCO2 is fitted as the respiratory quotient times VO2 (``rq``), so its prior is coupled to VO2's.
+#: The series dead space below the Y-piece (``anatomic_dead_space``), the upper inflection of the
+#: pressure-volume curve and the dead space of overdistended lung are fitted too: held fixed, they
+#: moved forecasts by more than their likely range. Obstructive lungs add ``low_vq_fraction``
+#: (:func:`physiology.fitting.priors.parameter_names`).
+PARAMETERS = ("shunt_fixed", "recruitable", "log_sd", "dead_space_fraction", "rq", "vo2",
+              "cardiac_output_ref", "c_max", "resistance", "base_excess", "anatomic_dead_space", "inflection",
+              "overdistension_dead_space")
+#: VCO2 [mL/min] within the engine's domain, whatever RQ x VO2 a draw proposes.
+VCO2_BOUNDS = (60.0, 650.0)
+_LOGIT = {"shunt_fixed", "recruitable", "dead_space_fraction", "overdistension_dead_space", "low_vq_fraction"}
 _LINEAR = {"base_excess"}
 _BOUNDS = {"shunt_fixed": (0.0, 0.7), "recruitable": (0.0, 0.6), "log_sd": (0.05, 2.3),
-           "dead_space_fraction": (0.0, 0.75), "vco2": (60.0, 650.0), "vo2": (80.0, 750.0),
+           "dead_space_fraction": (0.0, 0.75), "rq": (0.55, 1.6), "vo2": (80.0, 750.0),
            "cardiac_output_ref": (1.5, 18.0), "c_max": (6.0, 190.0), "resistance": (2.5, 55.0),
-           "base_excess": (-28.0, 28.0)}
+           "base_excess": (-28.0, 28.0), "anatomic_dead_space": (20.0, 400.0), "inflection": (12.0, 45.0),
+           "overdistension_dead_space": (0.0, 0.7), "low_vq_fraction": (0.0, 0.6)}
 
 #: Mean airway pressure at which the fitted ``cardiac_output_ref`` holds [cmH2O].
 MEAN_PAW_REFERENCE = 10.0
@@ -134,15 +145,9 @@ SAO2_MISMATCH = 0.05
 
 
 def population_defaults(patient: Patient) -> dict:
-    """Prior means on the natural scale, and prior SDs on the transformed scale."""
-    bsa = patient.bsa_m2
-    vo2 = 125.0 * bsa * (1.0 + 0.10 * (patient.temperature_c - 37.0))
-    mean = {"shunt_fixed": 0.10, "recruitable": 0.10, "log_sd": 0.8, "dead_space_fraction": 0.20,
-            "vco2": 0.8 * vo2, "vo2": vo2, "cardiac_output_ref": 3.2 * bsa, "c_max": 0.8 * patient.pbw_kg,
-            "resistance": 12.0, "base_excess": 0.0}
-    sd = {"shunt_fixed": 1.0, "recruitable": 1.0, "log_sd": 0.4, "dead_space_fraction": 0.8, "vco2": 0.2,
-          "vo2": 0.15, "cardiac_output_ref": 0.25, "c_max": 0.45, "resistance": 0.45, "base_excess": 8.0}
-    return {"mean": mean, "sd": sd}
+    """Prior means on the natural scale, and prior SDs on the transformed scale, for the patient's
+    condition (:mod:`physiology.fitting.priors`)."""
+    return condition_priors(patient.condition, patient.pbw_kg, patient.bsa_m2, patient.temperature_c)
 
 
 def _to_z(name, value):
@@ -245,15 +250,32 @@ def _settings_batch(settings_list):
 
 
 def build_model(patient: Patient, values: dict, mean_paw_ref) -> PatientModel:
-    """PatientModel for parameter values (scalars or arrays)."""
+    """PatientModel for parameter values (scalars or arrays).
+
+    ``values`` holds the fitted parameters; VCO2 comes from ``vco2`` if given, else ``rq`` x ``vo2``.
+    Parameters a fit did not include keep their population means; the condition's structural
+    assumptions (flow limitation, specific-ventilation spread, low-V/Q mode centre) are applied.
+    """
+    prior = population_defaults(patient)["mean"]
+    st = structure(patient.condition)
+
+    def get(name):
+        return values[name] if name in values else prior[name]
+
+    vco2 = values["vco2"] if "vco2" in values else np.clip(np.asarray(get("rq")) * np.asarray(get("vo2")),
+                                                           *VCO2_BOUNDS)
     return PatientModel(
         pbw_kg=patient.pbw_kg, shunt_fixed=values["shunt_fixed"], log_sd=values["log_sd"],
-        dead_space_fraction=values["dead_space_fraction"], vo2=values["vo2"], vco2=values["vco2"],
+        low_vq_fraction=values.get("low_vq_fraction", 0.0), low_vq_ratio=st.get("low_vq_ratio", 0.1),
+        dead_space_fraction=values["dead_space_fraction"], vo2=values["vo2"], vco2=vco2,
+        overdistension_dead_space=get("overdistension_dead_space"),
         hb=patient.hb_g_dl, temperature=patient.temperature_c, barometric=patient.barometric_mmhg,
         base_excess=values["base_excess"], cardiac_output_ref=values["cardiac_output_ref"],
-        mean_paw_ref=mean_paw_ref,
+        mean_paw_ref=mean_paw_ref, specific_ventilation_sd=st["specific_ventilation_sd"],
+        end_tidal_share=st["end_tidal_share"],
         mechanics=Mechanics(resistance=values["resistance"], c_max=values["c_max"],
-                            recruitable=values["recruitable"], anatomic_dead_space_ml=patient.pbw_kg * 1.0),
+                            recruitable=values["recruitable"], anatomic_dead_space_ml=get("anatomic_dead_space"),
+                            inflection=get("inflection"), flow_limitation=st["flow_limitation"]),
     )
 
 
@@ -291,6 +313,9 @@ class _Problem:
         self.sd_rel = np.array([SD[k[1]][1] for k in self.keys])
         inflate = self.sd / np.maximum(self.sd_abs + self.sd_rel * np.abs(self.y), 1e-12)  # PetCO2 down-weighting
         self.sd_abs, self.sd_rel = self.sd_abs * inflate, self.sd_rel * inflate
+        self.petco2_cols = np.array([c for c, k in enumerate(self.keys) if k[1] == "petco2"], dtype=int)
+        self.end_tidal_sd = structure(patient.condition)["end_tidal_sd"]
+        self._gap = np.zeros((1, len(self.keys)))
         self.pm = np.array([_to_z(n, prior["mean"][n]) for n in self.free])
         self.ps = np.array([prior["sd"][n] for n in self.free])
 
@@ -299,13 +324,20 @@ class _Problem:
         vals = {n: np.full(Z.shape[0], float(v)) for n, v in self.fixed.items()}
         for j, n in enumerate(self.free):
             vals[n] = _from_z(n, Z[:, j])
+        if "rq" in vals and "vo2" in vals:
+            vals["vco2"] = np.clip(vals["rq"] * vals["vo2"], *VCO2_BOUNDS)
         return vals
 
     def model_outputs(self, Z):
-        """Model values for every (row of Z, observation key): array (K, n_keys), NaN where it failed."""
+        """Model values for every (row of Z, observation key): array (K, n_keys), NaN where it failed.
+
+        Also keeps, for the PetCO2 keys, the arterial to mixed-alveolar PCO2 gap (``self._gap``), which
+        sets how uncertain the end-tidal relation is (see :meth:`_data_sd`).
+        """
         K = Z.shape[0]
         vals = self.values(Z)
         out = np.full((K, len(self.keys)), np.nan)
+        gap = np.zeros((K, len(self.keys)))
         for mode, idx in self.groups.items():
             m = len(idx)
             s = _settings_batch([self.obs[i].settings for i in idx])
@@ -320,12 +352,22 @@ class _Problem:
                 if i in idx:
                     pos = idx.index(i)
                     out[:, col] = table[q].reshape(K, m)[:, pos]
+                    if q == "petco2":
+                        gap[:, col] = np.abs(table["petco2_gap"].reshape(K, m)[:, pos])
+        self._gap = np.nan_to_num(gap)
         return out
 
     def _data_sd(self, out):
-        # Measurement SD at the model's value (the generative error model), not at the observed one.
-        return np.where(np.isfinite(out), self.sd_abs + self.sd_rel * np.abs(np.where(np.isfinite(out), out, 0.0)),
+        # Measurement SD at the model's value (the generative error model), not at the observed one. For
+        # PetCO2 the end-tidal relation adds its own uncertainty, a share of the arterial to mixed-alveolar
+        # gap (physiology.fitting.priors: end_tidal_sd by condition), in quadrature.
+        base = np.where(np.isfinite(out), self.sd_abs + self.sd_rel * np.abs(np.where(np.isfinite(out), out, 0.0)),
                         self.sd)
+        if self.petco2_cols.size:
+            extra = self.end_tidal_sd * self._gap[:, self.petco2_cols]
+            base = base.copy()
+            base[:, self.petco2_cols] = np.sqrt(base[:, self.petco2_cols] ** 2 + extra ** 2)
+        return base
 
     def residuals(self, Z):
         """Stacked standardised residuals (data then prior) for rows of Z: (K, n_keys + p)."""
@@ -363,7 +405,8 @@ def _fill_optional(s: Settings) -> Settings:
 def _quantities(pred: Prediction) -> dict:
     g, b = pred.gas, pred.breathing
     return {"pao2": np.atleast_1d(g.pao2), "paco2": np.atleast_1d(g.paco2), "ph": np.atleast_1d(g.ph),
-            "sao2": np.atleast_1d(g.sao2), "petco2": np.atleast_1d(g.petco2), "pplat": np.atleast_1d(b.pplat),
+            "sao2": np.atleast_1d(g.sao2), "petco2": np.atleast_1d(g.petco2),
+            "petco2_gap": np.atleast_1d(g.paco2 - pred.mixed_alveolar_pco2), "pplat": np.atleast_1d(b.pplat),
             "ppeak": np.atleast_1d(b.ppeak), "vte_ml": np.atleast_1d(b.vt_ml),
             "ve_l_min": np.atleast_1d(b.minute_ventilation),
             "vco2": np.atleast_1d(np.asarray(pred.patient.vco2, dtype=float) * np.ones_like(g.pao2)),
@@ -400,7 +443,7 @@ def fit(patient: Patient, observations, n_draws: int = 200, seed: int = 0, max_n
             raise InputError(f"observation {i + 1}: {exc}") from None
     prior = population_defaults(patient)
     fixed = {}
-    free = list(PARAMETERS)
+    free = list(parameter_names(patient.condition))
     problem = _Problem(patient, observations, free, fixed, prior)
     p = len(free)
     # Start at the prior mean, with base excess from the latest blood gas.
@@ -439,7 +482,12 @@ def fit(patient: Patient, observations, n_draws: int = 200, seed: int = 0, max_n
     except ArithmeticError as exc:  # no likely range can be given: say so, never a made-up one
         Zd, sampled, sampler = np.repeat(sol.x[None, :], n_draws, axis=0), str(exc), {}
     vd = problem.values(Zd)
-    ranges = {n: (float(np.percentile(vd[n], 5)), float(np.percentile(vd[n], 95))) for n in free}
+    ranges = {n: (float(np.percentile(vd[n], 5)), float(np.percentile(vd[n], 95))) for n in vd}
+    rq = estimates["rq"]
+    if not RQ_WARNING_RANGE[0] <= rq <= RQ_WARNING_RANGE[1]:
+        warnings.append(f"the fitted respiratory quotient (VCO2/VO2) is {rq:.2f}, outside the physiological "
+                        f"{RQ_WARNING_RANGE[0]:g}-{RQ_WARNING_RANGE[1]:g} (McClave 2003): check PaCO2, the minute "
+                        f"ventilation and the dead space entered (apparatus, PetCO2)")
     model = build_model(patient, {n: float(v[0]) for n, v in values_hat.items()}, problem.mean_paw_ref)
     draws = build_model(patient, vd, problem.mean_paw_ref)
     ident = _identifiability(free, cov, problem.ps, observations)
@@ -626,11 +674,15 @@ def _identifiability(free, cov, prior_sd, observations):
         msgs.append("recruitability is not informed by the data (no observations at different PEEP): it rests "
                     "on the population prior")
     names = {"shunt_fixed": "shunt", "recruitable": "recruitable lung", "log_sd": "V/Q mismatch",
-             "dead_space_fraction": "alveolar dead space", "vco2": "VCO2", "vo2": "VO2",
+             "dead_space_fraction": "alveolar dead space", "rq": "respiratory quotient", "vo2": "VO2",
              "cardiac_output_ref": "cardiac output", "c_max": "compliance", "resistance": "resistance",
-             "base_excess": "base excess"}
-    weak = [names[n] for j, n in enumerate(free) if sd[j] > 0.8 * prior_sd[j]
-            and n not in ("recruitable",)]
+             "base_excess": "base excess", "anatomic_dead_space": "series dead space",
+             "inflection": "upper inflection pressure", "overdistension_dead_space": "dead space of overdistended lung",
+             "low_vq_fraction": "low-V/Q mode"}
+    # Parameters that one or two blood gases rarely inform, by design: their priors carry their
+    # uncertainty into the ranges, and naming them every time would bury the messages that matter.
+    quiet = ("recruitable", "rq", "anatomic_dead_space", "inflection", "overdistension_dead_space")
+    weak = [names[n] for j, n in enumerate(free) if sd[j] > 0.8 * prior_sd[j] and n not in quiet]
     if weak:
         msgs.append("not informed beyond the population prior: " + ", ".join(weak))
     for a in range(len(free)):

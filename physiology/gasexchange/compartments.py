@@ -2,8 +2,10 @@
 
 The lung is true shunt (V/Q = 0), N perfused units carrying a log-normal
 distribution of perfusion over V/Q (dispersion ``log_sd`` on the natural-log
-scale, 50 units over +/-3.5 SD), an optional second high-V/Q mode (20 units;
-overdistended lung), and alveolar dead space (V/Q = infinity). Series dead space
+scale, 50 units over +/-3.5 SD), an optional low-V/Q mode on the same 50 units
+(obstructive lungs: perfusion of poorly ventilated units with little true shunt, the
+bimodal pattern of MIGET studies in COPD and asthma), an optional second high-V/Q
+mode (20 units; overdistended lung), and alveolar dead space (V/Q = infinity). Series dead space
 (anatomic + apparatus) enters only the mixed-expired gas.
 
 Each unit's end-capillary gas equals its alveolar gas. Its O2 and CO2 mass
@@ -86,6 +88,8 @@ DOMAIN = {
     "high_vq_ratio": (2.0, 100.0, ""),
     "high_vq_log_sd": (0.0, 1.5, ""),
     "hufner": (1.30, 1.40, "mL/g"),
+    "low_vq_fraction": (0.0, 0.6, ""),
+    "low_vq_ratio": (0.005, 0.5, ""),
 }
 
 
@@ -112,6 +116,8 @@ class LungParameters:
     high_vq_ratio : centre of the high mode relative to the main mode [unitless]
     high_vq_log_sd : dispersion of the high mode [unitless]
     hufner : O2 per g Hb [mL/g]
+    low_vq_fraction : share of non-shunt perfusion in a low-V/Q mode (obstructive lungs) [fraction]
+    low_vq_ratio : centre of the low mode relative to the main mode [unitless]
     """
 
     fio2: object = 0.21
@@ -131,6 +137,8 @@ class LungParameters:
     high_vq_ratio: object = 10.0
     high_vq_log_sd: object = 0.4
     hufner: object = HUFNER_DEFAULT
+    low_vq_fraction: object = 0.0
+    low_vq_ratio: object = 0.1
 
     def arrays(self) -> dict:
         """Validated inputs broadcast to a common 1-D batch shape (B,)."""
@@ -181,7 +189,8 @@ class SteadyState:
     pvo2, pvco2 [mmHg]; svo2 [fraction]
     cao2, cvo2, caco2, cvco2 [mL/dL]
     pe_co2 : mixed-expired PCO2 incl. series dead space [mmHg]
-    petco2 : end-tidal PCO2, ventilation-weighted alveolar incl. alveolar dead space [mmHg]
+    petco2 : mixed alveolar PCO2, ventilation-weighted over all alveoli incl. alveolar dead space [mmHg];
+        :func:`physiology.forecast.predict` places end-tidal PCO2 between it and PaCO2
     vd_vt : physiological dead-space fraction, Bohr-Enghoff from the model's expired gas [fraction]
     shunt : true shunt Qs/Qt [fraction]
     venous_admixture : Berggren at this FiO2, from ideal alveolar gas [fraction]
@@ -368,6 +377,15 @@ def _distribution(a):
     sd = a["log_sd"][:, None]
     w_main = np.exp(-0.5 * _Z_MAIN ** 2)
     w_main = np.broadcast_to(w_main / w_main.sum(), (n, N_MAIN_UNITS))
+    if np.any(a["low_vq_fraction"] > 0):
+        # A low-V/Q mode on the same units (so the time-course model, which follows these 50 units, sees
+        # it too): extra perfusion centred at low_vq_ratio x the main mode's centre, half the main mode's
+        # dispersion wide, its centre kept on the grid (at most 3 SD below the main mode).
+        z_low = np.clip(np.log(a["low_vq_ratio"]) / np.maximum(sd[:, 0], 0.05), -3.0, 0.0)[:, None]
+        w_low = np.exp(-0.5 * ((_Z_MAIN - z_low) / 0.5) ** 2)
+        w_low = w_low / w_low.sum(axis=1, keepdims=True)
+        f_low = a["low_vq_fraction"][:, None]
+        w_main = (1.0 - f_low) * w_main + f_low * w_low
     shape_main = np.exp(sd * _Z_MAIN)
     if np.any(a["high_vq_fraction"] > 0):
         f2 = a["high_vq_fraction"][:, None]

@@ -127,6 +127,8 @@ class Mechanics:
     pressure_history : highest recent airway pressure, e.g. a recruitment manoeuvre [cmH2O];
         0 means "the current plateau"
     anatomic_dead_space_ml : series dead space below the Y-piece incl. tube [mL]
+    flow_limitation : expiratory flow limitation [fraction 0-1]: 0, external PEEP adds to the trapped
+        volume; 1, the "waterfall" of flow-limited lungs (see :func:`waterfall_total_peep`)
     """
 
     resistance: object = 10.0
@@ -140,6 +142,30 @@ class Mechanics:
     sd_close: object = 3.0
     pressure_history: object = 0.0
     anatomic_dead_space_ml: object = 80.0
+    flow_limitation: object = 0.0
+
+
+#: Waterfall of flow-limited lungs: external PEEP below about 80-85 % of intrinsic PEEP does not raise
+#: total PEEP or end-expiratory lung volume; above it, total PEEP follows external PEEP (Tobin MJ,
+#: Lodato RF. PEEP, auto-PEEP, and waterfalls. Chest 1989;96:449-451; Ranieri VM et al. Am Rev Respir
+#: Dis 1993;147:5-13: critical external PEEP ~85 % of intrinsic PEEP; both from memory).
+WATERFALL_CRITICAL_SHARE = 0.8
+#: Smoothing width of the waterfall's corner [cmH2O] (ours: a smooth corner keeps Newton quadratic).
+WATERFALL_CORNER_CMH2O = 1.0
+
+
+def waterfall_total_peep(peep, intrinsic_at_zeep, flow_limitation=1.0):
+    """Total PEEP [cmH2O] from set PEEP and the intrinsic PEEP the lung would have at zero PEEP.
+
+    Flow-limited (``flow_limitation`` 1): total = PEEPi0 + w softplus((PEEP - 0.8 PEEPi0) / w), i.e.
+    PEEPi0 while external PEEP stays below 80 % of it, then rising one-for-one. Not flow-limited (0):
+    PEEP + PEEPi0 (the pressures add). Values in between blend the two.
+    """
+    w = WATERFALL_CORNER_CMH2O
+    x = (np.asarray(peep, dtype=float) - WATERFALL_CRITICAL_SHARE * intrinsic_at_zeep) / w
+    limited = intrinsic_at_zeep + w * np.logaddexp(0.0, x)
+    additive = peep + intrinsic_at_zeep
+    return (1.0 - flow_limitation) * additive + flow_limitation * limited
 
 
 _MECH_LIMITS = {
@@ -147,6 +173,7 @@ _MECH_LIMITS = {
     "width": (1.0, 20.0, "cmH2O"), "recruitable": (0.0, 0.7, ""), "mu_open": (5.0, 45.0, "cmH2O"),
     "sd_open": (0.5, 20.0, "cmH2O"), "mu_close": (-5.0, 30.0, "cmH2O"), "sd_close": (0.5, 20.0, "cmH2O"),
     "pressure_history": (0.0, 70.0, "cmH2O"), "anatomic_dead_space_ml": (10.0, 400.0, "mL"),
+    "flow_limitation": (0.0, 1.0, ""),
 }
 
 
@@ -229,6 +256,7 @@ def breathe(settings: Settings, mechanics: Mechanics, pbw_kg=None, max_iter: int
     infl, width, peep = b["inflection"], b["width"], b["peep"]
     lr = b["recruitable"]
     volume_mode = settings.mode == "volume"
+    limited = bool(np.any(b["flow_limitation"] > 0))
 
     def pressure(volume, aer):
         return aerated_pressure(volume / aer, cmax, infl, width)
@@ -253,8 +281,17 @@ def breathe(settings: Settings, mechanics: Mechanics, pbw_kg=None, max_iter: int
             v_top = volume(peep + dpi, aer) - v_peep  # what a long inspiration would deliver
             c_top = np.maximum(v_top / dpi, 1e-5)
             vt, trapped = pressure_control_volumes(dpi, c_top, r * c_top, ti, te)
-        peep_tot = pressure(v_peep + trapped, aer)
-        pplat = pressure(v_peep + trapped + vt, aer)
+        if limited:
+            # Intrinsic PEEP the trapped volume would hold at zero PEEP, then the waterfall (flow-limited
+            # lungs): external PEEP below ~80 % of it leaves total PEEP and the lung volume unchanged.
+            v0 = volume(np.zeros_like(peep), aer)
+            p_i0 = pressure(v0 + trapped, aer)
+            peep_tot = waterfall_total_peep(peep, p_i0, b["flow_limitation"])
+            v_ee = volume(peep_tot, aer)
+        else:
+            v_ee = v_peep + trapped
+            peep_tot = pressure(v_ee, aer)
+        pplat = pressure(v_ee + vt, aer)
         finite = np.isfinite(pplat)
         history = np.maximum(hist0, np.where(finite, pplat, 0.0))
         f_eff, f_ee_new = open_fraction(history, peep_tot, duty, b["mu_open"], b["sd_open"], b["mu_close"],
