@@ -120,6 +120,7 @@ def _cmd_predict(args) -> int:
     print(f"Lung fit: shunt {f['shunt_fraction']:.2f}, V/Q log SD {f['vq_log_sd']:.2f}, alveolar dead space "
           f"{f['alveolar_dead_space_fraction']:.2f}, VCO2 {f['vco2_ml_min']:.0f} mL/min, cardiac output "
           f"{f['cardiac_output_l_min']:.1f} L/min ({f['message']})")
+    print("Model assumes: " + "; ".join(f["assumptions"]))
     print()
     print(f"{'Forecast (steady state)':<24} {'value':>9}  likely range (90 %)")
     rng = out["likely_range"]

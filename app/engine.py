@@ -12,7 +12,8 @@ import re
 import numpy as np
 
 from ventcast.physiology.dynamics.course import simulate
-from ventcast.physiology.fitting.fit import Observation, Patient, fit, likely_range, next_best_measurement
+from ventcast.physiology.fitting.fit import (Observation, Patient, fit, likely_range, model_error_factors,
+                                             next_best_measurement)
 from ventcast.physiology.fitting.priors import CONDITION_LABELS, structure
 from ventcast.physiology.forecast import predict
 from ventcast.physiology.indices import oxygenation_index
@@ -409,7 +410,8 @@ def _band(result, current, trial, minutes, n=200):
 
     Returns ``(pao2, paco2, left_out)``: arrays (draws, time) and the number of draws whose course
     could not be integrated (near the edge of a sustainable state); those are left out of the band,
-    found by halving the batch, and the caller says how many.
+    found by halving the batch, and the caller says how many. Each draw carries the model error of the
+    steady-state likely range (:func:`with_course_model_error`), so the band ends where the range does.
     """
     draws = result.draws
     ok = np.asarray(predict(draws, _tile(current, draws)).success) & np.asarray(predict(draws, _tile(trial, draws)).success)
@@ -420,21 +422,36 @@ def _band(result, current, trial, minutes, n=200):
     # (about 170 MB at its peak); chunks of 25 keep the window's memory in bounds at about the same speed.
     parts = [p for start in range(0, idx.size, BAND_CHUNK)
              for p in _courses(draws, idx[start:start + BAND_CHUNK], current, trial, minutes)]
-    kept = sum(p[0].shape[0] for p in parts)
+    kept = sum(p[0].size for p in parts)
     if kept < 50:
         return None
-    return (np.vstack([p[0] for p in parts]), np.vstack([p[1] for p in parts]), int(idx.size - kept))
+    where = np.concatenate([p[0] for p in parts])
+    factors = model_error_factors(int(np.atleast_1d(draws.shunt_fixed).size))
+    pao2 = with_course_model_error(np.vstack([p[1] for p in parts]), factors["pao2"][where])
+    paco2 = with_course_model_error(np.vstack([p[2] for p in parts]), factors["paco2"][where])
+    return pao2, paco2, int(idx.size - kept)
+
+
+def with_course_model_error(values, factors):
+    """Courses (draws, time) with each draw's model-error factor applied in proportion to how far the
+    course has gone from its start toward its end (no error at minute 0, where the fit reproduces the
+    data; the full factor once settled); a course that does not change carries the full factor."""
+    start, end = values[:, :1], values[:, -1:]
+    change = end - start
+    with np.errstate(invalid="ignore", divide="ignore"):
+        progress = np.where(np.abs(change) >= 0.5, np.clip((values - start) / change, 0.0, 1.0), 1.0)
+    return values * factors[:, None] ** progress
 
 
 def _courses(draws, idx, current, trial, minutes):
-    """[(pao2, paco2)] of the draws at ``idx`` whose course integrates; failing draws found by halving."""
+    """[(indices, pao2, paco2)] of the draws at ``idx`` whose course integrates; failing draws found by halving."""
     try:
         with np.errstate(invalid="ignore"):  # a failing draw's NaNs are reported through success, not warnings
             course = simulate(_take(draws, idx), current, trial, minutes=minutes)
     except ArithmeticError:
         course = None
     if course is not None and np.all(course.success):
-        return [(np.atleast_2d(course.pao2), np.atleast_2d(course.paco2))]
+        return [(idx, np.atleast_2d(course.pao2), np.atleast_2d(course.paco2))]
     if idx.size == 1:
         return []
     half = idx.size // 2

@@ -286,3 +286,32 @@ def test_pressure_control_that_does_not_fill_says_so():
     assert "pc_incomplete_filling" in codes
     steady["inspiratory_filling"] = 0.99
     assert "pc_incomplete_filling" not in [line["code"] for line in limit_checks(steady)]
+
+
+def test_flow_limited_lungs_follow_the_waterfall_of_external_peep():
+    """Tobin & Lodato 1989 (Chest 96:449) and Ranieri et al. 1993 (Am Rev Respir Dis 147:5; critical
+    external PEEP about 85 % of intrinsic PEEP), both from memory: in flow-limited lungs external PEEP
+    below about 80 % of intrinsic PEEP barely raises total PEEP or plateau pressure; above it, total PEEP
+    follows external PEEP. Without flow limitation the pressures add."""
+    s = dict(mode="volume", fio2=0.35, vt_ml=480, rr=22, ti=1.0)
+    limited = Mechanics(resistance=35, c_max=55, flow_limitation=1.0)
+    free = Mechanics(resistance=35, c_max=55, flow_limitation=0.0)
+    zeep = breathe(Settings(peep=0, **s), limited)
+    pi0 = float(zeep.intrinsic_peep)
+    assert pi0 > 4.0
+    below = breathe(Settings(peep=round(0.6 * pi0, 1), **s), limited)
+    assert float(below.peep_total) - pi0 < 0.5
+    assert float(below.pplat) - float(zeep.pplat) < 0.6
+    above = breathe(Settings(peep=pi0 + 6.0, **s), limited)
+    assert float(above.peep_total) == pytest.approx(pi0 + 6.0, abs=0.6 + 0.2 * pi0)
+    added = breathe(Settings(peep=round(0.6 * pi0, 1), **s), free)
+    assert float(added.peep_total) == pytest.approx(pi0 + round(0.6 * pi0, 1), abs=0.3)
+
+
+def test_waterfall_formula_limits():
+    """Independent calculation of the waterfall's two limits: flow-limited total PEEP is PEEPi0 well
+    below the critical external PEEP and PEEPe + 0.2 PEEPi0 well above it; not flow-limited, the sum."""
+    from ventcast.physiology.mechanics.ventilator import waterfall_total_peep
+    assert float(waterfall_total_peep(0.0, 10.0)) == pytest.approx(10.0, abs=1e-3)
+    assert float(waterfall_total_peep(20.0, 10.0)) == pytest.approx(22.0, abs=1e-3)
+    assert float(waterfall_total_peep(5.0, 10.0, 0.0)) == pytest.approx(15.0)

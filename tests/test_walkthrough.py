@@ -11,7 +11,8 @@ import pytest
 from ventcast.app.cli import main
 from ventcast.app.walkthrough import BUILT_IN, Run, built_in_text
 from ventcast.physiology.dynamics.course import Change, simulate
-from ventcast.physiology.forecast import predict
+from ventcast.physiology.forecast import PatientModel, predict
+from ventcast.physiology.mechanics.ventilator import Mechanics, Settings
 
 SCRIPT = json.loads(built_in_text("hypoxaemia-needs-peep"))
 
@@ -154,3 +155,24 @@ def test_bad_minutes_and_actions_are_refused(tmp_path, capsys):
     actions.write_text(json.dumps([{"minute": 5, "jump": True}]))
     assert main(["walkthrough", "sudden-deterioration", "--headless", "--actions", str(actions)]) == 2
     assert "--actions[0]" in capsys.readouterr().err
+
+
+def test_bronchospasm_moves_blood_flow_to_low_vq_units_and_the_gases():
+    """resistance_up (bronchospasm) also moves blood flow to poorly ventilated units with little shunt, the
+    MIGET pattern of acute severe asthma (Rodriguez-Roisin 1989, from memory): PaO2 falls by more than a
+    blood gas can miss (one measurement SD), where resistance alone moved it by less; at a fixed minute
+    ventilation PaCO2 rises a little (low-V/Q units retain some CO2), and the shunt stays small."""
+    from ventcast.physiology.measurement import measurement_sd
+    from ventcast.physiology.scenario import LOW_VQ_PER_DOUBLING
+    base = PatientModel(pbw_kg=68, shunt_fixed=0.03, log_sd=1.1, dead_space_fraction=0.35, hb=13.5,
+                        mechanics=Mechanics(resistance=20, c_max=55, flow_limitation=1.0))
+    s = Settings(mode="volume", fio2=0.35, peep=5, vt_ml=480, rr=20, ti=1.0, apparatus_dead_space_ml=50)
+    before = predict(base, s)
+    airways_only = predict(base.replace(resistance=40.0), s)
+    spasm = predict(base.replace(resistance=40.0, low_vq_fraction=LOW_VQ_PER_DOUBLING), s)
+    assert before.success and spasm.success and airways_only.success
+    sd_o2 = measurement_sd("pao2", float(before.gas.pao2))
+    assert abs(float(before.gas.pao2 - airways_only.gas.pao2)) < sd_o2
+    assert float(before.gas.pao2 - spasm.gas.pao2) > sd_o2
+    assert float(spasm.gas.paco2) > float(before.gas.paco2)
+    assert float(spasm.shunt) < 0.06
