@@ -13,7 +13,7 @@ from pathlib import Path
 
 from . import CAUTION
 from .bedside import bedside_indices
-from .engine import ModelError
+from .engine import RECHECK_NOTE, ModelError
 from .casefile import (DEMO_NAMES, CaseError, check_output_file, check_output_files, demo_text, load, load_demo,
                        read_text, write_atomic)
 
@@ -134,7 +134,8 @@ def _cmd_predict(args) -> int:
     if out["settings"] == out.get("current_settings"):
         print("\nThe trial equals the current settings: no change is expected.")
     elif out.get("recheck_after_min") is not None:
-        print(f"\nRe-check a blood gas after about {max(out['recheck_after_min'], 1):.0f} min (90 % of the change).")
+        print(f"\nRe-check a blood gas after about {max(out['recheck_after_min'], 1):.0f} min at the earliest "
+              f"({RECHECK_NOTE}).")
     if out["next_best_measurement"]:
         nb = out["next_best_measurement"][0]
         print(f"Next best measurement: {nb['probe']} - {nb['why']}.")

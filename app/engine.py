@@ -12,8 +12,8 @@ import re
 import numpy as np
 
 from ventcast.physiology.dynamics.course import simulate
-from ventcast.physiology.fitting.fit import (Observation, Patient, fit, likely_range, model_error_factors,
-                                             next_best_measurement)
+from ventcast.physiology.fitting.fit import (Observation, Patient, fit, likely_range, measured_at,
+                                             model_error_factors, next_best_measurement)
 from ventcast.physiology.fitting.priors import CONDITION_LABELS, structure
 from ventcast.physiology.forecast import predict
 from ventcast.physiology.indices import oxygenation_index
@@ -299,6 +299,12 @@ def forecast_case(case: dict, sets=(), minutes: float = 60.0, with_course: bool 
     return forecast_fitted(case, result, trial_dict, minutes=minutes, with_course=with_course)
 
 
+#: Said with every re-check time: the model's oxygen settles faster than measured in patients after an
+#: FiO2 decrease (Cakar 2001; README, model section), so its 90 % time is a lower bound.
+RECHECK_NOTE = ("the model's 90 % time of the PaO2 and PaCO2 change; patients often take longer (Cakar 2001), "
+                "and a gas 10-30 min after a change is common practice")
+
+
 def capacity_refusal(model, trial: Settings, pred) -> str:
     """Why a trial the fitted lung cannot take is refused (the input's fault, not the model's), or ''.
 
@@ -411,7 +417,8 @@ def _band(result, current, trial, minutes, n=200):
     Returns ``(pao2, paco2, left_out)``: arrays (draws, time) and the number of draws whose course
     could not be integrated (near the edge of a sustainable state); those are left out of the band,
     found by halving the batch, and the caller says how many. Each draw carries the model error of the
-    steady-state likely range (:func:`with_course_model_error`), so the band ends where the range does.
+    steady-state likely range (:func:`with_course_model_error`), so the band ends where the range does
+    (none at settings where a gas was measured, as there).
     """
     draws = result.draws
     ok = np.asarray(predict(draws, _tile(current, draws)).success) & np.asarray(predict(draws, _tile(trial, draws)).success)
@@ -425,10 +432,12 @@ def _band(result, current, trial, minutes, n=200):
     kept = sum(p[0].size for p in parts)
     if kept < 50:
         return None
-    where = np.concatenate([p[0] for p in parts])
-    factors = model_error_factors(int(np.atleast_1d(draws.shunt_fixed).size))
-    pao2 = with_course_model_error(np.vstack([p[1] for p in parts]), factors["pao2"][where])
-    paco2 = with_course_model_error(np.vstack([p[2] for p in parts]), factors["paco2"][where])
+    pao2, paco2 = np.vstack([p[1] for p in parts]), np.vstack([p[2] for p in parts])
+    if not measured_at(result, trial):
+        where = np.concatenate([p[0] for p in parts])
+        factors = model_error_factors(int(np.atleast_1d(draws.shunt_fixed).size))
+        pao2 = with_course_model_error(pao2, factors["pao2"][where])
+        paco2 = with_course_model_error(paco2, factors["paco2"][where])
     return pao2, paco2, int(idx.size - kept)
 
 

@@ -28,8 +28,8 @@ from ventcast.physiology.forecast import predict
 from . import CAUTION, MMHG_PER_KPA, version
 from .casefile import (CaseError, check_settings, load, load_demo, parse_json, read_text, validate,
                        write_atomic)
-from .engine import (apply_sets, fit_case, forecast_fitted, limit_checks, model_assumptions, now_block, plan_case,
-                     settings_dict, settings_text, steady_block, to_settings, wean_case)
+from .engine import (RECHECK_NOTE, apply_sets, fit_case, forecast_fitted, limit_checks, model_assumptions, now_block,
+                     plan_case, settings_dict, settings_text, steady_block, to_settings, wean_case)
 from .report import SOURCES
 from .worker import EngineRunner
 
@@ -329,7 +329,7 @@ class MainWindow(QtWidgets.QMainWindow):
         for key, label in (("pao2", "PaO2"), ("paco2", "PaCO2"), ("ph", "pH"), ("sao2", "SaO2"),
                            ("settings", "Settings"), ("pf_ratio_mmhg", "P/F ratio"),
                            ("aa_gradient_mmhg", "A\u2013a gradient"), ("vd_vt", "VD/VT (model)"),
-                           ("driving_pressure_cmh2o", "Driving pressure (Pplat \u2212 set PEEP)"), ("compliance_ml_per_cmh2o", "Crs"),
+                           ("driving_pressure_cmh2o", "Driving pressure\n(Pplat \u2212 set PEEP)"), ("compliance_ml_per_cmh2o", "Crs"),
                            ("pbw_kg", "PBW"), ("vt_ml_per_kg_pbw", "VT"), ("mechanical_power_j_min", "Mechanical power"),
                            ("ventilatory_ratio", "Ventilatory ratio"), ("oxygenation_index", "Oxygenation index"),
                            ("berlin_category", "Berlin category"), ("base_excess_mmol_l", "Base excess")):
@@ -1050,8 +1050,8 @@ class MainWindow(QtWidgets.QMainWindow):
         unchanged = out["settings"] == out["current_settings"]
         self.recheck_label.setText(
             "The trial equals the current settings: no change is expected." if unchanged else
-            "" if r is None else f"Re-check a blood gas after about {max(r, 1):.0f} min (90 % of the PaO2 and "
-                                 f"PaCO2 change).")
+            "" if r is None else f"Re-check a blood gas after about {max(r, 1):.0f} min at the earliest "
+                                 f"({RECHECK_NOTE}).")
 
     def _draw_course(self, out, band=None):
         c = out["course"]

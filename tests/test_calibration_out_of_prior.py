@@ -27,18 +27,13 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from ventcast.physiology.fitting.fit import (PARAMETERS, Observation, Patient, _from_z, _sd, _to_z, build_model, fit,
-                                             likely_range, population_defaults)
+from test_fitting import random_patient, random_settings, vc
+from ventcast.physiology.fitting.fit import Observation, _sd, build_model, fit, likely_range, population_defaults
 from ventcast.physiology.forecast import predict
 from ventcast.physiology.gasexchange.compartments import solve_steady_state
-from ventcast.physiology.mechanics.ventilator import Settings
 
 KINDS = ("bimodal", "low_vq", "high_rq", "bias", "off_centre", "end_tidal")
 N_PATIENTS = 96  # 16 of each kind
-
-
-def vc(fio2, peep, vt, rr):
-    return Settings(mode="volume", fio2=fio2, peep=peep, vt_ml=vt, rr=rr, ti=0.9, apparatus_dead_space_ml=50)
 
 
 def true_outcome(model, settings, kind, extra):
@@ -71,10 +66,8 @@ def measure(truth, settings, kind, rng):
 
 
 def patient_of_kind(kind, rng):
-    pt = Patient(sex=str(rng.choice(["female", "male"])), height_cm=rng.uniform(155, 190),
-                 weight_kg=rng.uniform(55, 110), hb_g_dl=rng.uniform(8, 14), temperature_c=rng.uniform(36.5, 38.5))
+    pt, true = random_patient(rng)
     prior = population_defaults(pt)
-    true = {n: float(_from_z(n, rng.normal(_to_z(n, prior["mean"][n]), prior["sd"][n]))) for n in PARAMETERS}
     extra = {}
     if kind == "bimodal":
         extra = {"high_fraction": rng.uniform(0.1, 0.3), "high_ratio": rng.uniform(5.0, 20.0)}
@@ -102,13 +95,7 @@ def coverage_out_of_prior(n_patients=N_PATIENTS, seed=11):
         kind = KINDS[i % len(KINDS)]
         i += 1
         pt, model, extra = patient_of_kind(kind, rng)
-        fio2 = float(np.round(rng.uniform(0.35, 0.8), 2))
-        peep = float(rng.integers(5, 15))
-        vt = float(np.round(pt.pbw_kg * rng.uniform(6, 8)))
-        rr = float(rng.integers(14, 27))
-        settings = [vc(fio2, peep, vt, rr)]
-        if rng.integers(1, 3) == 2:
-            settings.insert(0, vc(float(np.clip(fio2 + rng.choice([-0.15, 0.15]), 0.25, 1.0)), max(5.0, peep - 2), vt, rr))
+        fio2, peep, vt, rr, settings = random_settings(pt, rng)
         truths = [true_outcome(model, s, kind, extra) for s in settings]
         trial = vc(float(np.clip(fio2 + rng.choice([-0.1, 0.1]), 0.21, 1.0)), min(peep + 2, 30.0), vt, rr + 2)
         after = true_outcome(model, trial, kind, extra)

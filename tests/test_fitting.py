@@ -113,6 +113,26 @@ def test_sampler_reports_its_work():
     assert final and all(0.0 < np.nanmean(a[1:]) < 1.0 for a in final)
 
 
+def random_patient(rng):
+    """A synthetic patient and parameters drawn from the fit's own priors (calibration sets)."""
+    pt = Patient(sex=str(rng.choice(["female", "male"])), height_cm=rng.uniform(155, 190),
+                 weight_kg=rng.uniform(55, 110), hb_g_dl=rng.uniform(8, 14), temperature_c=rng.uniform(36.5, 38.5))
+    prior = population_defaults(pt)
+    return pt, {n: float(_from_z(n, rng.normal(_to_z(n, prior["mean"][n]), prior["sd"][n]))) for n in PARAMETERS}
+
+
+def random_settings(pt, rng):
+    """Settings of one or two blood gases (the earlier at another FiO2 and PEEP): fio2, peep, vt, rr, list."""
+    fio2 = float(np.round(rng.uniform(0.35, 0.8), 2))
+    peep = float(rng.integers(5, 15))
+    vt = float(np.round(pt.pbw_kg * rng.uniform(6, 8)))
+    rr = float(rng.integers(14, 27))
+    settings = [vc(fio2, peep, vt, rr)]
+    if rng.integers(1, 3) == 2:
+        settings.insert(0, vc(float(np.clip(fio2 + rng.choice([-0.15, 0.15]), 0.25, 1.0)), max(5.0, peep - 2), vt, rr))
+    return fio2, peep, vt, rr, settings
+
+
 @pytest.mark.slow
 def test_likely_range_is_calibrated():
     """Over 200 synthetic patients drawn from the population priors, with noisy observations (one or
@@ -127,17 +147,8 @@ def test_likely_range_is_calibrated():
     rng = np.random.default_rng(5)
     hits = {"pao2": [], "paco2": []}
     while len(hits["pao2"]) < 200:
-        pt = Patient(sex=str(rng.choice(["female", "male"])), height_cm=rng.uniform(155, 190),
-                     weight_kg=rng.uniform(55, 110), hb_g_dl=rng.uniform(8, 14), temperature_c=rng.uniform(36.5, 38.5))
-        prior = population_defaults(pt)
-        true = {n: float(_from_z(n, rng.normal(_to_z(n, prior["mean"][n]), prior["sd"][n]))) for n in PARAMETERS}
-        fio2 = float(np.round(rng.uniform(0.35, 0.8), 2))
-        peep = float(rng.integers(5, 15))
-        vt = float(np.round(pt.pbw_kg * rng.uniform(6, 8)))
-        rr = float(rng.integers(14, 27))
-        settings = [vc(fio2, peep, vt, rr)]
-        if rng.integers(1, 3) == 2:
-            settings.insert(0, vc(float(np.clip(fio2 + rng.choice([-0.15, 0.15]), 0.25, 1.0)), max(5.0, peep - 2), vt, rr))
+        pt, true = random_patient(rng)
+        fio2, peep, vt, rr, settings = random_settings(pt, rng)
         model = build_model(pt, true, 10.0)
         if not all(predict(model, s).success for s in settings):
             continue

@@ -739,9 +739,28 @@ def with_model_error(table: dict, draws: PatientModel) -> dict:
     return out
 
 
+def measured_at(fit_result: FitResult, settings: Settings) -> bool:
+    """Whether one of the fit's observations was taken at exactly these settings."""
+    names = ("fio2", "peep", "vt_ml", "inspiratory_pressure", "rr", "ti", "apparatus_dead_space_ml", "pause")
+
+    def same(a, b):
+        if a.mode != b.mode:
+            return False
+        for n in names:
+            x, y = getattr(a, n), getattr(b, n)
+            x = 0.0 if x is None and n in ("apparatus_dead_space_ml", "pause") else x
+            y = 0.0 if y is None and n in ("apparatus_dead_space_ml", "pause") else y
+            if (x is None) != (y is None) or (x is not None and not np.isclose(float(x), float(y))):
+                return False
+        return True
+
+    return any(same(settings, o.settings) for o in fit_result.observations)
+
+
 def likely_range(fit_result: FitResult, settings: Settings, quantities=("pao2", "paco2", "ph", "sao2")):
     """90 % likely range (5th-95th percentile over the draws) of steady-state forecasts at ``settings``,
-    model error included (:data:`MODEL_ERROR_LOG_SD`).
+    model error included (:data:`MODEL_ERROR_LOG_SD`) unless a blood gas was measured at these settings
+    (there the fit reproduces the measurement; the structure error is that of a forecast elsewhere).
 
     Returns ``{quantity: (low, high)}``, the per-draw values (with model error), and the fraction of
     draws with a steady state.
@@ -749,7 +768,9 @@ def likely_range(fit_result: FitResult, settings: Settings, quantities=("pao2", 
     b = np.atleast_1d(fit_result.draws.shunt_fixed).size
     tiled = _tile_settings(settings, b)
     pred = predict(fit_result.draws, tiled)
-    table = with_model_error(_quantities(pred), fit_result.draws)
+    table = _quantities(pred)
+    if not measured_at(fit_result, settings):
+        table = with_model_error(table, fit_result.draws)
     ok = np.asarray(pred.success)
     out = {}
     for q in quantities:
