@@ -1,5 +1,7 @@
 """Ventilator and lung mechanics against worked examples, published tables and expected behaviour."""
 
+import warnings
+
 import numpy as np
 from scipy.integrate import trapezoid
 import pytest
@@ -315,3 +317,6 @@ def test_waterfall_formula_limits():
     assert float(waterfall_total_peep(0.0, 10.0)) == pytest.approx(10.0, abs=1e-3)
     assert float(waterfall_total_peep(20.0, 10.0)) == pytest.approx(22.0, abs=1e-3)
     assert float(waterfall_total_peep(5.0, 10.0, 0.0)) == pytest.approx(15.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # a trapped volume beyond capacity stays infinite, without warnings
+        assert np.all(np.isinf(waterfall_total_peep(np.array([5.0, 5.0]), np.inf, np.array([1.0, 0.0]))))

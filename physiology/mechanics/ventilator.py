@@ -162,10 +162,14 @@ def waterfall_total_peep(peep, intrinsic_at_zeep, flow_limitation=1.0):
     PEEP + PEEPi0 (the pressures add). Values in between blend the two.
     """
     w = WATERFALL_CORNER_CMH2O
-    x = (np.asarray(peep, dtype=float) - WATERFALL_CRITICAL_SHARE * intrinsic_at_zeep) / w
-    limited = intrinsic_at_zeep + w * np.logaddexp(0.0, x)
-    additive = peep + intrinsic_at_zeep
-    return (1.0 - flow_limitation) * additive + flow_limitation * limited
+    # An infinite intrinsic PEEP (trapped volume beyond capacity; that case fails) stays infinite, quietly.
+    with np.errstate(invalid="ignore", over="ignore"):
+        x = (np.asarray(peep, dtype=float) - WATERFALL_CRITICAL_SHARE * intrinsic_at_zeep) / w
+        limited = intrinsic_at_zeep + w * np.logaddexp(0.0, x)
+        additive = peep + intrinsic_at_zeep
+        blend = (1.0 - flow_limitation) * additive + flow_limitation * limited
+    return np.where(np.asarray(flow_limitation) >= 1.0, limited,
+                    np.where(np.asarray(flow_limitation) <= 0.0, additive, blend))
 
 
 _MECH_LIMITS = {
