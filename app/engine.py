@@ -19,7 +19,7 @@ from ventcast.physiology.forecast import predict
 from ventcast.physiology.indices import oxygenation_index
 from ventcast.physiology.mechanics.motion import mean_airway_pressure, mechanical_power_simplified
 from ventcast.physiology.mechanics.recruitment import aerated_volume
-from ventcast.physiology.mechanics.ventilator import Settings
+from ventcast.physiology.mechanics.ventilator import BEYOND_CAPACITY, NO_ALVEOLAR_VENTILATION, Settings
 from ventcast.physiology.planning.search import Goals, margins, search
 from ventcast.physiology.planning.stepdown import step_down
 from ventcast.physiology.protocols import LIMITS
@@ -148,6 +148,21 @@ def fit_block(result, current: Settings) -> dict:
         "identifiability": list(result.identifiability), "warnings": list(result.warnings),
         "likely_range": {k: [float(a), float(b)] for k, (a, b) in result.ranges.items()},
     }
+
+
+#: How each fitted parameter (and VCO2 = RQ x VO2) is named on screen and in reports: (label, unit, decimals).
+PARAMETER_LABELS = {
+    "shunt_fixed": ("shunt (not recruitable)", "", 2), "recruitable": ("recruitable lung", "", 2),
+    "log_sd": ("V/Q mismatch (log SD)", "", 2), "dead_space_fraction": ("alveolar dead space", "", 2),
+    "vco2": ("VCO2", "mL/min", 0), "vo2": ("VO2", "mL/min", 0),
+    "cardiac_output_ref": ("cardiac output at mean Paw 10 cmH2O", "L/min", 1),
+    "c_max": ("compliance of aerated lung", "mL/cmH2O", 0), "resistance": ("resistance", "cmH2O/L/s", 1),
+    "base_excess": ("base excess", "mmol/L", 1), "rq": ("respiratory quotient (VCO2/VO2)", "", 2),
+    "anatomic_dead_space": ("series dead space below the Y-piece", "mL", 0),
+    "inflection": ("upper inflection pressure", "cmH2O", 0),
+    "overdistension_dead_space": ("dead space of overdistended lung", "", 2),
+    "low_vq_fraction": ("low-V/Q mode (share of blood flow)", "", 2),
+}
 
 
 def model_assumptions(condition: str) -> list:
@@ -312,10 +327,10 @@ def capacity_refusal(model, trial: Settings, pred) -> str:
     top of the pressure-volume curve (inflection + 2 x width), where the model lung holds no more.
     """
     reason = str(pred.breathing.reasons) if np.ndim(pred.breathing.reasons) == 0 else ""
-    if "beyond total capacity" not in reason and "does not exceed the series dead space" not in reason:
+    if reason not in (BEYOND_CAPACITY, NO_ALVEOLAR_VENTILATION):
         return ""
     mech = model.mechanics
-    if "series dead space" in reason:
+    if reason == NO_ALVEOLAR_VENTILATION:
         vds = float(mech.anatomic_dead_space_ml) + float(trial.apparatus_dead_space_ml or 0.0)
         return (f"the trial VT {float(trial.vt_ml or 0):g} mL does not exceed the series dead space (about {vds:.0f} mL "
                 f"incl. apparatus): no alveolar ventilation; choose a larger VT")
@@ -448,6 +463,7 @@ def with_course_model_error(values, factors):
     start, end = values[:, :1], values[:, -1:]
     change = end - start
     with np.errstate(invalid="ignore", divide="ignore"):
+        # Below 0.5 (the values' unit) a course has no change to measure progress by (as time_to_fraction).
         progress = np.where(np.abs(change) >= 0.5, np.clip((values - start) / change, 0.0, 1.0), 1.0)
     return values * factors[:, None] ** progress
 

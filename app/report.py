@@ -18,7 +18,7 @@ from pathlib import Path
 
 from . import CAUTION, version
 from .casefile import write_atomic
-from .engine import RECHECK_NOTE, settings_text
+from .engine import PARAMETER_LABELS, RECHECK_NOTE, settings_text
 
 #: Course columns of the CSV export: (key in the forecast's course, header with its unit).
 COURSE_COLUMNS = (("minutes", "minutes [min]"), ("pao2_mmhg", "PaO2 [mmHg]"), ("pao2_low", "PaO2 likely low [mmHg]"),
@@ -154,18 +154,12 @@ def report_html(case: dict, forecasts: dict, plan: dict | None = None, generated
     h.append("<h2>Lung fit</h2>")
     h.append(f"<p>{escape(fit['message'])}</p><table border='1' cellspacing='0' cellpadding='3'>"
              "<tr><th>parameter</th><th>estimate</th><th>likely range (90 %)</th></tr>")
-    names = {"shunt_fixed": "shunt (not recruitable)", "recruitable": "recruitable lung", "log_sd": "V/Q mismatch (log SD)",
-             "dead_space_fraction": "alveolar dead space", "vco2": "VCO2 [mL/min]", "vo2": "VO2 [mL/min]",
-             "cardiac_output_ref": "cardiac output at mean Paw 10 cmH2O [L/min]", "c_max": "compliance [mL/cmH2O]",
-             "resistance": "resistance [cmH2O/L/s]", "base_excess": "base excess [mmol/L]",
-             "rq": "respiratory quotient (VCO2/VO2)", "anatomic_dead_space": "series dead space below the Y-piece [mL]",
-             "inflection": "upper inflection pressure [cmH2O]",
-             "overdistension_dead_space": "dead space of overdistended lung",
-             "low_vq_fraction": "low-V/Q mode (share of blood flow)"}
     estimates = first.get("estimates") or {}
     for key, (lo, hi) in fit["likely_range"].items():
         est = estimates.get(key)
-        h.append(f"<tr><td>{escape(names.get(key, key))}</td><td>{_f(est, 3)}</td><td>{lo:.3g} to {hi:.3g}</td></tr>")
+        label, unit, _d = PARAMETER_LABELS[key]
+        name = f"{label} [{unit}]" if unit else label
+        h.append(f"<tr><td>{escape(name)}</td><td>{_f(est, 3)}</td><td>{lo:.3g} to {hi:.3g}</td></tr>")
     h.append("</table>")
     if fit["identifiability"]:
         h.append("<p>What the data cannot tell apart:</p><ul>" + "".join(f"<li>{escape(m)}</li>"

@@ -28,7 +28,7 @@ from ventcast.physiology.forecast import predict
 from . import CAUTION, MMHG_PER_KPA, version
 from .casefile import (CaseError, check_settings, load, load_demo, parse_json, read_text, validate,
                        write_atomic)
-from .engine import (RECHECK_NOTE, apply_sets, fit_case, forecast_fitted, limit_checks, model_assumptions, now_block,
+from .engine import (PARAMETER_LABELS, RECHECK_NOTE, apply_sets, fit_case, forecast_fitted, limit_checks, model_assumptions, now_block,
                      plan_case, settings_dict, settings_text, steady_block, to_settings, wean_case)
 from .report import SOURCES
 from .worker import EngineRunner
@@ -988,20 +988,10 @@ class MainWindow(QtWidgets.QMainWindow):
 
     def _show_fit(self):
         f = self.fit_result
-        names = {"shunt_fixed": ("shunt (not recruitable)", "", 2), "recruitable": ("recruitable lung", "", 2),
-                 "log_sd": ("V/Q mismatch (log SD)", "", 2), "dead_space_fraction": ("alveolar dead space", "", 2),
-                 "vco2": ("VCO2", "mL/min", 0), "vo2": ("VO2", "mL/min", 0),
-                 "cardiac_output_ref": ("cardiac output at mean Paw 10 cmH2O", "L/min", 1),
-                 "c_max": ("compliance of aerated lung", "mL/cmH2O", 0), "resistance": ("resistance", "cmH2O/L/s", 1),
-                 "base_excess": ("base excess", "mmol/L", 1), "rq": ("respiratory quotient (VCO2/VO2)", "", 2),
-                 "anatomic_dead_space": ("series dead space below the Y-piece", "mL", 0),
-                 "inflection": ("upper inflection pressure", "cmH2O", 0),
-                 "overdistension_dead_space": ("dead space of overdistended lung", "", 2),
-                 "low_vq_fraction": ("low-V/Q mode (share of blood flow)", "", 2)}
-        rows = [n for n in f.free if n in names] + ["vco2"]
+        rows = list(f.free) + ["vco2"]
         self.fit_table.setRowCount(len(rows))
         for i, n in enumerate(rows):
-            label, unit, d = names[n]
+            label, unit, d = PARAMETER_LABELS[n]
             lo, hi = f.ranges[n]
             for j, text in enumerate((label, f"{f.estimates[n]:.{d}f} ({lo:.{d}f}\u2013{hi:.{d}f}) {unit}".strip())):
                 self.fit_table.setItem(i, j, QtWidgets.QTableWidgetItem(text))

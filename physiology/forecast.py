@@ -89,7 +89,7 @@ class Prediction:
     """A steady-state forecast: ``breathing`` (mechanics), ``gas`` (V/Q lung), and the couplings.
 
     success, message; shunt [fraction] and alveolar_dead_space [fraction] handed to the lung;
-    cardiac_output [L/min]; vt_per_kg_pbw [mL/kg].
+    cardiac_output [L/min]; vt_per_kg_pbw [mL/kg]; mixed_alveolar_pco2 [mmHg] (``gas.petco2`` is end-tidal).
     """
 
     success: np.ndarray
@@ -100,9 +100,9 @@ class Prediction:
     alveolar_dead_space: np.ndarray
     cardiac_output: np.ndarray
     vt_per_kg_pbw: np.ndarray
-    mixed_alveolar_pco2: np.ndarray = None
-    settings: Settings = field(repr=False, default=None)
-    patient: PatientModel = field(repr=False, default=None)
+    mixed_alveolar_pco2: np.ndarray
+    settings: Settings = field(repr=False)
+    patient: PatientModel = field(repr=False)
 
 
 def _masked(result, ok):

@@ -12,7 +12,6 @@ import signal
 import struct
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -25,6 +24,7 @@ from ventcast.app.casefile import check_settings, load, load_demo  # noqa: E402
 from ventcast.app.engine import forecast_fitted, limit_checks, steady_block, to_settings  # noqa: E402
 from ventcast.app import window as win  # noqa: E402
 from ventcast.physiology.forecast import predict  # noqa: E402
+from heartbeat import rapid_peep_values, start_heartbeat  # noqa: E402  (tests/benchmarks, see conftest)
 
 ROOT = Path(__file__).resolve().parents[1]
 WAIT_MS = 120_000
@@ -266,21 +266,8 @@ def test_rapid_changes_never_block_and_the_newest_wins(window, qtbot, monkeypatc
         return submit(kind, run)
 
     monkeypatch.setattr(window.runner, "submit", recording_submit)
-    gaps, last = [], [time.perf_counter()]
-
-    def beat():
-        t = time.perf_counter()
-        gaps.append(t - last[0])
-        last[0] = t
-
-    heartbeat = QtCore.QTimer()
-    heartbeat.setInterval(10)
-    heartbeat.timeout.connect(beat)
-    heartbeat.start()
-    rng = np.random.default_rng(0)
-    values = rng.integers(6, 16, 200).astype(float)
-    values[-1] = 13.0
-    for v in values:
+    heartbeat, gaps = start_heartbeat()
+    for v in rapid_peep_values():
         window.set_trial_value("peep_cmh2o", v)
         qtbot.wait(3)
     qtbot.waitUntil(lambda: window.last_band is not None

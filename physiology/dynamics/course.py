@@ -434,11 +434,10 @@ def _outputs(X, u):
     return out
 
 
-def time_to_fraction(minutes, values, start, end, fraction=0.9, min_change=0.5):
+def time_to_fraction(minutes, values, start, end, fraction=0.9):
     """First time after which ``values`` stay within (1 - fraction) of the change ``start -> end`` [min].
 
-    Returns 0 where the change is below ``min_change`` (in the values' unit; scalar or one per row)
-    and NaN if never reached.
+    Returns 0 where the change is below 0.5 (in the values' unit) and NaN if never reached.
     """
     minutes = np.asarray(minutes)
     values = np.atleast_2d(values)
@@ -447,9 +446,8 @@ def time_to_fraction(minutes, values, start, end, fraction=0.9, min_change=0.5):
     band = (1.0 - fraction) * np.abs(end - start)
     outside = np.abs(values - end) > band
     out = np.full(values.shape[0], np.nan)
-    min_change = np.broadcast_to(np.asarray(min_change, dtype=float), (values.shape[0],))
     for i in range(values.shape[0]):
-        if abs(float(end[i, 0] - start[i, 0])) < min_change[i]:
+        if abs(float(end[i, 0] - start[i, 0])) < 0.5:
             out[i] = 0.0
             continue
         idx = np.flatnonzero(outside[i])
@@ -585,14 +583,13 @@ def simulate(patient: PatientModel, settings_now: Settings, changes=(), minutes:
     sel = t_all >= t_ref
     end_pao2 = np.broadcast_to(np.atleast_1d(target.gas.pao2), (b,))
     end_paco2 = np.broadcast_to(np.atleast_1d(target.gas.paco2), (b,))
-    t90_o2 = time_to_fraction(t_all[sel] - t_ref, o["pao2"][:, sel], o["pao2"][:, sel][:, 0], end_pao2)
-    t90_co2 = time_to_fraction(t_all[sel] - t_ref, o["paco2"][:, sel], o["paco2"][:, sel][:, 0], end_paco2)
+    start_pao2, start_paco2 = o["pao2"][:, sel][:, 0], o["paco2"][:, sel][:, 0]
+    t90_o2 = time_to_fraction(t_all[sel] - t_ref, o["pao2"][:, sel], start_pao2, end_pao2)
+    t90_co2 = time_to_fraction(t_all[sel] - t_ref, o["paco2"][:, sel], start_paco2, end_paco2)
     # Re-check: only a change larger than the measurement error of the quantity can be seen in a blood
     # gas (physiology.measurement), so smaller drifts (e.g. a Haldane shift of PaCO2) do not set it.
-    seen_o2 = time_to_fraction(t_all[sel] - t_ref, o["pao2"][:, sel], o["pao2"][:, sel][:, 0], end_pao2,
-                               min_change=measurement_sd("pao2", end_pao2))
-    seen_co2 = time_to_fraction(t_all[sel] - t_ref, o["paco2"][:, sel], o["paco2"][:, sel][:, 0], end_paco2,
-                                min_change=measurement_sd("paco2", end_paco2))
+    seen_o2 = np.where(np.abs(end_pao2 - start_pao2) < measurement_sd("pao2", end_pao2), 0.0, t90_o2)
+    seen_co2 = np.where(np.abs(end_paco2 - start_paco2) < measurement_sd("paco2", end_paco2), 0.0, t90_co2)
     recheck = np.fmax(seen_o2, seen_co2)
     # CO2 balance over the course: stores + exhaled - produced.
     co2_err = _co2_balance(X_ends, t_all, u0, u, patient, seg_patient)

@@ -172,6 +172,11 @@ def waterfall_total_peep(peep, intrinsic_at_zeep, flow_limitation=1.0):
                     np.where(np.asarray(flow_limitation) <= 0.0, additive, blend))
 
 
+#: Reasons a breath fails because of the settings themselves (callers compare against these).
+BEYOND_CAPACITY = "the tidal volume does not fit into the aerated lung at this PEEP (beyond total capacity)"
+NO_ALVEOLAR_VENTILATION = "the tidal volume does not exceed the series dead space: no alveolar ventilation"
+
+
 _MECH_LIMITS = {
     "resistance": (2.0, 60.0, "cmH2O/L/s"), "c_max": (5.0, 200.0, "mL/cmH2O"), "inflection": (8.0, 45.0, "cmH2O"),
     "width": (1.0, 20.0, "cmH2O"), "recruitable": (0.0, 0.7, ""), "mu_open": (5.0, 45.0, "cmH2O"),
@@ -338,7 +343,7 @@ def breathe(settings: Settings, mechanics: Mechanics, pbw_kg=None, max_iter: int
     reasons = np.full(n, "", dtype=object)
     reasons[~converged] = "the mechanics did not settle within the iteration limit"
     too_big = ~np.isfinite(pplat)
-    reasons[too_big] = "the tidal volume does not fit into the aerated lung at this PEEP (beyond total capacity)"
+    reasons[too_big] = BEYOND_CAPACITY
     # Arrays may hold inf/NaN for failed cases; they are masked below.
     err = np.seterr(invalid="ignore", divide="ignore", over="ignore")
     driving = pplat - peep_tot
@@ -367,7 +372,7 @@ def breathe(settings: Settings, mechanics: Mechanics, pbw_kg=None, max_iter: int
     series = b["rr"] * vds_ml / 1000.0
     va = ve - series
     no_alveolar = converged & ~too_big & (va <= 0.05)
-    reasons[no_alveolar] = "the tidal volume does not exceed the series dead space: no alveolar ventilation"
+    reasons[no_alveolar] = NO_ALVEOLAR_VENTILATION
     ok = (reasons == "")
     nan = np.where(ok, 1.0, np.nan)
     np.seterr(**err)

@@ -212,7 +212,7 @@ def _hold(course) -> tuple:
     PaCO2 (rounded up, so never shorter) and :data:`HOLD_FLOOR_MIN`. NaN when the course failed."""
     if not bool(np.all(course.success)):
         return np.nan, "the time course could not be computed: hold per local protocol"
-    t90 = float(np.nanmax([course.t90_pao2, course.t90_paco2, course.recheck_after_min]))
+    t90 = float(np.nanmax([course.t90_pao2, course.t90_paco2]))  # the re-check time is never later
     model = float(np.ceil(t90 * 10.0) / 10.0)
     if model >= HOLD_FLOOR_MIN:
         return float(np.ceil(t90)), f"90 % of the change takes {model:.1f} min in the model"

@@ -278,7 +278,7 @@ def _event_loop_gap_ms(app) -> float:
     """Longest gap between the ticks of a 10 ms QTimer while 200 rapid PEEP changes are forecast on the
     worker thread (steady, course and likely range drawn for the last): how long the window stops
     answering. Target: under 100 ms (the architecture's "nothing blocks the event loop")."""
-    import numpy as np
+    from heartbeat import rapid_peep_values, start_heartbeat
     from PySide6 import QtCore
 
     from ventcast.app.casefile import load_demo
@@ -298,20 +298,8 @@ def _event_loop_gap_ms(app) -> float:
         if time.perf_counter() > deadline:
             raise RuntimeError("the window did not show its first likely range within 120 s")
         wait(20)
-    gaps, last = [], [time.perf_counter()]
-
-    def beat():
-        t = time.perf_counter()
-        gaps.append(t - last[0])
-        last[0] = t
-
-    heartbeat = QtCore.QTimer()
-    heartbeat.setInterval(10)
-    heartbeat.timeout.connect(beat)
-    heartbeat.start()
-    values = np.random.default_rng(0).integers(6, 16, 200).astype(float)
-    values[-1] = 13.0
-    for v in values:
+    heartbeat, gaps = start_heartbeat()
+    for v in rapid_peep_values():
         w.set_trial_value("peep_cmh2o", v)
         wait(3)
     deadline = time.perf_counter() + 120.0
