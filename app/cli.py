@@ -71,8 +71,9 @@ def _cmd_demo(args) -> int:
         return EXIT_OK
     for name, item in summary.items():
         print(f"{name}: {item['label']}")
+        width = max(len(row[0]) for row in BEDSIDE_ROWS)
         for title, key, unit, digits in BEDSIDE_ROWS:
-            print(f"  {title:<22} {_fmt(item['bedside'][key], digits):>9} {unit}")
+            print(f"  {title:<{width}} {_fmt(item['bedside'][key], digits):>9} {unit}")
         print()
     print("Bedside indices of each demo case's latest observation; forecasts arrive with the model fit.")
     print(CAUTION)
@@ -122,7 +123,8 @@ def _cmd_predict(args) -> int:
           f"{f['cardiac_output_l_min']:.1f} L/min ({f['message']})")
     print("Model assumes: " + "; ".join(f["assumptions"]))
     print()
-    print(f"{'Forecast (steady state)':<24} {'value':>9}  likely range (90 %)")
+    width = max(len(row[0]) for row in STEADY_ROWS)
+    print(f"{'Forecast (steady state)':<{width + 2}} {'value':>9}  likely range (90 %)")
     rng = out["likely_range"]
     for title, key, unit, d in STEADY_ROWS:
         band = ""
@@ -130,7 +132,7 @@ def _cmd_predict(args) -> int:
         if short:
             lo, hi = rng[short]
             band = f"{lo:.{d}f} to {hi:.{d}f}"
-        print(f"  {title:<22} {_num(out['steady'][key], d):>9} {unit:<9} {band}")
+        print(f"  {title:<{width}} {_num(out['steady'][key], d):>9} {unit:<9} {band}")
     if out["settings"] == out.get("current_settings"):
         print("\nThe trial equals the current settings: no change is expected.")
     elif out.get("recheck_after_min") is not None:
