@@ -122,11 +122,15 @@ def _masked(result, ok):
     return replace(result, **changes)
 
 
-def predict(patient: PatientModel, settings: Settings) -> Prediction:
+def predict(patient: PatientModel, settings: Settings, start: dict | None = None,
+            tol: float = 1e-4) -> Prediction:
     """Steady-state mechanics and blood gases for ``settings`` in ``patient`` (batched).
 
     A case fails (``success`` False, NaN numbers, a reason in ``message``) when its mechanics do
     not settle, the tidal volume does not fit, or the lung has no physiological steady state.
+    ``start``: a Newton starting state for the lung (:func:`physiology.gasexchange.compartments.warm_start`
+    of an earlier prediction's ``gas`` with the same batch shape); it changes the work, not the answer.
+    ``tol``: the lung solver's Newton-step tolerance (:func:`physiology.gasexchange.compartments.solve_steady_state`).
     """
     br = breathe(settings, patient.mechanics, pbw_kg=patient.pbw_kg)
     recruitable = np.asarray(patient.mechanics.recruitable, dtype=float)
@@ -146,7 +150,7 @@ def predict(patient: PatientModel, settings: Settings) -> Prediction:
         hb=patient.hb, temperature=patient.temperature, barometric=patient.barometric,
         base_excess=patient.base_excess, series_ventilation=np.nan_to_num(br.series_ventilation, nan=0.0),
     )
-    gas = solve_steady_state(lung)
+    gas = solve_steady_state(lung, tol=tol, start=start)
     # End-tidal PCO2: the engine gives the mixed alveolar PCO2 (alveolar dead space included); end-tidal
     # gas sits between it and the arterial by the patient's end-tidal share.
     mixed_alveolar = gas.petco2

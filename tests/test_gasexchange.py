@@ -159,6 +159,71 @@ def test_bad_input(kw, needle):
         solve_steady_state(LungParameters(**{**HOMOGENEOUS, **kw}))
 
 
+def _random_lungs(n, seed):
+    """Random cases over the solver's domain, a low-V/Q mode in 40 % of them."""
+    rng = np.random.default_rng(seed)
+    return dict(shunt=rng.uniform(0, 0.5, n), log_sd=rng.uniform(0.05, 2.3, n), alveolar_ventilation=rng.uniform(2, 12, n),
+                cardiac_output=rng.uniform(2.5, 9, n), fio2=rng.uniform(0.21, 1.0, n),
+                dead_space_fraction=rng.uniform(0, 0.6, n), vo2=rng.uniform(150, 400, n), vco2=rng.uniform(120, 350, n),
+                hb=rng.uniform(7, 16, n), low_vq_ratio=rng.uniform(0.02, 0.3, n),
+                low_vq_fraction=np.where(rng.uniform(size=n) < 0.4, rng.uniform(0, 0.5, n), 0.0))
+
+
+def test_warm_start_reaches_the_same_state_in_fewer_iterations():
+    """Started from the solution of nearby parameters (as the fit's sampler does), the solver reaches
+    the state it reaches from its standard guesses (within its own accuracy, about tol squared)."""
+    from ventcast.physiology.gasexchange.compartments import warm_start
+
+    cases = _random_lungs(300, 11)
+    before = solve_steady_state(LungParameters(**cases))
+    rng = np.random.default_rng(12)
+    moved = {k: np.clip(v * np.exp(0.03 * rng.standard_normal(v.size)), 0, None) for k, v in cases.items()}
+    moved["fio2"] = np.clip(moved["fio2"], 0.21, 1.0)
+    cold = solve_steady_state(LungParameters(**moved))
+    warm = solve_steady_state(LungParameters(**moved), start=warm_start(before))
+    assert np.array_equal(cold.success, warm.success) and cold.success.sum() > 200
+    ok = cold.success
+    for q in ("pao2", "paco2", "pvo2", "ph"):
+        assert np.max(np.abs(getattr(cold, q)[ok] - getattr(warm, q)[ok])) < 1e-6, q
+    # Fewer iterations: many more cases have settled after five.
+    from ventcast.physiology.gasexchange import compartments as c
+    a, _ = LungParameters(**moved).arrays()
+    settled_cold = np.sum(c._solve_arrays(a, 1e-4, 5)["ok"])
+    settled_warm = np.sum(c._solve_arrays(a, 1e-4, 5, warm_start(before))["ok"])
+    assert settled_warm > 2 * settled_cold, (settled_warm, settled_cold)
+    with pytest.raises(ValueError, match="warm start has 300 cases for a batch of 2"):
+        solve_steady_state(LungParameters(**{k: v[:2] for k, v in moved.items()}), start=warm_start(before))
+
+
+def test_active_set_passes_equal_one_pass():
+    """Cases left unsettled by a pass continue from their last iterate: the same states as one pass that
+    carries every case to the last iteration."""
+    from ventcast.physiology.gasexchange import compartments as c
+
+    a, _ = LungParameters(**_random_lungs(400, 13)).arrays()
+    passes = c._solve_batch(a, 1e-4, 80, None)
+    one = c._solve_batch(a, 1e-4, 80, None, settle=1.0)
+    assert np.array_equal(passes["ok"], one["ok"]) and passes["ok"].sum() > 300
+    ok = passes["ok"]
+    assert np.max(np.abs(passes["pao2"][ok] - one["pao2"][ok])) < 1e-6
+    assert np.max(np.abs(passes["paco2"][ok] - one["paco2"][ok])) < 1e-6
+
+
+def test_sampler_tolerance_moves_the_gases_by_under_one_percent_of_their_sd():
+    """The fit's sampler solves to SAMPLER_TOL: over 4,000 random cases of the domain its blood gases
+    differ from the default tolerance's by under 1 % of the smallest measurement SD of each
+    (physiology.measurement: PaO2 2 mmHg, PaCO2 1.5 mmHg, pH 0.01)."""
+    from ventcast.physiology.fitting.fit import SAMPLER_TOL
+    from ventcast.physiology.measurement import SD
+
+    cases = LungParameters(**_random_lungs(4000, 5))
+    exact, loose = solve_steady_state(cases), solve_steady_state(cases, tol=SAMPLER_TOL)
+    assert np.array_equal(exact.success, loose.success)
+    ok = exact.success
+    for q in ("pao2", "paco2", "ph"):
+        assert np.max(np.abs(getattr(exact, q)[ok] - getattr(loose, q)[ok])) < 0.01 * SD[q][0], q
+
+
 @pytest.mark.slow
 def test_fast_solver_matches_the_reference_solver():
     """Fast solver against the per-unit fsolve reference on 200 random cases: within 0.1 mmHg."""

@@ -57,7 +57,7 @@ from ..bloodgas.oxygen import _SEV_A, _SEV_B, HUFNER_DEFAULT, O2_SOLUBILITY, _el
 from .alveolar import btps_factor, water_vapour_pressure_antoine
 
 __all__ = ["LungParameters", "SteadyState", "solve_steady_state", "DOMAIN",
-           "N_MAIN_UNITS", "N_HIGH_UNITS", "blood_chemistry", "invert_contents"]
+           "N_MAIN_UNITS", "N_HIGH_UNITS", "blood_chemistry", "invert_contents", "warm_start"]
 
 N_MAIN_UNITS = 50
 N_HIGH_UNITS = 20
@@ -405,12 +405,18 @@ def _distribution(a):
     return vq, weights, perfusion, perfusion * vq
 
 
-def _solve_arrays(a: dict, tol: float, max_iter: int) -> dict:
+def _solve_arrays(a: dict, tol: float, max_iter: int, start: dict | None = None, settle: float = 1.0) -> dict:
     """Solve one chunk of validated, broadcast inputs; return per-case arrays.
 
     Work arrays have N + 2 columns: the N units, then the arterial and the mixed-venous
     blood, whose PO2/PCO2 are found by inverting their contents inside the same Newton
     loop (so one content evaluation per iteration serves all three jobs).
+
+    ``start`` (optional) holds a Newton state to start from instead of the standard guesses:
+    ``p``, ``c`` (n, N + 2) [mmHg], ``cvo2``, ``cvco2`` (n,) [mL/dL]; rows with any non-finite
+    value start from the standard guesses. The returned ``"_state"`` is the last iterate in that
+    form (a case not yet converged can be continued from it). The loop stops when every case
+    has settled (converged or failed), or, with ``settle`` below 1, once that share of them has.
     """
     n = a["fio2"].shape[0]
     t = a["temperature"]
@@ -457,7 +463,17 @@ def _solve_arrays(a: dict, tol: float, max_iter: int) -> dict:
     cu = np.maximum(cu, 0.5)
     p = np.concatenate([pu, np.sum(w * pu, axis=1, keepdims=True), pv_o2], axis=1)
     c = np.concatenate([cu, np.sum(w * cu, axis=1, keepdims=True), pv_co2], axis=1)
-    s_lag = np.full_like(p, 0.9)
+    if start is not None and start["p"].shape == p.shape:
+        warm = (np.all(np.isfinite(start["p"]) & (start["p"] > 0), axis=1)
+                & np.all(np.isfinite(start["c"]) & (start["c"] > 0), axis=1)
+                & np.isfinite(start["cvo2"]) & np.isfinite(start["cvco2"]))
+        p = np.where(warm[:, None], start["p"], p)
+        c = np.where(warm[:, None], start["c"], c)
+        cvo2 = np.where(warm, start["cvo2"], cvo2)
+        cvco2 = np.where(warm, start["cvco2"], cvco2)
+        s_lag = np.where(warm[:, None], blood.saturation_guess(p, c), 0.9)
+    else:
+        s_lag = np.full_like(p, 0.9)
     p_cap = np.concatenate([np.broadcast_to(pio2 + 1.0, pu.shape),
                             np.broadcast_to(pio2 + 1.0, (n, 2))], axis=1)
 
@@ -551,18 +567,20 @@ def _solve_arrays(a: dict, tol: float, max_iter: int) -> dict:
         bad_numbers = ~(np.isfinite(step) & np.isfinite(step_v))
         # Stop after a full Newton step below tol: in the quadratic regime the state it reaches is
         # accurate to about tol squared.
-        converged = full_step & (step < tol) & (step_v < tol) & (ds < 1e-4) & ~bad_numbers
+        converged = full_step & (step < tol) & (step_v < tol) & (ds < max(1e-4, tol)) & ~bad_numbers
         # Mixed-venous O2 content driven towards zero (below 2 % saturation-equivalent) for three
         # iterations running: VO2 cannot be delivered, there is no physiological steady state.
         collapse_count = np.where(cvo2 < 0.02 * blood.cap[:, 0], collapse_count + 1, 0)
         collapsed = collapse_count >= 3
-        if np.all(converged | bad_numbers | collapsed):
+        done = converged | bad_numbers | collapsed
+        if np.all(done) or (settle < 1.0 and np.mean(done) >= settle):
             break
 
     # The accepted state is the one reached by the last (small, full) Newton step. The residuals
     # at its start must be small too: the safeguarded steps must not hide a non-solution.
     (p, c, cvo2, cvco2, resid, dpu, dcu, dv1, dv2,
      uo2p, uo2c, uco2p, uco2c, b11, b12, b21, b22) = state
+    last_iterate = {"p": p, "c": c, "cvo2": cvo2, "cvco2": cvco2}
     converged &= resid < 1e-3
     # Contents at the accepted state, to first order from the last derivatives (error ~ step^2).
     uo2 = o2[:, :nu] + uo2p * dpu + uo2c * dcu
@@ -619,13 +637,15 @@ def _solve_arrays(a: dict, tol: float, max_iter: int) -> dict:
         "shunt": shunt, "venous_admixture": admixture, "overall_vq": va / a["cardiac_output"],
         "fio2": f, "alveolar_po2": pa_ideal, "o2_uptake": o2_uptake, "co2_output": co2_output,
         "unit_vq": vq, "unit_ventilation": ventilation, "unit_perfusion": perfusion,
-        "unit_po2": p[:, :nu], "unit_pco2": cu,
+        "unit_po2": p[:, :nu], "unit_pco2": cu, "_state": last_iterate,
     }
 
 
 _NOT_CONVERGED = "did not converge within the iteration limit"
-#: Iteration budget of the first pass over a large batch (see solve_steady_state).
-FIRST_PASS_ITERATIONS = 8
+#: A pass of the Newton loop over a batch stops once this share of its cases has settled; the rest
+#: go on from their last iterate in a smaller batch (an active set: the settled cases are not carried
+#: through the iterations of the slowest, which matters when warm starts make most cases quick).
+SETTLE_SHARE = 0.9
 
 
 def _concatenate(parts: list) -> dict:
@@ -635,6 +655,11 @@ def _concatenate(parts: list) -> dict:
     for k in parts[0]:
         if k == "it":
             out[k] = max(pt["it"] for pt in parts)
+        elif k == "_state":
+            out[k] = {j: (np.concatenate([np.pad(pt[k][j], ((0, 0), (0, width + 2 - pt[k][j].shape[1])),
+                                                 constant_values=np.nan) for pt in parts])
+                          if parts[0][k][j].ndim == 2 else np.concatenate([pt[k][j] for pt in parts]))
+                      for j in parts[0][k]}
         elif parts[0][k].ndim == 2:
             out[k] = np.concatenate([np.pad(pt[k], ((0, 0), (0, width - pt[k].shape[1]))) for pt in parts])
         else:
@@ -642,12 +667,66 @@ def _concatenate(parts: list) -> dict:
     return out
 
 
+def _place(r: dict, rows, redo: dict) -> None:
+    """Write the results of a continued pass (``redo``, for ``rows`` of ``r``) into ``r``."""
+    for k, v in redo.items():
+        if k == "it":
+            continue
+        if k == "_state":
+            for j, x in v.items():
+                r[k][j][rows] = x if x.ndim == 1 else x[:, :r[k][j].shape[1]]
+            continue
+        r[k][rows] = v if v.ndim == 1 else v[:, :r[k].shape[1]]
+
+
+def _solve_batch(a: dict, tol: float, max_iter: int, start: dict | None, settle: float = SETTLE_SHARE) -> dict:
+    """Chunks of at most CHUNK cases, each pass stopping once ``settle`` of its cases have settled;
+    the unsettled ones continue together from their last iterate until ``max_iter`` iterations in all."""
+    n = a["fio2"].shape[0]
+
+    def run(sub, budget, st):
+        m = sub["fio2"].shape[0]
+        parts = [_solve_arrays({k: v[lo:lo + CHUNK] for k, v in sub.items()}, tol, budget,
+                               None if st is None else {k: v[lo:lo + CHUNK] for k, v in st.items()}, settle)
+                 for lo in range(0, m, CHUNK)]
+        return parts[0] if len(parts) == 1 else _concatenate(parts)
+
+    r = run(a, max_iter, start)
+    used = int(r["it"])
+    while used < max_iter:
+        st = r["_state"]
+        # A case whose numbers broke down (non-finite iterate) has failed for good; a case whose state
+        # cannot be continued (another unit count) starts again from the standard guesses.
+        finite = np.isfinite(st["cvo2"]) & np.isfinite(st["cvco2"])
+        again = np.flatnonzero((r["reasons"] == _NOT_CONVERGED) & finite)
+        if not again.size:
+            break
+        redo = run({k: v[again] for k, v in a.items()}, max_iter - used, {k: v[again] for k, v in st.items()})
+        used += int(redo["it"])
+        _place(r, again, redo)
+    r["it"] = np.int64(used)
+    return r
+
+
+def warm_start(previous: "SteadyState") -> dict:
+    """A Newton starting state from an earlier solution of a batch of the same shape (for
+    :func:`solve_steady_state`'s ``start``): unit, arterial and mixed-venous gas tensions and the
+    mixed-venous contents. Failed cases (NaN) start from the standard guesses."""
+    unit_p, unit_c = np.atleast_2d(previous.unit_po2), np.atleast_2d(previous.unit_pco2)
+    col = lambda x: np.atleast_1d(np.asarray(x, dtype=float))[:, None]  # noqa: E731
+    return {"p": np.concatenate([unit_p, col(previous.pao2), col(previous.pvo2)], axis=1),
+            "c": np.concatenate([unit_c, col(previous.paco2), col(previous.pvco2)], axis=1),
+            "cvo2": np.atleast_1d(np.asarray(previous.cvo2, dtype=float)),
+            "cvco2": np.atleast_1d(np.asarray(previous.cvco2, dtype=float))}
+
+
 #: Cases per chunk: keeps the (chunk x units) work arrays cache-sized and lets a chunk whose
 #: cases have all converged stop early.
 CHUNK = 512
 
 
-def solve_steady_state(params: LungParameters, tol: float = 1e-4, max_iter: int = 80) -> SteadyState:
+def solve_steady_state(params: LungParameters, tol: float = 1e-4, max_iter: int = 80,
+                       start: dict | None = None) -> SteadyState:
     """Solve the V/Q lung and body to steady state for one case or a batch.
 
     Parameters
@@ -660,6 +739,10 @@ def solve_steady_state(params: LungParameters, tol: float = 1e-4, max_iter: int 
         quadratic regime the state reached is accurate to about ``tol**2``.
     max_iter : int
         Newton iteration limit; a case that has not converged by then fails.
+    start : dict, optional
+        Newton starting state from :func:`warm_start` of an earlier solution with the same batch
+        shape and units (e.g. the current draws of a sampler, whose proposals lie close): the same
+        solution is reached, to the accuracy above, in fewer iterations.
 
     Returns
     -------
@@ -669,31 +752,9 @@ def solve_steady_state(params: LungParameters, tol: float = 1e-4, max_iter: int 
     """
     a, shape = params.arrays()
     n = a["fio2"].shape[0]
-    if n <= CHUNK:
-        parts = [_solve_arrays(a, tol, max_iter)]
-        r = parts[0]
-    else:
-        # First pass with a short iteration budget; the few cases it leaves unconverged are solved
-        # again, together, with the full budget (cheaper than carrying every chunk to its slowest case).
-        first = min(FIRST_PASS_ITERATIONS, max_iter)
-        parts = [_solve_arrays({k: v[lo:lo + CHUNK] for k, v in a.items()}, tol, first)
-                 for lo in range(0, n, CHUNK)]
-        r = _concatenate(parts)
-        again = np.flatnonzero(r["reasons"] == _NOT_CONVERGED)
-        if again.size and max_iter > first:
-            sub = {k: v[again] for k, v in a.items()}
-            redo = _concatenate([_solve_arrays({k: v[lo:lo + CHUNK] for k, v in sub.items()}, tol, max_iter)
-                                 for lo in range(0, again.size, CHUNK)])
-            width = max(r["unit_vq"].shape[1], redo["unit_vq"].shape[1])
-            for k, v in redo.items():
-                if k == "it":
-                    r["it"] = max(r["it"], v)
-                    continue
-                if v.ndim == 2 and r[k].shape[1] < width:
-                    r[k] = np.pad(r[k], ((0, 0), (0, width - r[k].shape[1])))
-                if v.ndim == 2 and v.shape[1] < width:
-                    v = np.pad(v, ((0, 0), (0, width - v.shape[1])))
-                r[k][again] = v
+    if start is not None and np.atleast_1d(start["cvo2"]).shape[0] != n:
+        raise ValueError(f"warm start has {np.atleast_1d(start['cvo2']).shape[0]} cases for a batch of {n}")
+    r = _solve_batch(a, tol, max_iter, start)
     ok, reasons, it = r["ok"], r["reasons"], r["it"]
     safe = np.where(ok, 1.0, np.nan)
     n_fail = int(np.sum(~ok))
