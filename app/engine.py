@@ -8,11 +8,13 @@ from __future__ import annotations
 
 import math
 import re
+import threading
+from collections import OrderedDict
 
 import numpy as np
 
 from ventcast.physiology.dynamics.course import simulate
-from ventcast.physiology.fitting.fit import (Observation, Patient, fit, likely_range, measured_at,
+from ventcast.physiology.fitting.fit import (Observation, Patient, fit, likely_range, measured_at, sample_posterior,
                                              model_error_factors, next_best_measurement)
 from ventcast.physiology.fitting.priors import CONDITION_LABELS, structure
 from ventcast.physiology.forecast import predict
@@ -117,16 +119,75 @@ def _f(x):
     return None if not math.isfinite(x) else x
 
 
-def fit_case(case: dict):
+#: Complete fits already made in this process, newest last. A fit is a pure function of the patient,
+#: the observations, the number of draws and the seed, so the same inputs (a case opened again, an undo
+#: back to the same data) give the same result at once instead of after the sampler.
+FIT_MEMO_SIZE = 8
+_FITS: OrderedDict = OrderedDict()
+_FITS_LOCK = threading.Lock()
+
+
+def _remembered(key):
+    with _FITS_LOCK:
+        hit = _FITS.get(key)
+        if hit is not None:
+            _FITS.move_to_end(key)
+        return hit
+
+
+def _remember(key, result) -> None:
+    if not (result.sampled and result.success):
+        return
+    with _FITS_LOCK:
+        _FITS[key] = result
+        _FITS.move_to_end(key)
+        while len(_FITS) > FIT_MEMO_SIZE:
+            _FITS.popitem(last=False)
+
+
+def _fit_key(patient, observations, n_draws=200, seed=0):
+    key = (patient, tuple(observations), n_draws, seed)
+    try:
+        hash(key)
+    except TypeError:  # a value that cannot be a key (never expected from a checked case): no memo
+        return None
+    return key
+
+
+def fit_case(case: dict, sample: bool = True):
+    """Fit the case's observations: (patient, observations, FitResult). ``sample=False`` gives the
+    estimate alone (no draws or ranges yet; complete it with :func:`sample_fit`), unless the same
+    inputs were fitted completely before in this process."""
     patient = to_patient(case)
     observations = to_observations(case)
+    key = _fit_key(patient, observations)
+    result = _remembered(key) if key is not None else None
+    if result is not None:
+        return patient, observations, result
     try:
-        result = fit(patient, observations)
+        result = fit(patient, observations, sample=sample)
     except ValueError as exc:
         raise CaseError("observations", str(exc)) from None
     if not result.success:
         raise ModelError(result.message)
+    if key is not None:
+        _remember(key, result)
     return patient, observations, result
+
+
+def sample_fit(result):
+    """The posterior draws of a fit made with ``sample=False`` (:func:`physiology.fitting.fit.sample_posterior`);
+    a sampler that cannot finish is a :class:`ModelError`, as in :func:`fit_case`."""
+    key = _fit_key(result.patient, result.observations, result.n_draws, result.seed)
+    done = _remembered(key) if key is not None else None
+    if done is not None:
+        return done
+    result = sample_posterior(result)
+    if not result.success:
+        raise ModelError(result.message)
+    if key is not None:
+        _remember(key, result)
+    return result
 
 
 def fit_block(result, current: Settings) -> dict:
@@ -361,16 +422,21 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
             raise CaseError("trial settings", refusal)
         raise ModelError(f"no steady state at the trial settings: {pred.message}")
     steady = steady_block(pred)
-    ranges, _table, ok_share = likely_range(result, trial)
+    if with_band and not result.sampled:
+        raise ValueError("the course's likely range needs the fit's posterior draws (sample_posterior)")
     out = {
         "settings": trial_dict,
         "current_settings": check_settings("settings", dict(case["settings"]), float(result.patient.pbw_kg)),
         "now": now_block(case),
         "fit": fit_block(result, current),
         "steady": steady,
-        "likely_range": {"pao2_mmhg": list(ranges["pao2"]), "paco2_mmhg": list(ranges["paco2"]),
-                         "ph": list(ranges["ph"]), "sao2": list(ranges["sao2"])},
+        "likely_range": None,
     }
+    ok_share = 1.0
+    if result.sampled:  # a fit shown before its draws (the window's first forecast) has no range yet
+        ranges, _table, ok_share = likely_range(result, trial)
+        out["likely_range"] = {"pao2_mmhg": list(ranges["pao2"]), "paco2_mmhg": list(ranges["paco2"]),
+                               "ph": list(ranges["ph"]), "sao2": list(ranges["sao2"])}
     alerts = limit_alerts(steady, case.get("goals"))
     if ok_share < 0.95:
         alerts.append({"code": "range_incomplete", "severity": "caution",

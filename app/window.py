@@ -28,8 +28,8 @@ from ventcast.physiology.forecast import predict
 from . import CAUTION, MMHG_PER_KPA, version
 from .casefile import (CaseError, check_settings, load, load_demo, parse_json, read_text, validate,
                        write_atomic)
-from .engine import (PARAMETER_LABELS, RECHECK_NOTE, apply_sets, fit_case, forecast_fitted, limit_checks, model_assumptions, now_block,
-                     plan_case, settings_dict, settings_text, steady_block, to_settings, wean_case)
+from .engine import (PARAMETER_LABELS, RECHECK_NOTE, apply_sets, fit_case, forecast_fitted, limit_checks, model_assumptions,
+                     now_block, plan_case, sample_fit, settings_dict, settings_text, steady_block, to_settings, wean_case)
 from .report import SOURCES
 from .worker import EngineRunner
 
@@ -583,19 +583,19 @@ class MainWindow(QtWidgets.QMainWindow):
         return w
 
     def find_options(self):
-        if self.fit_result is None:
-            self.status.setText("\u2716 the lung model is not fitted yet")
+        result = self._fitted_for("search for options")
+        if result is None:
             return
-        case, result = copy.deepcopy(self.state.case), self.fit_result
+        case = copy.deepcopy(self.state.case)
         self.options_message.setText("searching...")
         self._start_busy(cancellable=True, kind="plan")
         self.runner.submit("plan", lambda: plan_case(case, result))
 
     def plan_step_down(self):
-        if self.fit_result is None:
-            self.status.setText("\u2716 the lung model is not fitted yet")
+        result = self._fitted_for("plan a step-down")
+        if result is None:
             return
-        case, result = copy.deepcopy(self.state.case), self.fit_result
+        case = copy.deepcopy(self.state.case)
         table = (None, "lower-peep", "higher-peep")[self.wean_table_choice.currentIndex()]
         fio2, peep = float(self.wean_fio2.value()), float(self.wean_peep.value())
         rr = float(self.spont_rr.value()) or None
@@ -736,9 +736,22 @@ class MainWindow(QtWidgets.QMainWindow):
 
     @staticmethod
     def _fit_work(case):
-        _patient, _obs, result = fit_case(case)
+        # The estimate alone first (a tenth of the time): its forecast is shown while the posterior
+        # draws, which give every likely range, are computed in a second job ("draws").
+        _patient, _obs, result = fit_case(case, sample=False)
         now = predict(result.model, to_settings(case["settings"]))
         return {"result": result, "now": now}
+
+    def _fitted_for(self, doing: str):
+        """The complete fit (with its draws) for ``doing``, or None after saying why there is none yet."""
+        if self.fit_result is None:
+            self.status.setText(f"\u2716 the lung model is not fitted yet: cannot {doing}")
+            return None
+        if not self.fit_result.sampled:
+            self.status.setText(f"\u2716 the fit's likely ranges are still being computed (a few seconds): "
+                                f"{doing} when they are shown")
+            return None
+        return self.fit_result
 
     def _fill_bedside(self):
         case = self.state.case
@@ -897,6 +910,7 @@ class MainWindow(QtWidgets.QMainWindow):
             trials = self._checked_trials()
         except CaseError as exc:
             self._on_failure(None, str(exc))
+            self._submit_draws()  # no forecast for a refused trial: the draws are still needed
             return
         case, result, active = copy.deepcopy(self.state.case), self.fit_result, self.state.active
         self.status.setText(f"forecasting Trial {active}...")
@@ -936,9 +950,18 @@ class MainWindow(QtWidgets.QMainWindow):
     # --- results ------------------------------------------------------------------------------------
     def _on_result(self, request, result):
         if request.kind == "fit":
-            self._stop_busy()
             self.fit_result = result["result"]
             self.now_prediction = result["now"]
+            self._show_fit()
+            # The draws start once the first forecast is on screen (they would slow it down); see
+            # _submit_draws.
+            self._draws_for = self.fit_result
+            self._request_forecast()
+        elif request.kind == "draws":
+            if result["estimate"] is not self.fit_result:
+                return  # draws of a fit that has since been replaced (another case, changed data)
+            self._stop_busy()
+            self.fit_result = result["result"]
             self._show_fit()
             self.fit_shown.emit(self.fit_result)
             self._request_forecast()
@@ -952,9 +975,14 @@ class MainWindow(QtWidgets.QMainWindow):
             self.last_forecast = result
             self.last_band = None
             self._show_forecast(result)
-            self.status.setText(f"Trial {result['active']}: course shown; computing its likely range...")
             self.forecast_shown.emit(result)
-            self._request_band(result)
+            self._submit_draws()
+            if self.fit_result is not None and self.fit_result.sampled:
+                self.status.setText(f"Trial {result['active']}: course shown; computing its likely range...")
+                self._request_band(result)
+            else:
+                self.status.setText(f"Trial {result['active']}: forecast from the fitted estimate shown; computing "
+                                    f"the likely ranges (posterior draws)...")
         elif request.kind == "export":
             self._stop_busy()
             self._finish_export(result)
@@ -974,8 +1002,16 @@ class MainWindow(QtWidgets.QMainWindow):
             self.status.setText("forecast and likely range shown")
             self.band_shown.emit(result)
 
+    def _submit_draws(self):
+        """Start the posterior draws of the estimate shown (once), after its first forecast."""
+        estimate, self._draws_for = getattr(self, "_draws_for", None), None
+        if estimate is not None and estimate is self.fit_result:
+            self.runner.submit("draws", lambda: {"estimate": estimate, "result": sample_fit(estimate)})
+
     def _on_failure(self, request, message):
-        if request is not None and request.kind in ("fit", "plan", "wean", "export"):
+        if request is not None and request.kind in ("steady", "course"):
+            self._submit_draws()  # no first forecast at this trial: the draws are still needed
+        if request is not None and request.kind in ("fit", "draws", "plan", "wean", "export"):
             self._stop_busy()
         if request is not None and request.kind == "plan":
             self.options_message.setText(f"\u2716 {escape(message)}")
@@ -983,6 +1019,9 @@ class MainWindow(QtWidgets.QMainWindow):
             self.wean_message.setText(f"\u2716 {escape(message)}")
         if request is not None and request.kind == "fit":
             self.fit_message.setText(f"<b>The model could not be fitted:</b> {escape(message)}")
+        if request is not None and request.kind == "draws":
+            self.fit_message.setText(f"<b>No likely ranges:</b> {escape(message)}. The forecast shown is the fitted "
+                                     f"estimate alone; do not act on it without a range.")
         self.status.setText(f"\u2716 {message}")
         self.failure_shown.emit(message)
 
@@ -992,11 +1031,16 @@ class MainWindow(QtWidgets.QMainWindow):
         self.fit_table.setRowCount(len(rows))
         for i, n in enumerate(rows):
             label, unit, d = PARAMETER_LABELS[n]
-            lo, hi = f.ranges[n]
-            for j, text in enumerate((label, f"{f.estimates[n]:.{d}f} ({lo:.{d}f}\u2013{hi:.{d}f}) {unit}".strip())):
+            if n in f.ranges:
+                lo, hi = f.ranges[n]
+                value = f"{f.estimates[n]:.{d}f} ({lo:.{d}f}\u2013{hi:.{d}f}) {unit}"
+            else:
+                value = f"{f.estimates[n]:.{d}f} {unit} (range: computing...)"
+            for j, text in enumerate((label, value.strip())):
                 self.fit_table.setItem(i, j, QtWidgets.QTableWidgetItem(text))
         symbol = "\u2713" if f.success else "\u2716"
-        self.fit_message.setText(f"{symbol} {escape(f.message)}")
+        pending = "" if f.sampled else " (likely ranges: computing the posterior draws...)"
+        self.fit_message.setText(f"{symbol} {escape(f.message)}{pending}")
         parts = []
         if f.identifiability:
             parts.append("<b>What the data cannot tell apart:</b><br>" + "<br>".join(
@@ -1211,7 +1255,12 @@ class MainWindow(QtWidgets.QMainWindow):
         self.runner.cancel(kind)
         self._stop_busy()
         if kind == "fit":
-            self.fit_message.setText("\u2716 fit cancelled: no forecast is shown. Open the case again to fit it.")
+            self.runner.cancel("draws")
+            if self.fit_result is None:
+                self.fit_message.setText("\u2716 fit cancelled: no forecast is shown. Open the case again to fit it.")
+            else:
+                self.fit_message.setText("\u2716 likely ranges cancelled: the forecast shown is the fitted estimate "
+                                         "alone, with no range. Open the case again to compute them.")
         elif kind == "plan":
             self.options_message.setText("\u2716 search cancelled")
         elif kind == "wean":
@@ -1340,6 +1389,9 @@ class MainWindow(QtWidgets.QMainWindow):
         """Forecast every trial on the worker, then lay out the PDF (and CSVs) here; emits ``exported``."""
         if self.fit_result is None:
             self._on_failure(None, "the lung model is not fitted yet: nothing to report")
+            return
+        if not self.fit_result.sampled:
+            self._on_failure(None, "the fit's likely ranges are still being computed: export when they are shown")
             return
         from .casefile import check_output_file, check_output_files
         try:  # every output path is checked before any work, so that nothing is half-written
@@ -1512,6 +1564,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self.undo_stack.cleanChanged.disconnect(self._on_clean_changed)  # it fires while being destroyed
         self._drop_recovery()
         self.runner.cancel("fit")
+        self.runner.cancel("draws")
         self.runner.wait(60000)
         super().closeEvent(event)
 

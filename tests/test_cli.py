@@ -7,6 +7,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from ventcast.app import casefile
@@ -307,3 +308,28 @@ def test_a_peep_induced_paco2_rise_has_a_range_that_admits_no_change(capsys):
     out = json.loads(capsys.readouterr().out)
     lo, hi = out["likely_range"]["paco2_mmhg"]
     assert lo <= out["course"]["paco2_mmhg"][0] <= hi
+
+
+def test_a_fit_is_remembered_for_the_same_data_only():
+    """The same patient and observations give the same (identical) fit at once; any changed value, an
+    estimate-only fit completed later, or a new case gives its own."""
+    from ventcast.app import engine
+    from ventcast.physiology.fitting.fit import sample_posterior
+
+    case = casefile.load_demo("copd-trapping")
+    _p, _o, first = engine.fit_case(case)
+    _p, _o, again = engine.fit_case(copy.deepcopy(case))
+    assert again is first
+    changed = copy.deepcopy(case)
+    changed["observations"][-1]["paco2_mmhg"] += 1.0
+    _p, _o, other = engine.fit_case(changed)
+    assert other is not first and other.estimates != first.estimates
+    # an estimate-only fit of remembered data is the complete one; sample_fit of a new estimate stores it
+    _p, _o, estimate = engine.fit_case(case, sample=False)
+    assert estimate is first
+    engine._FITS.clear()
+    _p, _o, estimate = engine.fit_case(case, sample=False)
+    assert not estimate.sampled
+    done = engine.sample_fit(estimate)
+    assert np.array_equal(done.draws.shunt_fixed, sample_posterior(estimate).draws.shunt_fixed)
+    assert engine.fit_case(case)[2] is done

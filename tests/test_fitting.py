@@ -105,6 +105,24 @@ def test_sampler_that_cannot_finish_says_so(monkeypatch):
     assert "no likely range could be computed" in f.message and "did not reach the posterior" in f.message
 
 
+def test_estimate_first_then_the_same_draws():
+    """fit(sample=False) gives the estimate alone, refuses a likely range, and sample_posterior then gives
+    exactly the draws, ranges and message of fit(sample=True) with the same seed."""
+    from ventcast.physiology.fitting.fit import sample_posterior
+
+    obs = [observe(vc(0.5, 8)), observe(vc())]
+    whole = fit(PT, obs, seed=3)
+    first = fit(PT, obs, seed=3, sample=False)
+    assert not first.sampled and first.draws is None and first.ranges == {}
+    assert first.estimates == whole.estimates and first.message == whole.message
+    with pytest.raises(ValueError, match="posterior draws have not been computed"):
+        likely_range(first, vc(0.7, 12))
+    done = sample_posterior(first)
+    assert done.sampled and done.ranges == whole.ranges and done.message == whole.message
+    assert np.array_equal(done.draws.shunt_fixed, whole.draws.shunt_fixed)
+    assert sample_posterior(done) is done
+
+
 def test_sampler_reports_its_work():
     f = fit(PT, [observe(vc())])
     s = f.sampler

@@ -47,7 +47,7 @@ References
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy.optimize import least_squares
@@ -65,7 +65,7 @@ from ..measurement import SD
 from .priors import RQ_WARNING_RANGE, condition_priors, parameter_names, structure
 
 __all__ = ["Patient", "Observation", "FitResult", "fit", "check_observation", "InputError",
-           "PARAMETERS", "likely_range", "next_best_measurement", "population_defaults"]
+           "PARAMETERS", "likely_range", "sample_posterior", "next_best_measurement", "population_defaults"]
 
 
 class InputError(ValueError):
@@ -226,7 +226,8 @@ class FitResult:
     """Result of :func:`fit`.
 
     success, message; model : PatientModel at the MAP estimate; estimates : {name: value};
-    ranges : {name: (5th, 95th percentile)}; draws : PatientModel with arrays of draws;
+    ranges : {name: (5th, 95th percentile)}; draws : PatientModel with arrays of draws (None, and ranges
+    empty, until :func:`sample_posterior` has run on a fit made with ``sample=False``);
     z_hat, covariance : transformed-scale estimate and covariance; identifiability : list of messages;
     warnings : input warnings; residuals : {observation index: {quantity: standardised residual}};
     fitted : Prediction at the observations' settings; cost : final objective.
@@ -248,6 +249,13 @@ class FitResult:
     observations: tuple = field(repr=False)
     free: tuple = ()
     sampler: dict = field(default_factory=dict, repr=False)
+    n_draws: int = 200
+    seed: int = 0
+
+    @property
+    def sampled(self) -> bool:
+        """True once the posterior draws are computed (see :func:`sample_posterior`)."""
+        return self.draws is not None
 
 
 def _settings_batch(settings_list):
@@ -437,7 +445,8 @@ def _quantities(pred: Prediction) -> dict:
             "cardiac_output": np.atleast_1d(pred.cardiac_output)}
 
 
-def fit(patient: Patient, observations, n_draws: int = 200, seed: int = 0, max_nfev: int = 60) -> FitResult:
+def fit(patient: Patient, observations, n_draws: int = 200, seed: int = 0, max_nfev: int = 60,
+        sample: bool = True) -> FitResult:
     """Fit the patient model to one or more observations (see module notes).
 
     Parameters
@@ -450,6 +459,9 @@ def fit(patient: Patient, observations, n_draws: int = 200, seed: int = 0, max_n
         Seed of the draws (fits are reproducible).
     max_nfev : int
         Limit on Jacobian evaluations of the optimiser.
+    sample : bool
+        False: the estimate only (``draws`` None, no ranges), about a tenth of the time; complete it
+        with :func:`sample_posterior`.
     """
     observations = tuple(observations)
     if not observations:
@@ -499,18 +511,9 @@ def fit(patient: Patient, observations, n_draws: int = 200, seed: int = 0, max_n
     data_r = r[:n_data]
     values_hat = problem.values(sol.x[None, :])
     estimates = {n: float(v[0]) for n, v in values_hat.items()}
-    rng = np.random.default_rng(seed)
-    try:
-        Zd, sampler = _posterior_draws(problem, cov, n_draws, rng)
-        sampled = ""
-    except ArithmeticError as exc:  # no likely range can be given: say so, never a made-up one
-        Zd, sampled, sampler = np.repeat(sol.x[None, :], n_draws, axis=0), str(exc), {}
-    vd = problem.values(Zd)
-    ranges = {n: (float(np.percentile(vd[n], 5)), float(np.percentile(vd[n], 95))) for n in vd}
     if rq_warning(estimates["rq"]):
         warnings.append(rq_warning(estimates["rq"]))
     model = build_model(patient, {n: float(v[0]) for n, v in values_hat.items()}, problem.mean_paw_ref)
-    draws = build_model(patient, vd, problem.mean_paw_ref)
     ident = _identifiability(free, cov, problem.ps, observations)
     residuals = [dict() for _ in observations]
     for (i, q, _y, _sd), rr in zip(problem.keys, data_r):
@@ -524,18 +527,40 @@ def fit(patient: Patient, observations, n_draws: int = 200, seed: int = 0, max_n
                    f"{worst[1]} of observation {worst[0] + 1}, {'no steady state' if abs(worst[2]) >= 1e3 else f'{worst[2]:+.0f} SD'})")
     elif not converged:
         message = f"the fit did not converge: {sol.message}"
-    elif sampled:
-        converged = False
-        message = f"fitted, but no likely range could be computed: {sampled}"
     elif poor:
         message = "fitted, but the model does not reproduce " + ", ".join(
             f"{q} of observation {i + 1} ({v:+.1f} SD)" for i, q, v in poor)
     else:
         message = f"fitted {len(observations)} observation(s); every measurement reproduced within 3 SD"
-    return FitResult(success=converged, message=message, model=model, estimates=estimates, ranges=ranges,
-                     draws=draws, z_hat=sol.x, covariance=cov, identifiability=ident, warnings=warnings,
-                     residuals=residuals, cost=float(sol.cost), patient=patient, observations=observations,
-                     free=tuple(free), sampler=sampler)
+    result = FitResult(success=converged, message=message, model=model, estimates=estimates, ranges={},
+                       draws=None, z_hat=sol.x, covariance=cov, identifiability=ident, warnings=warnings,
+                       residuals=residuals, cost=float(sol.cost), patient=patient, observations=observations,
+                       free=tuple(free), sampler={}, n_draws=n_draws, seed=seed)
+    return sample_posterior(result) if sample else result
+
+
+def sample_posterior(result: FitResult) -> FitResult:
+    """The fit with its posterior draws and parameter ranges (:func:`_posterior_draws`), from a fit made
+    with ``sample=False`` (the estimate alone, shown first while the draws are computed). The same
+    seed gives the same draws as ``fit(..., sample=True)``. A sampler that cannot finish leaves
+    ``success`` False and says so in ``message``; the draws are then the estimate repeated."""
+    if result.draws is not None:
+        return result
+    patient = result.patient
+    problem = _Problem(patient, result.observations, result.free, {}, population_defaults(patient))
+    rng = np.random.default_rng(result.seed)
+    try:
+        Zd, sampler = _posterior_draws(problem, result.covariance, result.n_draws, rng)
+        sampled = ""
+    except ArithmeticError as exc:  # no likely range can be given: say so, never a made-up one
+        Zd, sampled, sampler = np.repeat(result.z_hat[None, :], result.n_draws, axis=0), str(exc), {}
+    vd = problem.values(Zd)
+    ranges = {n: (float(np.percentile(vd[n], 5)), float(np.percentile(vd[n], 95))) for n in vd}
+    success, message = result.success, result.message
+    if sampled and success:
+        success, message = False, f"fitted, but no likely range could be computed: {sampled}"
+    return replace(result, success=success, message=message, ranges=ranges, sampler=sampler,
+                   draws=build_model(patient, vd, problem.mean_paw_ref))
 
 
 #: Sequential Monte Carlo sampler: effective sample size kept at each tempering stage (share of the
@@ -794,8 +819,10 @@ def likely_range(fit_result: FitResult, settings: Settings, quantities=("pao2", 
     (there the fit reproduces the measurement; the structure error is that of a forecast elsewhere).
 
     Returns ``{quantity: (low, high)}``, the per-draw values (with model error), and the fraction of
-    draws with a steady state.
+    draws with a steady state. A fit without its draws yet (``sample=False``) is refused.
     """
+    if not fit_result.sampled:
+        raise ValueError("no likely range yet: the fit's posterior draws have not been computed (sample_posterior)")
     b = np.atleast_1d(fit_result.draws.shunt_fixed).size
     tiled = _tile_settings(settings, b)
     pred = predict(fit_result.draws, tiled)
