@@ -340,20 +340,24 @@ def test_first_forecast_comes_from_the_estimate_before_the_draws(qtbot, qapp):
     """The forecast from the fitted estimate is on screen before the posterior draws; until they come the
     fit table says its ranges are being computed, the compare table shows no range, options and
     step-down plans say to wait, and then the likely ranges and the course band follow."""
+    from ventcast.app import engine
+    engine._FITS.clear()  # a fit remembered from another test would come complete at once
     w = win.MainWindow(load_demo("ards-moderate"))
-    w.resize(1400, 900)
-    w.show()
-    with qtbot.waitSignal(w.forecast_shown, timeout=WAIT_MS) as first:
-        pass
-    assert not w.fit_result.sampled and first.args[0]["likely_range"] is None
-    assert "computing" in w.fit_table.item(0, 1).text() and "computing" in w.fit_message.text()
-    w.find_options()
-    assert "still being computed" in w.status.text()
-    with qtbot.waitSignal(w.band_shown, timeout=WAIT_MS):
-        pass
-    assert w.fit_result.sampled and w.last_forecast["likely_range"] is not None
-    assert "computing" not in w.fit_table.item(0, 1).text() and "\u2013" in w.fit_table.item(0, 1).text()
-    _close(w, qapp)
+    try:
+        w.resize(1400, 900)
+        w.show()
+        with qtbot.waitSignal(w.forecast_shown, timeout=WAIT_MS) as first:
+            pass
+        assert not w.fit_result.sampled and first.args[0]["likely_range"] is None
+        assert "computing" in w.fit_table.item(0, 1).text() and "computing" in w.fit_message.text()
+        w.find_options()
+        assert "still being computed" in w.status.text()
+        with qtbot.waitSignal(w.band_shown, timeout=WAIT_MS):
+            pass
+        assert w.fit_result.sampled and w.last_forecast["likely_range"] is not None
+        assert "computing" not in w.fit_table.item(0, 1).text() and "\u2013" in w.fit_table.item(0, 1).text()
+    finally:
+        _close(w, qapp)
 
 
 def test_fhir_import_adds_observations_to_an_unsaved_copy(window, qtbot):
