@@ -66,7 +66,7 @@ def test_wheel_installs_one_name(wheel):
     assert top == {"ventcast", f"{wheel.name.split('-')[0]}-{wheel.name.split('-')[1]}.dist-info"}, top
     assert "ventcast/__main__.py" in names
     assert "ventcast/physiology/gasexchange/compartments.py" in names
-    assert "ventcast/physiology/planning/search.py" in names and "ventcast/app/window.py" in names
+    assert "ventcast/physiology/planning/search.py" in names and "ventcast/app/window/main.py" in names
     assert not any(n.startswith("ventcast/app/_ventcast") for n in names)
     assert not any("screenshots" in n or "__pycache__" in n for n in names)
     entry_points = zipfile.ZipFile(wheel).read(next(n for n in names if n.endswith("entry_points.txt"))).decode()

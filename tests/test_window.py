@@ -137,7 +137,7 @@ def test_each_control_drives_a_forecast(window, qtbot, key, value):
     assert out["trial_settings"][key] == pytest.approx(value)
     expected = _expected(window, out["trial_settings"])
     assert out["steady"]["pao2_mmhg"] == pytest.approx(expected["steady"]["pao2_mmhg"], abs=1e-6)
-    row = [r[1] for r in window.COMPARE_ROWS].index("pao2_mmhg")
+    row = [r[1] for r in window.trial_panel.COMPARE_ROWS].index("pao2_mmhg")
     assert window.compare.item(row, 1).text().startswith(f"{expected['steady']['pao2_mmhg']:.0f}")
     if key == "fio2":
         assert expected["steady"]["pao2_mmhg"] > float(window.now_prediction.gas.pao2)
@@ -182,7 +182,7 @@ def test_three_trials_side_by_side(window, qtbot):
     out = _change(qtbot, window, "fio2", 0.8)
     assert out["active"] == "B"
     assert window.state.trials["A"]["peep_cmh2o"] == 14 and window.state.trials["B"]["fio2"] == 0.8
-    row = [r[1] for r in window.COMPARE_ROWS].index("pplat_cmh2o")
+    row = [r[1] for r in window.trial_panel.COMPARE_ROWS].index("pplat_cmh2o")
     a = steady_block(predict(window.fit_result.model, to_settings(window.state.trials["A"])))
     assert window.compare.item(row, 1).text() == f"{a['pplat_cmh2o']:.1f}"
     assert window.compare.item(row, 3).text() == "-"  # Trial C not started
@@ -210,6 +210,27 @@ def test_units_switch_to_kpa(window, qtbot):
     assert np.all((y > 0.5) & (y <= 1.0))
     window.kpa_action.setChecked(False)
     window.sao2_action.setChecked(False)
+
+
+def test_pao2_axis_reads_mmhg_after_the_saturation_view_twice(window, qtbot):
+    """Issue 17, item 2: after SaO2 and back (twice) the PaO2 axis still reads the course in mmHg (it read
+    65000-80000: pyqtgraph kept an SI-prefix scale of 1000 from the 0-1 SaO2 axis), and so does kPa."""
+    axis = window.plots["oxygen"].getAxis("left")
+    for _ in range(2):
+        window.sao2_action.setChecked(True)
+        window.sao2_action.setChecked(False)
+    assert axis.autoSIPrefixScale == 1.0 and axis.labelText.startswith("PaO2")
+    lo, hi = window.plots["oxygen"].getViewBox().viewRange()[1]
+    assert 40 <= lo < hi <= 200, (lo, hi)
+    ticks = [t for level in axis.tickValues(lo, hi, 400) for t in level[1]]
+    labels = axis.tickStrings(ticks, axis.autoSIPrefixScale * axis.scale, ticks[1] - ticks[0])
+    assert all(40 <= float(t) <= 200 for t in labels), labels
+    window.sao2_action.setChecked(True)
+    window.kpa_action.setChecked(True)
+    window.sao2_action.setChecked(False)
+    lo, hi = window.plots["oxygen"].getViewBox().viewRange()[1]
+    assert axis.autoSIPrefixScale == 1.0 and 5 <= lo < hi <= 27, (lo, hi)
+    window.kpa_action.setChecked(False)
 
 
 def test_goals_are_editable_and_checked(window, qtbot):

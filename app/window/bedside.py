@@ -1,0 +1,83 @@
+"""The Bedside panel: the patient's latest measured blood gas, the current settings, bedside indices
+and the past observations (all from the case file; the model's VD/VT once the fit is known)."""
+
+from __future__ import annotations
+
+from html import escape
+
+from PySide6 import QtCore, QtWidgets
+
+from ..engine import now_block, settings_text
+from .common import gas_text
+
+
+class BedsidePanel(QtWidgets.QGroupBox):
+    """Measured values of the case, shown in the window's unit."""
+
+    ROWS = (("pao2", "PaO2"), ("paco2", "PaCO2"), ("ph", "pH"), ("sao2", "SaO2"),
+            ("settings", "Settings"), ("pf_ratio_mmhg", "P/F ratio"),
+            ("aa_gradient_mmhg", "A\u2013a gradient"), ("vd_vt", "VD/VT (model)"),
+            ("driving_pressure_cmh2o", "Driving pressure\n(Pplat \u2212 set PEEP)"), ("compliance_ml_per_cmh2o", "Crs"),
+            ("pbw_kg", "PBW"), ("vt_ml_per_kg_pbw", "VT"), ("mechanical_power_j_min", "Mechanical power"),
+            ("ventilatory_ratio", "Ventilatory ratio"), ("oxygenation_index", "Oxygenation index"),
+            ("berlin_category", "Berlin category"), ("base_excess_mmol_l", "Base excess"))
+    #: Index: (decimals, unit).
+    FORMAT = {"pf_ratio_mmhg": (0, "mmHg"), "aa_gradient_mmhg": (0, "mmHg"), "driving_pressure_cmh2o": (0, "cmH2O"),
+              "compliance_ml_per_cmh2o": (0, "mL/cmH2O"), "pbw_kg": (1, "kg"), "vt_ml_per_kg_pbw": (1, "mL/kg PBW"),
+              "mechanical_power_j_min": (1, "J/min"), "ventilatory_ratio": (2, ""), "oxygenation_index": (1, ""),
+              "base_excess_mmol_l": (1, "mmol/L")}
+
+    def __init__(self, parent=None):
+        super().__init__("Bedside", parent)
+        lay = QtWidgets.QVBoxLayout(self)
+        self.case_label = QtWidgets.QLabel("")
+        self.case_label.setWordWrap(True)
+        lay.addWidget(self.case_label)
+        form = QtWidgets.QFormLayout()
+        self.values = {}
+        for key, label in self.ROWS:
+            w = QtWidgets.QLabel("-")
+            w.setTextInteractionFlags(QtCore.Qt.TextSelectableByMouse)
+            w.setWordWrap(True)
+            self.values[key] = w
+            form.addRow(label, w)
+        lay.addLayout(form)
+        lay.addWidget(QtWidgets.QLabel("Past observations"))
+        self.history = QtWidgets.QTableWidget(0, 5)
+        self.history.setHorizontalHeaderLabels(["taken", "FiO2", "PEEP", "PaO2", "PaCO2"])
+        self.history.verticalHeader().hide()
+        self.history.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
+        self.history.horizontalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeToContents)
+        lay.addWidget(self.history, 1)
+        self.setMinimumWidth(270)
+
+    def show_case(self, case: dict, units: str):
+        """The case's label, latest observation, settings, indices and past observations."""
+        self.case_label.setText(f"<b>{escape(case.get('label', ''))}</b>")
+        obs = case["observations"][-1]
+        idx = now_block(case)
+        v = self.values
+        v["pao2"].setText(gas_text(obs["pao2_mmhg"], units))
+        v["paco2"].setText(gas_text(obs["paco2_mmhg"], units, 1))
+        v["ph"].setText(f"{obs['ph']:.2f}")
+        v["sao2"].setText("-" if obs.get("sao2") is None else f"{obs['sao2']:.2f}")
+        v["settings"].setText(settings_text(obs["settings"]))
+        for key, (d, unit) in self.FORMAT.items():
+            x = idx.get(key)
+            if key in ("pf_ratio_mmhg", "aa_gradient_mmhg") and x is not None:
+                v[key].setText(gas_text(x, units, d))
+            else:
+                v[key].setText("-" if x is None else f"{x:.{d}f} {unit}".strip())
+        v["berlin_category"].setText(str(idx.get("berlin_category") or "-"))
+        v["vd_vt"].setText("after the fit")
+        rows = case["observations"]
+        self.history.setRowCount(len(rows))
+        for i, o in enumerate(reversed(rows)):
+            s = o["settings"]
+            for j, text in enumerate((o.get("taken_at", "")[5:16].replace("T", " "), f"{s['fio2']:.2f}",
+                                      f"{s['peep_cmh2o']:g}", gas_text(o["pao2_mmhg"], units),
+                                      gas_text(o["paco2_mmhg"], units, 1))):
+                self.history.setItem(i, j, QtWidgets.QTableWidgetItem(text))
+
+    def show_model_vd_vt(self, vd_vt: float):
+        self.values["vd_vt"].setText(f"{vd_vt:.2f} (model, current settings)")

@@ -1,0 +1,195 @@
+"""What every part of the window shares: names, colours, controls, unit conversion, the plain-data
+state of the trials and its undo command, recovery-file names, and the chart-axis helper."""
+
+from __future__ import annotations
+
+import hashlib
+import itertools
+import math
+import os
+import re
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+
+import pyqtgraph as pg
+from PySide6 import QtCore, QtGui
+
+from .. import MMHG_PER_KPA
+
+APP_NAME = "Ventcast"
+ORG_NAME = "Ventcast"
+DEBOUNCE_MS = 50
+AUTOSAVE_MS = 30_000
+TRIALS = ("A", "B", "C")
+
+#: Okabe & Ito 2008 colour-blind-safe palette; one colour per quantity in every chart.
+OKABE_ITO = {"black": "#000000", "orange": "#E69F00", "sky": "#56B4E9", "green": "#009E73",
+             "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "purple": "#CC79A7"}
+COLOUR = {"pao2": OKABE_ITO["blue"], "sao2": OKABE_ITO["blue"], "paco2": OKABE_ITO["vermillion"],
+          "ph": OKABE_ITO["green"], "pplat": OKABE_ITO["purple"], "dp": OKABE_ITO["orange"],
+          "vd_vt": OKABE_ITO["sky"], "ventilation": OKABE_ITO["sky"], "perfusion": OKABE_ITO["vermillion"]}
+#: Symbols for Limits lines, so that status never rests on colour alone.
+STATUS_SYMBOL = {"ok": "\u2713 ok", "info": "i note", "caution": "\u26a0 caution", "danger": "\u2716 danger"}
+
+#: The trial-setting controls: key, label, unit, minimum, maximum, step, decimals.
+CONTROLS = (
+    ("fio2", "FiO2", "", 0.21, 1.0, 0.05, 2),
+    ("peep_cmh2o", "PEEP", "cmH2O", 0.0, 30.0, 1.0, 0),
+    ("vt_ml", "VT", "mL", 100.0, 1200.0, 10.0, 0),
+    ("inspiratory_pressure_cmh2o", "Inspiratory pressure", "cmH2O", 1.0, 50.0, 1.0, 0),
+    ("rr_per_min", "RR", "/min", 4.0, 60.0, 1.0, 0),
+    ("inspiratory_time_s", "Ti", "s", 0.3, 3.0, 0.05, 2),
+)
+
+SHORTCUTS = (
+    ("Ctrl+O", "open a case file"), ("Ctrl+S", "save the case (trials and goals included)"),
+    ("Ctrl+Shift+S", "save as"), ("Ctrl+Z / Ctrl+Shift+Z", "undo / redo a trial change"),
+    ("Ctrl+1 / 2 / 3", "edit Trial A / B / C"), ("Ctrl+R", "reset the trial to the current settings"),
+    ("Ctrl+K", "switch mmHg / kPa"), ("Ctrl+Shift+O", "switch the oxygen chart PaO2 / SaO2"),
+    ("F1", "this list"), ("Ctrl+Q", "quit"),
+)
+
+def kpa_from_mmhg(x):
+    return x / MMHG_PER_KPA
+
+
+def gas_text(mmhg, units: str, digits: int = 0) -> str:
+    """A gas pressure in the window's unit ('mmHg' or 'kPa', at least one decimal in kPa); '-' if missing."""
+    if mmhg is None or not math.isfinite(mmhg):
+        return "-"
+    if units == "kPa":
+        return f"{kpa_from_mmhg(mmhg):.{max(digits, 1)}f} kPa"
+    return f"{mmhg:.{digits}f} mmHg"
+
+
+def data_dir() -> Path:
+    """Where recovery files live (``VENTCAST_DATA_DIR`` overrides, for tests)."""
+    env = os.environ.get("VENTCAST_DATA_DIR")
+    if env:
+        return Path(env)
+    loc = QtCore.QStandardPaths.writableLocation(QtCore.QStandardPaths.AppDataLocation)
+    return Path(loc or Path.home() / ".ventcast")
+
+
+RECOVERY_GLOB = "recovery-*.ventcast.json"
+_window_serial = itertools.count(1)
+
+
+def _slug(text: str) -> str:
+    """A file-name-safe short form of a case's name (letters, digits, '-', '_', '.')."""
+    return re.sub(r"[^A-Za-z0-9_.-]+", "-", text).strip("-.")[:40] or "untitled"
+
+
+def new_recovery_path(case_name: str) -> Path:
+    """A recovery file of one window: named after its case, with this process and window, so that two
+    windows (or two processes) never share one and a clean close removes only its own."""
+    return data_dir() / f"recovery-{_slug(case_name)}-{os.getpid()}-{next(_window_serial)}.ventcast.json"
+
+
+def _process_alive(pid) -> bool:
+    if not isinstance(pid, int) or isinstance(pid, bool) or pid <= 0:
+        return False
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # alive, owned by another user
+        pass
+    return True
+
+
+def file_stamp(path) -> str | None:
+    """SHA-256 of a file's bytes (None when it cannot be read): what a save compares to find a file
+    that another window or program changed since this window read or wrote it."""
+    try:
+        return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+    except OSError:
+        return None
+
+
+@dataclass
+class TrialState:
+    """Plain-data state of the window: the case, the trials (A always set), the active trial."""
+
+    case: dict
+    trials: dict
+    active: str = "A"
+    path: str | None = None
+
+
+class TrialChange(QtGui.QUndoCommand):
+    """One trial-setting change (merged while the same control keeps moving)."""
+
+    def __init__(self, window, trial: str, before: dict, after: dict, key: str):
+        super().__init__(f"Trial {trial}: {key}")
+        self.window, self.trial, self.before, self.after, self.key = window, trial, before, after, key
+
+    def id(self):
+        return 1
+
+    def mergeWith(self, other):
+        if other.trial != self.trial or other.key != self.key:
+            return False
+        self.after = other.after
+        return True
+
+    def redo(self):
+        self.window._apply_trial(self.trial, self.after)
+
+    def undo(self):
+        self.window._apply_trial(self.trial, self.before)
+
+
+def no_si_prefix(axis: pg.AxisItem) -> None:
+    """Axis numbers as they are, never scaled by an SI prefix. pyqtgraph computes a prefix scale even
+    while turning the prefix off (x1000 for an axis then showing 0-1, such as SaO2) and keeps it: a
+    PaO2 axis labelled after an SaO2 one read 65000-80000 mmHg. The scale is set back to 1 here."""
+    axis.enableAutoSIPrefix(False)
+    axis.autoSIPrefixScale = 1.0
+    axis.labelUnitPrefix = ""
+    axis.picture = None  # the tick strings are drawn again
+    axis.update()
+
+
+def _axis(plot: pg.PlotItem, left: str, bottom: str = "minutes after the change [min]"):
+    plot.setLabel("left", left)
+    plot.setLabel("bottom", bottom)
+    for name in ("left", "bottom"):
+        no_si_prefix(plot.getAxis(name))
+    plot.showGrid(x=True, y=True, alpha=0.15)
+    plot.setMouseEnabled(x=False, y=False)
+    plot.hideButtons()
+
+
+#: Goals the dialog edits: key, label, unit, default (low, high) or maximum, minimum, maximum, step, decimals.
+GOAL_FIELDS = (
+    ("pao2_mmhg", "PaO2 goal", "mmHg", (55.0, 80.0), 40.0, 150.0, 1.0, 0),
+    ("spo2", "SpO2 goal", "fraction", (0.88, 0.95), 0.80, 1.0, 0.01, 2),
+    ("paco2_mmhg", "PaCO2 goal", "mmHg", (35.0, 60.0), 25.0, 90.0, 1.0, 0),
+    ("ph", "pH goal", "", (7.30, 7.45), 7.10, 7.60, 0.01, 2),
+    ("vt_ml_per_kg_pbw", "VT", "mL/kg PBW", (4.0, 8.0), 3.0, 12.0, 0.5, 1),
+    ("pplat_max_cmh2o", "Pplat at most", "cmH2O", 30.0, 15.0, 40.0, 1.0, 0),
+    ("driving_pressure_max_cmh2o", "Driving pressure at most", "cmH2O", 15.0, 5.0, 25.0, 1.0, 0),
+    ("intrinsic_peep_max_cmh2o", "Intrinsic PEEP at most", "cmH2O", 5.0, 0.0, 10.0, 0.5, 1),
+    ("mechanical_power_max_j_min", "Mechanical power at most", "J/min", 17.0, 5.0, 40.0, 1.0, 0),
+    ("fio2_max", "FiO2 at most", "", 1.0, 0.21, 1.0, 0.05, 2),
+)
+
+
+def _icon() -> QtGui.QIcon:
+    """The Ventcast mark (resources/icons/ventcast.svg) as the windows' icon."""
+    from importlib import resources
+    data = resources.files("ventcast.resources.icons").joinpath("ventcast.svg").read_bytes()
+    pixmap = QtGui.QPixmap()
+    pixmap.loadFromData(data, "SVG")
+    return QtGui.QIcon(pixmap)
+
+
+def _quiet_offscreen_warnings(mode, context, message):
+    # The offscreen platform warns that it cannot size windows to their hints; that is expected there.
+    if "propagateSizeHints" in message:
+        return
+    print(message, file=sys.stderr)

@@ -1,0 +1,51 @@
+"""The Limits panel: each lung-protective limit and goal of the active trial with its status, value,
+limit and source; the goals button; the re-check time."""
+
+from __future__ import annotations
+
+from PySide6 import QtCore, QtWidgets
+
+from .common import STATUS_SYMBOL, gas_text
+
+
+class LimitsPanel(QtWidgets.QWidget):
+    """Limit lines (plain data from :func:`app.engine.limit_checks`) in the window's unit."""
+
+    goals_requested = QtCore.Signal()
+
+    def __init__(self, parent=None):
+        super().__init__(parent)
+        ll = QtWidgets.QVBoxLayout(self)
+        self.title = QtWidgets.QLabel("Limits of Trial A")
+        ll.addWidget(self.title)
+        self.table = QtWidgets.QTableWidget(0, 2)
+        self.table.setHorizontalHeaderLabels(["status", "check: value, limit, why (source)"])
+        self.table.verticalHeader().hide()
+        self.table.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
+        self.table.setWordWrap(True)
+        self.table.horizontalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeToContents)
+        self.table.horizontalHeader().setStretchLastSection(True)
+        ll.addWidget(self.table, 1)
+        self.goals_button = QtWidgets.QPushButton("Edit goals and limits of this case...")
+        self.goals_button.clicked.connect(self.goals_requested.emit)
+        ll.addWidget(self.goals_button)
+        self.recheck_label = QtWidgets.QLabel("")
+        self.recheck_label.setWordWrap(True)
+        ll.addWidget(self.recheck_label)
+
+    def set_trial(self, trial: str):
+        self.title.setText(f"Limits of Trial {trial}")
+
+    def fill(self, lines: list, units: str):
+        self.table.setRowCount(len(lines))
+        for i, line in enumerate(lines):
+            value = line["value"]
+            if units == "kPa" and value.endswith(" mmHg"):
+                value = gas_text(float(value.split()[0]), units)
+            limit = line["limit"].replace("<=", "\u2264")
+            check = f"{line['what']} {value}, limit {limit}\nwhy: {line['source']}"
+            for j, text in enumerate((STATUS_SYMBOL[line["status"]], check)):
+                item = QtWidgets.QTableWidgetItem(text)
+                item.setToolTip(line["message"])
+                self.table.setItem(i, j, item)
+        self.table.resizeRowsToContents()

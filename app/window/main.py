@@ -1,0 +1,485 @@
+"""The main window: it wires the panels (Bedside, Trial settings, Outlook, Limits, Lung fit, Options,
+Step-down plan) to the case, the trials and the engine.
+
+Widgets write to plain data (the case dict and the trial settings dicts); every change is
+debounced, frozen into a request and computed on a worker (:mod:`app.worker`); the newest result
+wins and is drawn by the panels, which compute nothing. File actions are in :mod:`.files`.
+"""
+
+from __future__ import annotations
+
+import copy
+import os
+from html import escape
+from pathlib import Path
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6 import QtCore, QtGui, QtWidgets
+
+from ventcast.physiology.forecast import predict
+
+from .. import CAUTION
+from ..casefile import CaseError
+from ..engine import (RECHECK_NOTE, fit_case, forecast_fitted, limit_checks, plan_case, sample_fit, steady_block, to_settings,
+                      wean_case)
+from ..worker import EngineRunner
+from .bedside import BedsidePanel
+from .common import (APP_NAME, AUTOSAVE_MS, DEBOUNCE_MS, ORG_NAME,
+                     TrialState, file_stamp, new_recovery_path)
+from .dialogs import GoalsDialog
+from .files import CaseFiles
+from .menus import build_menus, show_about, show_shortcuts
+from .limits import LimitsPanel
+from .lungfit import LungFitPanel
+from .outlook import OutlookPanel
+from .plans import OptionsPanel, StepDownPanel
+from .trial import TrialPanel
+from .trials import TrialEditing
+
+
+class MainWindow(CaseFiles, TrialEditing, QtWidgets.QMainWindow):
+    """The window. ``synchronous=True`` computes on the calling thread (tests, screenshots)."""
+
+    steady_shown = QtCore.Signal(object)     # stage 1: steady states and Limits on screen
+    forecast_shown = QtCore.Signal(object)   # stage 2: the course drawn
+    band_shown = QtCore.Signal(object)
+    plan_shown = QtCore.Signal(object)
+    exported = QtCore.Signal(object)         # list of files written
+    wean_shown = QtCore.Signal(object)
+    fit_shown = QtCore.Signal(object)
+    failure_shown = QtCore.Signal(str)
+
+    def __init__(self, case: dict, path: str | None = None, synchronous: bool = False, trials: dict | None = None,
+                 parent=None):
+        super().__init__(parent)
+        self.setWindowTitle(APP_NAME)
+        self.settings_store = QtCore.QSettings(ORG_NAME, APP_NAME)
+        self.units = self.settings_store.value("units", "mmHg")
+        self.oxygen_view = self.settings_store.value("oxygen_view", "pao2")
+        self.runner = EngineRunner(self, synchronous=synchronous)
+        self.runner.finished.connect(self._on_result)
+        self.runner.failed.connect(self._on_failure)
+        self.undo_stack = QtGui.QUndoStack(self)
+        self.case_unsaved = False  # an imported or recovered case that was never saved
+        self.recovery_file: Path | None = None  # this window's own autosave file (named after its case)
+        self.disk_stamp: str | None = None  # hash of the case file as this window last read or wrote it
+        self.undo_stack.cleanChanged.connect(self._on_clean_changed)
+        self.fit_result = None
+        self.last_steady = None
+        self.last_forecast = None
+        self.last_band = None
+        self.last_plan = None  # the latest options (plain data)
+        self.last_wean = None  # the latest step-down plan (plain data)
+        self.now_prediction = None
+        self.state = TrialState(case=case, trials={"A": dict(case["settings"]), "B": None, "C": None}, path=path)
+        self.debounce = QtCore.QTimer(self)
+        self.debounce.setSingleShot(True)
+        self.debounce.setInterval(DEBOUNCE_MS)
+        self.debounce.timeout.connect(self._request_forecast)
+        self.autosave = QtCore.QTimer(self)
+        self.autosave.setInterval(int(os.environ.get("VENTCAST_AUTOSAVE_MS", AUTOSAVE_MS)))
+        self.autosave.timeout.connect(self.write_recovery)
+        self._build()
+        build_menus(self)
+        self.resize(1500, 940)
+        self.load_case(case, path, trials=trials)
+        self.autosave.start()
+
+    # --- layout -------------------------------------------------------------------------------------
+    def _build(self):
+        pg.setConfigOptions(antialias=False, background="#fafafa", foreground="#222222")
+        central = QtWidgets.QWidget()
+        outer = QtWidgets.QVBoxLayout(central)
+        outer.setContentsMargins(6, 6, 6, 2)
+        self.bedside = BedsidePanel()
+        self.trial_panel = TrialPanel()
+        self.trial_panel.control_changed.connect(self._control_changed)
+        self.trial_panel.tab_changed.connect(self._on_trial_tab)
+        self.trial_panel.reset_requested.connect(self.reset_trial)
+        self.outlook = OutlookPanel()
+        self.limits_panel = LimitsPanel()
+        self.limits_panel.goals_requested.connect(self.edit_goals)
+        self.lung_fit = LungFitPanel()
+        self.options = OptionsPanel()
+        self.options.search_requested.connect(self.find_options)
+        self.options.option_chosen.connect(self.use_option)
+        self.step_down = StepDownPanel()
+        self.step_down.plan_requested.connect(self.plan_step_down)
+        self.right_tabs = QtWidgets.QTabWidget()
+        for panel, title in ((self.limits_panel, "Limits"), (self.lung_fit, "Lung fit"), (self.options, "Options"),
+                             (self.step_down, "Step-down plan")):
+            self.right_tabs.addTab(panel, title)
+        self.right_tabs.setMinimumWidth(380)
+        split = QtWidgets.QSplitter(QtCore.Qt.Horizontal)
+        split.addWidget(self.bedside)
+        middle = QtWidgets.QWidget()
+        mid = QtWidgets.QVBoxLayout(middle)
+        mid.setContentsMargins(0, 0, 0, 0)
+        mid.addWidget(self.trial_panel)
+        mid.addWidget(self.outlook, 1)
+        split.addWidget(middle)
+        split.addWidget(self.right_tabs)
+        split.setStretchFactor(0, 0)
+        split.setStretchFactor(1, 3)
+        split.setStretchFactor(2, 1)
+        split.setSizes([280, 900, 420])
+        outer.addWidget(split, 1)
+        self.caution_label = QtWidgets.QLabel(CAUTION)
+        self.caution_label.setWordWrap(True)
+        self.caution_label.setObjectName("caution")
+        self.caution_label.setStyleSheet("QLabel#caution { background: #fff4dc; border: 1px solid #b07d00; "
+                                         "padding: 4px; font-weight: bold; color: #3a2a00; }")
+        outer.addWidget(self.caution_label)
+        self.setCentralWidget(central)
+        self.status = QtWidgets.QLabel("")
+        self.status.setTextFormat(QtCore.Qt.PlainText)  # messages quote file text: never rich text
+        self.progress = QtWidgets.QProgressBar()
+        self.progress.setRange(0, 0)
+        self.progress.setMaximumWidth(160)
+        self.progress.hide()
+        self.cancel_button = QtWidgets.QPushButton("Cancel")
+        self.cancel_button.hide()
+        self.cancel_button.clicked.connect(self.cancel_fit)
+        self.statusBar().addWidget(self.status, 1)
+        self.statusBar().addPermanentWidget(self.progress)
+        self.statusBar().addPermanentWidget(self.cancel_button)
+        self.outlook.label_axes(self.units, self.oxygen_view)
+        # The widgets other code (and the tests) reach directly, by their old names.
+        self.bedside_values, self.history, self.case_label = self.bedside.values, self.bedside.history, self.bedside.case_label
+        tp = self.trial_panel
+        self.trial_tabs, self.mode, self.spins, self.sliders, self.compare = tp.trial_tabs, tp.mode, tp.spins, tp.sliders, tp.compare
+        self.plots, self.charts = self.outlook.plots, self.outlook.charts
+        self.limits, self.limits_title, self.recheck_label = (self.limits_panel.table, self.limits_panel.title,
+                                                              self.limits_panel.recheck_label)
+        lf = self.lung_fit
+        self.fit_table, self.fit_message, self.ident_label, self.next_label = lf.table, lf.message, lf.ident_label, lf.next_label
+        self.vq_perf, self.vq_text = lf.vq_perf, lf.vq_text
+        self.options_table, self.options_message = self.options.table, self.options.message
+        sd = self.step_down
+        self.wean_message, self.wean_steps, self.wean_readiness = sd.message, sd.steps, sd.readiness
+        self.wean_table_choice, self.spont_rr, self.spont_vt = sd.table_choice, sd.spont_rr, sd.spont_vt
+
+    def find_options(self):
+        result = self._fitted_for("search for options")
+        if result is None:
+            return
+        case = copy.deepcopy(self.state.case)
+        self.options.message.setText("searching...")
+        self._start_busy(cancellable=True, kind="plan")
+        self.runner.submit("plan", lambda: plan_case(case, result))
+
+    def plan_step_down(self):
+        result = self._fitted_for("plan a step-down")
+        if result is None:
+            return
+        case, request = copy.deepcopy(self.state.case), self.step_down.request()
+        self.step_down.message.setText("planning...")
+        self._start_busy(cancellable=True, kind="wean")
+        self.runner.submit("wean", lambda: wean_case(case, result, **request))
+
+    # --- case ---------------------------------------------------------------------------------------
+    def case_name(self) -> str:
+        """What the user calls this case: its file name, else its label."""
+        if self.state.path:
+            return Path(self.state.path).name
+        return self.state.case.get("label") or "unsaved case"
+
+    def load_case(self, case: dict, path: str | None, trials: dict | None = None):
+        self._drop_recovery()
+        self.case_unsaved = False
+        self.disk_stamp = file_stamp(path) if path else None
+        self.state = TrialState(case=case, trials=trials or {"A": dict(case["settings"]), "B": None, "C": None},
+                                path=path)
+        self.undo_stack.clear()
+        self.fit_result = None
+        self.last_steady = None
+        self.last_forecast = None
+        self.last_band = None
+        self.bedside.show_case(self.state.case, self.units)
+        self.trial_panel.select_tab("A")
+        self._show_trial_controls()
+        self._update_title()
+        self.recovery_file = new_recovery_path(self.case_name())
+        if path:
+            self._remember_recent(path)
+        self.status.setText("fitting the lung model to the observations...")
+        self._start_busy(cancellable=True)
+        case_copy = copy.deepcopy(case)
+        self.runner.submit("fit", lambda: self._fit_work(case_copy))
+
+    @staticmethod
+    def _fit_work(case):
+        # The estimate alone first (a tenth of the time): its forecast is shown while the posterior
+        # draws, which give every likely range, are computed in a second job ("draws").
+        _patient, _obs, result = fit_case(case, sample=False)
+        now = predict(result.model, to_settings(case["settings"]))
+        return {"result": result, "now": now}
+
+    def _fitted_for(self, doing: str):
+        """The complete fit (with its draws) for ``doing``, or None after saying why there is none yet."""
+        if self.fit_result is None:
+            self.status.setText(f"\u2716 the lung model is not fitted yet: cannot {doing}")
+            return None
+        if not self.fit_result.sampled:
+            self.status.setText(f"\u2716 the fit's likely ranges are still being computed (a few seconds): "
+                                f"{doing} when they are shown")
+            return None
+        return self.fit_result
+
+    # --- requests -----------------------------------------------------------------------------------
+    def _request_forecast(self):
+        """Stage 1 of a forecast: steady states of every trial and the Limits (fast); stages 2 (course and
+        likely range) and 3 (band of the course, next best measurement) follow as each result lands."""
+        if self.fit_result is None:
+            return
+        try:
+            trials = self._checked_trials()
+        except CaseError as exc:
+            self._on_failure(None, str(exc))
+            self._submit_draws()  # no forecast for a refused trial: the draws are still needed
+            return
+        case, result, active = copy.deepcopy(self.state.case), self.fit_result, self.state.active
+        self.status.setText(f"forecasting Trial {active}...")
+        self.runner.cancel("course")
+        self.runner.cancel("band")
+        self.runner.submit("steady", lambda: self._steady_work(case, result, trials, active))
+
+    @staticmethod
+    def _steady_work(case, result, trials, active):
+        compare, reasons = {}, {}
+        for t, s in trials.items():
+            p = predict(result.model, to_settings(s))
+            compare[t] = steady_block(p) if bool(np.all(p.success)) else None
+            reasons[t] = p.message
+        if compare[active] is None:
+            raise ArithmeticError(f"Trial {active}: the model has no steady state at these settings ({reasons[active]})")
+        return {"active": active, "trial_settings": trials[active], "compare": compare, "steady": compare[active],
+                "limit_lines": limit_checks(compare[active], case.get("goals"), fio2=float(trials[active]["fio2"])),
+                "case": case}
+
+    def _request_course(self, steady):
+        case, result, trial = steady["case"], self.fit_result, steady["trial_settings"]
+
+        def work():
+            out = forecast_fitted(case, result, trial, with_band=False, with_next=False)
+            out.update(active=steady["active"], trial_settings=trial, compare=steady["compare"],
+                       limit_lines=steady["limit_lines"])
+            return out
+
+        self.runner.submit("course", work)
+
+    def _request_band(self, forecast):
+        case, result = copy.deepcopy(self.state.case), self.fit_result
+        trial = forecast["trial_settings"]
+        self.runner.submit("band", lambda: forecast_fitted(case, result, trial, with_band=True, with_next=True))
+
+    # --- results ------------------------------------------------------------------------------------
+    def _on_result(self, request, result):
+        if request.kind == "fit":
+            self.fit_result = result["result"]
+            self.now_prediction = result["now"]
+            self._show_fit()
+            # The draws start once the first forecast is on screen (they would slow it down); see
+            # _submit_draws.
+            self._draws_for = self.fit_result
+            self._request_forecast()
+        elif request.kind == "draws":
+            if result["estimate"] is not self.fit_result:
+                return  # draws of a fit that has since been replaced (another case, changed data)
+            self._stop_busy()
+            self.fit_result = result["result"]
+            self._show_fit()
+            self.fit_shown.emit(self.fit_result)
+            self._request_forecast()
+        elif request.kind == "steady":
+            self.last_steady = result
+            self._show_steady(result)
+            self.status.setText(f"Trial {result['active']}: steady state shown; computing the course...")
+            self.steady_shown.emit(result)
+            self._request_course(result)
+        elif request.kind == "course":
+            self.last_forecast = result
+            self.last_band = None
+            self._show_forecast(result)
+            self.forecast_shown.emit(result)
+            self._submit_draws()
+            if self.fit_result is not None and self.fit_result.sampled:
+                self.status.setText(f"Trial {result['active']}: course shown; computing its likely range...")
+                self._request_band(result)
+            else:
+                self.status.setText(f"Trial {result['active']}: forecast from the fitted estimate shown; computing "
+                                    f"the likely ranges (posterior draws)...")
+        elif request.kind == "export":
+            self._stop_busy()
+            self._finish_export(result)
+        elif request.kind == "plan":
+            self._stop_busy()
+            self.last_plan = result
+            self.options.show_plan(result, self.units)
+            self.status.setText("options shown")
+            self.plan_shown.emit(result)
+        elif request.kind == "wean":
+            self._stop_busy()
+            self.last_wean = result
+            self.step_down.show_wean(result, self.units)
+            self.status.setText("step-down plan shown")
+            self.wean_shown.emit(result)
+        elif request.kind == "band":
+            self.last_band = result
+            self._show_band(result)
+            self.status.setText("forecast and likely range shown")
+            self.band_shown.emit(result)
+
+    def _submit_draws(self):
+        """Start the posterior draws of the estimate shown (once), after its first forecast."""
+        estimate, self._draws_for = getattr(self, "_draws_for", None), None
+        if estimate is not None and estimate is self.fit_result:
+            self.runner.submit("draws", lambda: {"estimate": estimate, "result": sample_fit(estimate)})
+
+    def _on_failure(self, request, message):
+        if request is not None and request.kind in ("steady", "course"):
+            self._submit_draws()  # no first forecast at this trial: the draws are still needed
+        if request is not None and request.kind in ("fit", "draws", "plan", "wean", "export"):
+            self._stop_busy()
+        if request is not None and request.kind == "plan":
+            self.options_message.setText(f"\u2716 {escape(message)}")
+        if request is not None and request.kind == "wean":
+            self.wean_message.setText(f"\u2716 {escape(message)}")
+        if request is not None and request.kind == "fit":
+            self.fit_message.setText(f"<b>The model could not be fitted:</b> {escape(message)}")
+        if request is not None and request.kind == "draws":
+            self.fit_message.setText(f"<b>No likely ranges:</b> {escape(message)}. The forecast shown is the fitted "
+                                     f"estimate alone; do not act on it without a range.")
+        self.status.setText(f"\u2716 {message}")
+        self.failure_shown.emit(message)
+
+    def _show_fit(self):
+        self.lung_fit.show_fit(self.fit_result)
+        now = self.now_prediction
+        if now is not None and bool(np.all(now.success)):
+            self.bedside.show_model_vd_vt(float(now.gas.vd_vt))
+            self.lung_fit.show_vq(now)
+
+    def _fill_compare(self, compare, ranges=None, ranges_trial=None):
+        now = steady_block(self.now_prediction) if self.now_prediction is not None else None
+        self.trial_panel.fill_compare(now, compare, self.units, ranges, ranges_trial)
+
+    def _fill_limits(self, lines):
+        self.limits_panel.fill(lines, self.units)
+
+    def _draw_course(self, out, band=None):
+        pplat_max = (self.state.case.get("goals") or {}).get("pplat_max_cmh2o", 30)
+        self.outlook.draw(out, self.now_prediction, self.units, self.oxygen_view, pplat_max, band)
+
+    def _show_steady(self, out):
+        self._fill_compare(out["compare"])
+        self._fill_limits(out["limit_lines"])
+
+    def _show_forecast(self, out):
+        self._draw_course(out)
+        self._fill_compare(out["compare"], out["likely_range"], out["active"])
+        self._fill_limits(out["limit_lines"])
+        r = out.get("recheck_after_min")
+        unchanged = out["settings"] == out["current_settings"]
+        self.recheck_label.setText(
+            "The trial equals the current settings: no change is expected." if unchanged else
+            "" if r is None else f"Re-check a blood gas after about {max(r, 1):.0f} min at the earliest "
+                                 f"({RECHECK_NOTE}).")
+
+    def _show_band(self, out):
+        if self.last_forecast is None:
+            return
+        self._draw_course(self.last_forecast, band=out)
+        self.lung_fit.show_next(out.get("next_best_measurement") or [])
+        self._fill_compare(self.last_forecast["compare"], out["likely_range"], self.last_forecast["active"])
+        for line in out.get("alerts", []):
+            if line["code"] in ("band_unavailable", "range_incomplete"):
+                self.status.setText(f"\u26a0 {line['message']}")
+
+    def edit_goals(self):
+        dialog = GoalsDialog(self.state.case.get("goals") or {}, self)
+        dialog.accepted.connect(lambda: self.set_goals(dialog.goals()))
+        dialog.open()
+        return dialog
+
+    def set_goals(self, goals: dict):
+        """New goals for this case (kept in the case file on Save); the Limits are checked again."""
+        if goals == (self.state.case.get("goals") or {}):
+            return
+        self.state.case["goals"] = goals
+        self.undo_stack.resetClean()
+        self._update_title()
+        self.debounce.start()
+
+    # --- units and views ----------------------------------------------------------------------------
+    def set_units(self, units: str):
+        self.units = units
+        self.settings_store.setValue("units", units)
+        self.outlook.label_axes(self.units, self.oxygen_view)
+        self.bedside.show_case(self.state.case, self.units)
+        if self.fit_result is not None:
+            self._show_fit()
+        self._redraw()
+
+    def set_oxygen_view(self, view: str):
+        self.oxygen_view = view
+        self.settings_store.setValue("oxygen_view", view)
+        self.outlook.label_axes(self.units, self.oxygen_view)
+        self._redraw()
+
+    def _redraw(self):
+        if self.last_forecast is None and self.last_steady is not None:
+            self._show_steady(self.last_steady)
+        if self.last_forecast is not None:
+            self._show_forecast(self.last_forecast)
+            if self.last_band is not None:
+                self._show_band(self.last_band)
+
+    # --- busy ---------------------------------------------------------------------------------------
+    def _start_busy(self, cancellable, kind="fit"):
+        self.busy_kind = kind
+        self.progress.show()
+        self.cancel_button.setVisible(cancellable)
+
+    def _stop_busy(self):
+        self.progress.hide()
+        self.cancel_button.hide()
+
+    def cancel_fit(self):
+        """Cancel the long work under way (fit, options or step-down plan): its result is discarded."""
+        kind = getattr(self, "busy_kind", "fit")
+        self.runner.cancel(kind)
+        self._stop_busy()
+        if kind == "fit":
+            self.runner.cancel("draws")
+            if self.fit_result is None:
+                self.fit_message.setText("\u2716 fit cancelled: no forecast is shown. Open the case again to fit it.")
+            else:
+                self.fit_message.setText("\u2716 likely ranges cancelled: the forecast shown is the fitted estimate "
+                                         "alone, with no range. Open the case again to compute them.")
+        elif kind == "plan":
+            self.options.message.setText("\u2716 search cancelled")
+        elif kind == "wean":
+            self.wean_message.setText("\u2716 planning cancelled")
+        self.status.setText(f"{ {'fit': 'fit', 'plan': 'search', 'wean': 'step-down planning', 'export': 'export'}[kind]} "
+                            f"cancelled")
+
+    def closeEvent(self, event):
+        if not self.may_leave_case("close the window"):
+            event.ignore()
+            return
+        self.autosave.stop()
+        self.debounce.stop()
+        self.undo_stack.cleanChanged.disconnect(self._on_clean_changed)  # it fires while being destroyed
+        self._drop_recovery()
+        self.runner.cancel("fit")
+        self.runner.cancel("draws")
+        self.runner.wait(60000)
+        super().closeEvent(event)
+
+    def show_shortcuts(self):
+        show_shortcuts(self)
+
+    def show_about(self):
+        show_about(self)

@@ -1,0 +1,134 @@
+"""The Options and Step-down plan panels: settings that meet the goals, and a step-down (weaning) plan.
+
+Each panel shows plain data from :mod:`app.engine` (``plan_case``, ``wean_case``) and reports what the
+user asks for (``search_requested``, ``option_chosen(row)``, ``plan_requested``).
+"""
+
+from __future__ import annotations
+
+from html import escape
+
+from PySide6 import QtCore, QtWidgets
+
+from .common import gas_text
+
+
+def _table(columns: list) -> QtWidgets.QTableWidget:
+    t = QtWidgets.QTableWidget(0, len(columns))
+    t.setHorizontalHeaderLabels(columns)
+    t.verticalHeader().hide()
+    t.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
+    t.setWordWrap(True)
+    t.horizontalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeToContents)
+    t.horizontalHeader().setStretchLastSection(True)
+    return t
+
+
+class OptionsPanel(QtWidgets.QWidget):
+    """Settings found by the goal search, best first, with their probability of meeting every goal."""
+
+    search_requested = QtCore.Signal()
+    option_chosen = QtCore.Signal(int)   # row of the option to try in the current trial
+
+    def __init__(self, parent=None):
+        super().__init__(parent)
+        lay = QtWidgets.QVBoxLayout(self)
+        self.button = QtWidgets.QPushButton("Find settings that meet the goals")
+        self.button.clicked.connect(self.search_requested.emit)
+        lay.addWidget(self.button)
+        self.message = QtWidgets.QLabel("Searches tens of thousands of settings within the Limits, then checks "
+                                        "the best 50 against the fit's parameter draws.")
+        self.message.setWordWrap(True)
+        lay.addWidget(self.message)
+        self.table = _table(["probability", "changes from now", "forecast"])
+        self.table.setSelectionBehavior(QtWidgets.QAbstractItemView.SelectRows)
+        self.table.cellDoubleClicked.connect(lambda row, _col: self.option_chosen.emit(row))
+        lay.addWidget(self.table, 1)
+        self.use_button = QtWidgets.QPushButton("Try the selected option in the current trial")
+        self.use_button.clicked.connect(lambda: self.option_chosen.emit(self.table.currentRow()))
+        lay.addWidget(self.use_button)
+
+    def show_plan(self, out: dict, units: str):
+        head = f"\u2713 {out['message']}" if out["met"] else f"\u26a0 {out['message']}"
+        self.message.setText(f"{escape(head)}<br>Screened {out['screened']} settings. Double-click an option "
+                             f"to try it in the current trial.")
+        self.table.setRowCount(len(out["options"]))
+        for i, o in enumerate(out["options"]):
+            st = o["steady"]
+            forecast = (f"{gas_text(st['pao2_mmhg'], units)}, SaO2 {st['sao2']:.2f}, "
+                        f"PaCO2 {gas_text(st['paco2_mmhg'], units, 1)}, pH {st['ph']:.2f}, "
+                        f"Pplat {st['pplat_cmh2o']:.0f}, \u0394P {st['driving_pressure_cmh2o']:.0f} cmH2O")
+            for j, text in enumerate((f"{100 * o['probability_all_goals']:.0f} %", "\n".join(o["changes"]) or "none",
+                                      forecast)):
+                self.table.setItem(i, j, QtWidgets.QTableWidgetItem(text))
+        self.table.resizeRowsToContents()
+
+
+class StepDownPanel(QtWidgets.QWidget):
+    """The step-down request (steps, targets, spontaneous breathing for RSBI) and the plan."""
+
+    plan_requested = QtCore.Signal()
+    TABLES = (None, "lower-peep", "higher-peep")
+
+    def __init__(self, parent=None):
+        super().__init__(parent)
+        lay = QtWidgets.QVBoxLayout(self)
+        form = QtWidgets.QFormLayout()
+        self.table_choice = QtWidgets.QComboBox()
+        self.table_choice.addItems(["model-driven", "ARDS Network lower-PEEP table", "ARDS Network higher-PEEP table"])
+        form.addRow("Steps", self.table_choice)
+        self.fio2 = self._spin(0.21, 1.0, 2, 0.05, 0.4, "")
+        form.addRow("Target FiO2 at most", self.fio2)
+        self.peep = self._spin(0, 30, 0, 1, 8, " cmH2O")
+        form.addRow("Target PEEP at most", self.peep)
+        self.spont_rr = self._spin(0, 80, 0, 1, 0, " /min", "not entered")
+        form.addRow("Spontaneous rate (for RSBI)", self.spont_rr)
+        self.spont_vt = self._spin(0, 2000, 0, 10, 0, " mL", "not entered")
+        form.addRow("Spontaneous VT (for RSBI)", self.spont_vt)
+        lay.addLayout(form)
+        self.button = QtWidgets.QPushButton("Plan the step-down")
+        self.button.clicked.connect(self.plan_requested.emit)
+        lay.addWidget(self.button)
+        self.message = QtWidgets.QLabel("")
+        self.message.setWordWrap(True)
+        lay.addWidget(self.message)
+        self.steps = _table(["step", "forecast (likely range 90 %)", "hold"])
+        lay.addWidget(self.steps, 1)
+        self.readiness = QtWidgets.QLabel("")
+        self.readiness.setWordWrap(True)
+        lay.addWidget(self.readiness)
+
+    @staticmethod
+    def _spin(lo, hi, decimals, step, value, suffix, special=""):
+        sp = QtWidgets.QDoubleSpinBox()
+        sp.setRange(lo, hi)
+        sp.setDecimals(decimals)
+        sp.setSingleStep(step)
+        sp.setValue(value)
+        sp.setSuffix(suffix)
+        if special:
+            sp.setSpecialValueText(special)
+        return sp
+
+    def request(self) -> dict:
+        """What the user asked for, as keyword arguments of :func:`app.engine.wean_case`."""
+        return {"table": self.TABLES[self.table_choice.currentIndex()], "target_fio2": float(self.fio2.value()),
+                "target_peep": float(self.peep.value()), "spontaneous_rr": float(self.spont_rr.value()) or None,
+                "spontaneous_vt_ml": float(self.spont_vt.value()) or None}
+
+    def show_wean(self, out: dict, units: str):
+        head = "\u2713" if out["reached_target"] else "\u26a0"
+        self.message.setText(f"{head} {escape(out['message'])}")
+        self.steps.setRowCount(len(out["steps"]))
+        for i, st in enumerate(out["steps"]):
+            v, r = st["steady"], st["likely_range"]
+            forecast = (f"SaO2 {v['sao2']:.3f} ({r['sao2'][0]:.3f}\u2013{r['sao2'][1]:.3f}), "
+                        f"{gas_text(v['pao2_mmhg'], units)}, PaCO2 {gas_text(v['paco2_mmhg'], units, 1)}, "
+                        f"pH {v['ph']:.2f}\n{st['stop_if']}")
+            hold = "-" if st["hold_min"] is None else f"{st['hold_min']:.0f} min\n({st.get('hold_basis', '')})"
+            for j, text in enumerate((f"{i + 1}. {st['change']}\n({st['why']})", forecast, hold)):
+                self.steps.setItem(i, j, QtWidgets.QTableWidgetItem(text))
+        self.steps.resizeRowsToContents()
+        marks = {True: "\u2713", False: "\u2716", None: "?"}
+        self.readiness.setText("<b>Readiness at the last step:</b><br>" + "<br>".join(
+            f"{marks[c['met']]} {escape(c['criterion'])} ({escape(c['source'])})" for c in out["readiness"]))

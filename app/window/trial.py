@@ -1,0 +1,142 @@
+"""The Trial settings panel: Trials A/B/C, the mode and the setting controls (spin box and slider each),
+and the table that compares the current state with every trial (likely ranges for the active one).
+
+The panel shows plain data and reports what the user changed (``control_changed(key)``, ``tab_changed``,
+``reset_requested``); the main window keeps the trials, the undo stack and the engine requests.
+"""
+
+from __future__ import annotations
+
+import math
+
+from PySide6 import QtCore, QtWidgets
+
+from .common import CONTROLS, TRIALS, kpa_from_mmhg
+
+
+class TrialPanel(QtWidgets.QGroupBox):
+    """Controls of the active trial and the comparison of all trials."""
+
+    control_changed = QtCore.Signal(str)   # a control's key ('mode' for the mode)
+    tab_changed = QtCore.Signal(int)
+    reset_requested = QtCore.Signal()
+
+    COMPARE_ROWS = (("PaO2", "pao2_mmhg", "gas", 0), ("PaCO2", "paco2_mmhg", "gas", 1), ("pH", "ph", "", 2),
+                    ("SaO2", "sao2", "", 3), ("VD/VT", "vd_vt", "", 2), ("Pplat", "pplat_cmh2o", "cmH2O", 1),
+                    ("Driving pressure (Pplat \u2212 total PEEP)", "driving_pressure_cmh2o", "cmH2O", 1),
+                    ("Mechanical power", "mechanical_power_j_min", "J/min", 1),
+                    ("VT", "vt_ml_per_kg_pbw", "mL/kg PBW", 1), ("Cardiac output", "cardiac_output_l_min", "L/min", 1))
+    RANGE_KEYS = {"pao2_mmhg", "paco2_mmhg", "ph", "sao2"}
+
+    def __init__(self, parent=None):
+        super().__init__("Trial settings", parent)
+        self._quiet = False  # True while the panel itself sets the controls
+        lay = QtWidgets.QGridLayout(self)
+        self.trial_tabs = QtWidgets.QTabBar()
+        for t in TRIALS:
+            self.trial_tabs.addTab(f"Trial {t}")
+        self.trial_tabs.currentChanged.connect(lambda i: None if self._quiet else self.tab_changed.emit(i))
+        lay.addWidget(self.trial_tabs, 0, 0, 1, 3)
+        self.mode = QtWidgets.QComboBox()
+        self.mode.addItems(["volume control", "pressure control"])
+        self.mode.currentIndexChanged.connect(lambda _i: self._changed("mode"))
+        lay.addWidget(QtWidgets.QLabel("Mode"), 1, 0)
+        lay.addWidget(self.mode, 1, 1)
+        self.reset_button = QtWidgets.QPushButton("Reset to current")
+        self.reset_button.clicked.connect(self.reset_requested.emit)
+        lay.addWidget(self.reset_button, 1, 2)
+        self.spins, self.sliders, self.rows = {}, {}, {}
+        for row, (key, label, unit, lo, hi, step, dec) in enumerate(CONTROLS, start=2):
+            spin = QtWidgets.QDoubleSpinBox()
+            spin.setRange(lo, hi)
+            spin.setSingleStep(step)
+            spin.setDecimals(dec)
+            spin.setSuffix(f" {unit}" if unit else "")
+            spin.setKeyboardTracking(False)
+            spin.setAccessibleName(label)
+            slider = QtWidgets.QSlider(QtCore.Qt.Horizontal)
+            slider.setRange(0, int(round((hi - lo) / step)))
+            slider.setPageStep(5)
+            slider.setMaximumWidth(150)
+            spin.valueChanged.connect(lambda _v, k=key: self._changed(k))
+            slider.valueChanged.connect(lambda i, k=key, lo=lo, step=step: self._slider_moved(k, lo + i * step))
+            name = QtWidgets.QLabel(label)
+            lay.addWidget(name, row, 0)
+            lay.addWidget(spin, row, 1)
+            lay.addWidget(slider, row, 2)
+            self.spins[key], self.sliders[key], self.rows[key] = spin, slider, (name, spin, slider)
+        self.vt_per_kg = QtWidgets.QLabel("")
+        lay.addWidget(self.vt_per_kg, 2 + len(CONTROLS), 1, 1, 2)
+        self.compare = QtWidgets.QTableWidget(0, 4)
+        self.compare.setHorizontalHeaderLabels(["now (model)", "Trial A", "Trial B", "Trial C"])
+        self.compare.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
+        self.compare.horizontalHeader().setStretchLastSection(True)
+        self.compare.verticalHeader().setDefaultSectionSize(20)
+        self.compare.setMinimumHeight(236)
+        self.compare.setMinimumWidth(520)
+        lay.addWidget(self.compare, 0, 3, 3 + len(CONTROLS), 1)
+        lay.setColumnStretch(3, 1)
+
+    def _changed(self, key):
+        if not self._quiet:
+            self.control_changed.emit(key)
+
+    def _slider_moved(self, key, value):
+        if not self._quiet:
+            self.spins[key].setValue(value)
+
+    def mode_value(self) -> str:
+        return "volume" if self.mode.currentIndex() == 0 else "pressure"
+
+    def value(self, key: str) -> float:
+        return round(float(self.spins[key].value()), 2)
+
+    def select_tab(self, trial: str):
+        """Show ``trial``'s tab without reporting a tab change."""
+        self._quiet = True
+        try:
+            self.trial_tabs.setCurrentIndex(TRIALS.index(trial))
+        finally:
+            self._quiet = False
+
+    def show_trial(self, s: dict, vt_text: str):
+        """Set the controls to the settings ``s`` (case-file keys) without reporting changes."""
+        self._quiet = True
+        try:
+            self.mode.setCurrentIndex(0 if s["mode"] == "volume" else 1)
+            # The size of the breath is VT in volume control, the inspiratory pressure in pressure control.
+            hidden = "inspiratory_pressure_cmh2o" if s["mode"] == "volume" else "vt_ml"
+            for key, _label, _unit, lo, _hi, step, _dec in CONTROLS:
+                v = s.get(key)
+                for w in self.rows[key]:
+                    w.setVisible(key != hidden)
+                if v is not None:
+                    self.spins[key].setValue(float(v))
+                    self.sliders[key].setValue(int(round((float(v) - lo) / step)))
+        finally:
+            self._quiet = False
+        self.vt_per_kg.setText(vt_text)
+
+    @staticmethod
+    def _value(v, unit, digits, units):
+        if v is None or not math.isfinite(float(v)):
+            return "-"
+        if unit == "gas" and units == "kPa":
+            return f"{kpa_from_mmhg(v):.{max(digits, 1)}f}"
+        return f"{v:.{digits}f}"
+
+    def fill_compare(self, now: dict | None, compare: dict, units: str, ranges=None, ranges_trial=None):
+        """One column for the current state (``now``, a steady block) and one per trial; the likely range
+        beside the values of ``ranges_trial``."""
+        gas_unit = "kPa" if units == "kPa" else "mmHg"
+        self.compare.setRowCount(len(self.COMPARE_ROWS))
+        self.compare.setVerticalHeaderLabels(
+            [f"{name} [{gas_unit if unit == 'gas' else unit}]" if unit else name for name, _k, unit, _d in self.COMPARE_ROWS])
+        for r, (_name, key, unit, digits) in enumerate(self.COMPARE_ROWS):
+            for col, (label, block) in enumerate([("now", now)] + [(t, compare.get(t)) for t in TRIALS]):
+                text = "-" if block is None else self._value(block.get(key), unit, digits, units)
+                if ranges and label == ranges_trial and key in self.RANGE_KEYS and text != "-":
+                    lo, hi = ranges[key]
+                    text += f" ({self._value(lo, unit, digits, units)}–{self._value(hi, unit, digits, units)})"
+                self.compare.setItem(r, col, QtWidgets.QTableWidgetItem(text))
+        self.compare.resizeColumnsToContents()

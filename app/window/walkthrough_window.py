@@ -1,0 +1,296 @@
+"""Walkthrough mode: its own window, a patient on a running clock, learner settings, instructor events."""
+
+from __future__ import annotations
+
+from html import escape
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6 import QtCore, QtWidgets
+
+from .. import CAUTION
+from ..casefile import CaseError, write_atomic
+from ..engine import settings_dict
+from ..worker import EngineRunner
+from .common import APP_NAME, COLOUR, CONTROLS, _axis
+
+
+class WalkthroughWindow(QtWidgets.QMainWindow):
+    """Walkthrough mode: a patient that evolves on a running clock (1x-60x), learner settings, instructor
+    events, blood-gas draws with a result delay, and a debrief exported as PDF and CSV.
+
+    The clock only moves the reading position along the course (:class:`app.walkthrough.Run`); a new
+    event or setting recomputes the course on the worker, so nothing blocks the window.
+    """
+
+    ticked = QtCore.Signal(float)           # the clock [min]
+    course_ready = QtCore.Signal()
+    result_shown = QtCore.Signal(object)    # a draw's result
+    finished = QtCore.Signal(object)        # the debrief
+
+    TICK_MS = 100
+
+    def __init__(self, script: dict, folder=None, synchronous: bool = False, parent=None):
+        super().__init__(parent)
+        from ..walkthrough import Run
+        self.setWindowTitle(f"{APP_NAME} walkthrough \u2014 {script['title']}")
+        self.run = Run(script, folder)
+        self.minute = 0.0
+        self.running = False
+        self.runner = EngineRunner(self, synchronous=synchronous)
+        self.runner.finished.connect(self._on_result)
+        self.runner.failed.connect(lambda _r, m: self.status.setText(f"\u2716 {m}"))
+        self.timer = QtCore.QTimer(self)
+        self.timer.setInterval(self.TICK_MS)
+        self.timer.timeout.connect(self._tick)
+        self._build()
+        self._recompute()
+
+    def _build(self):
+        pg.setConfigOptions(antialias=False, background="#fafafa", foreground="#222222")
+        central = QtWidgets.QWidget()
+        lay = QtWidgets.QGridLayout(central)
+        self.clock = QtWidgets.QLabel("")
+        self.clock.setStyleSheet("font-size: 18px; font-weight: bold;")
+        lay.addWidget(self.clock, 0, 0, 1, 2)
+        controls = QtWidgets.QHBoxLayout()
+        self.start_button = QtWidgets.QPushButton("Start")
+        self.start_button.clicked.connect(self.toggle)
+        self.speed = QtWidgets.QSpinBox()
+        self.speed.setRange(1, 60)
+        self.speed.setValue(int(self.run.speed))
+        self.speed.setSuffix("\u00d7 real time")
+        self.jump_button = QtWidgets.QPushButton("Jump 5 min")
+        self.jump_button.clicked.connect(lambda: self.advance(5.0))
+        self.draw_button = QtWidgets.QPushButton("Draw a blood gas")
+        self.draw_button.clicked.connect(self.draw)
+        self.finish_button = QtWidgets.QPushButton("Finish and debrief")
+        self.finish_button.clicked.connect(self.finish)
+        for w in (self.start_button, self.speed, self.jump_button, self.draw_button, self.finish_button):
+            controls.addWidget(w)
+        lay.addLayout(controls, 1, 0, 1, 2)
+        learner = QtWidgets.QGroupBox("Learner: settings")
+        form = QtWidgets.QFormLayout(learner)
+        self.learner_spins = {}
+        now = settings_dict(self.run.timeline.settings)
+        for key, label, unit, lo, hi, step, dec in CONTROLS:
+            if now.get(key) is None:
+                continue
+            sp = QtWidgets.QDoubleSpinBox()
+            sp.setRange(lo, hi)
+            sp.setSingleStep(step)
+            sp.setDecimals(dec)
+            sp.setSuffix(f" {unit}" if unit else "")
+            sp.setValue(float(now[key]))
+            form.addRow(label, sp)
+            self.learner_spins[key] = sp
+        apply_button = QtWidgets.QPushButton("Apply settings now")
+        apply_button.clicked.connect(self.apply_settings)
+        form.addRow(apply_button)
+        lay.addWidget(learner, 2, 0)
+        instructor = QtWidgets.QGroupBox("Instructor: inject an event")
+        iform = QtWidgets.QFormLayout(instructor)
+        self.event_kind = QtWidgets.QComboBox()
+        from ventcast.physiology.scenario import EVENT_KINDS
+        for kind, (name, (lo, hi), what) in EVENT_KINDS.items():
+            self.event_kind.addItem(f"{kind} ({name} {lo:g}-{hi:g}): {what}", kind)
+        self.event_value = QtWidgets.QDoubleSpinBox()
+        self.event_value.setRange(0, 50)
+        self.event_value.setDecimals(2)
+        self.event_value.setValue(0.1)
+        inject = QtWidgets.QPushButton("Inject now")
+        inject.clicked.connect(self.inject)
+        iform.addRow("Event", self.event_kind)
+        iform.addRow("Value", self.event_value)
+        iform.addRow(inject)
+        lay.addWidget(instructor, 3, 0)
+        self.chart = pg.GraphicsLayoutWidget()
+        self.plots = {}
+        self.curves = {}
+        for i, (key, label, colour) in enumerate((("pao2", "PaO2 [mmHg]", COLOUR["pao2"]),
+                                                   ("paco2", "PaCO2 [mmHg]", COLOUR["paco2"]))):
+            p = self.chart.addPlot(row=i, col=0)
+            _axis(p, label, "minutes of the walkthrough [min]")
+            self.plots[key] = p
+            self.curves[key] = p.plot(pen=pg.mkPen(colour, width=1))
+            self.plots[key].setXRange(0, self.run.duration, padding=0.01)
+        lay.addWidget(self.chart, 2, 1, 3, 1)
+        self.log = QtWidgets.QListWidget()
+        lay.addWidget(self.log, 4, 0)
+        self.prompt = QtWidgets.QLabel(self.run.script.get("summary", ""))
+        self.prompt.setTextFormat(QtCore.Qt.PlainText)  # script text is shown as written, never as HTML
+        self.prompt.setWordWrap(True)
+        lay.addWidget(self.prompt, 5, 0, 1, 2)
+        caution = QtWidgets.QLabel(CAUTION)
+        caution.setWordWrap(True)
+        caution.setStyleSheet("background: #fff4dc; border: 1px solid #b07d00; padding: 4px; font-weight: bold;")
+        lay.addWidget(caution, 6, 0, 1, 2)
+        lay.setColumnStretch(1, 1)
+        self.setCentralWidget(central)
+        self.status = QtWidgets.QLabel("")
+        self.status.setTextFormat(QtCore.Qt.PlainText)  # messages quote file text: never rich text
+        self.statusBar().addWidget(self.status, 1)
+        self.resize(1300, 850)
+        self._show_clock()
+
+    # -- clock ----------------------------------------------------------------------------------------
+    def toggle(self):
+        self.running = not self.running
+        self.start_button.setText("Pause" if self.running else "Resume")
+        if self.running:
+            self.timer.start()
+        else:
+            self.timer.stop()
+
+    def _tick(self):
+        self.advance(self.TICK_MS / 1000.0 * self.speed.value() / 60.0)
+
+    def advance(self, minutes: float):
+        """Move the clock (pause, resume and jump all come here); reveals what falls due."""
+        if self.run._course is None:
+            return  # the course is being recomputed: the clock waits for it
+        start, end = self.minute, min(self.minute + minutes, self.run.duration)
+        due = self.run.due(start, end)
+        for e in due["events"]:
+            self.log.addItem(f"{e.minute:5.1f} min  \u26a0 event: {e.kind} {e.value:g} \u2014 {e.note}")
+        for c in due["checkpoints"]:
+            self.log.addItem(f"{c['minute']:5.1f} min  ? {c['prompt']}")
+            self.prompt.setText(c["prompt"])
+        for d in due["results"]:
+            v = d.values
+            self.log.addItem(f"{d.ready_at:5.1f} min  blood gas drawn at {d.minute:.1f} min: PaO2 {v['pao2']:.0f} mmHg, "
+                             f"PaCO2 {v['paco2']:.1f} mmHg, pH {v['ph']:.2f}, SaO2 {v['sao2']:.2f}")
+            self.result_shown.emit(d)
+        self.minute = end
+        self._show_clock()
+        self.ticked.emit(self.minute)
+        if self.minute >= self.run.duration - 1e-9 and self.running:
+            self.toggle()
+
+    def _show_clock(self):
+        c = self.run._course
+        if c is not None:
+            keep = c.minutes <= self.minute + 1e-9
+            for key, curve in self.curves.items():
+                curve.setData(c.minutes[keep], getattr(c, key)[keep])
+        self.clock.setText(f"Minute {self.minute:5.1f} of {self.run.duration:g}")
+
+    # -- learner and instructor -----------------------------------------------------------------------
+    def apply_settings(self):
+        sets = {k: round(sp.value(), 2) for k, sp in self.learner_spins.items()}
+        try:
+            self.run.act(self.minute, sets)
+        except (CaseError, ValueError) as exc:
+            self.status.setText(f"\u2716 {exc}")
+            return
+        self.log.addItem(f"{self.minute:5.1f} min  learner: " + ", ".join(f"{k} {v:g}" for k, v in sets.items()))
+        self._recompute()
+
+    def inject(self, kind: str | None = None, value: float | None = None):
+        kind = kind or self.event_kind.currentData()
+        value = float(self.event_value.value()) if value is None else float(value)
+        try:
+            self.run.inject(self.minute, kind, value)
+        except (CaseError, ValueError) as exc:
+            self.status.setText(f"\u2716 {exc}")
+            return
+        self._recompute()
+
+    def draw(self):
+        if self.run._course is None:
+            return
+        d = self.run.draw(self.minute)
+        self.log.addItem(f"{self.minute:5.1f} min  blood gas drawn; result at {d['ready_at']:.1f} min")
+
+    def _recompute(self):
+        """Recompute the course on the worker from a frozen copy of the timeline (the window may add events
+        or actions meanwhile; only the newest request's course is used)."""
+        from ventcast.physiology.scenario import Timeline
+        self.run._course = None
+        tl = self.run.timeline
+        frozen = Timeline(tl.patient, tl.settings, list(tl.events), list(tl.actions), [], tl.seed)
+        duration = self.run.duration
+
+        def work():
+            c = frozen.course(duration)
+            if not bool(np.all(c.success)):
+                raise ArithmeticError(f"the walkthrough patient cannot be followed: {c.message}")
+            return c
+
+        self.status.setText("computing the patient's course...")
+        self.runner.submit("walk", work)
+
+    def _on_result(self, request, result):
+        if request.kind == "walk":
+            self.run._course = result
+            self.status.setText("")
+            self._show_clock()
+            self.course_ready.emit()
+
+    # -- debrief --------------------------------------------------------------------------------------
+    def finish(self):
+        if self.running:
+            self.toggle()
+        if self.run._course is None:
+            return None
+        out = self.run.debrief(self.minute if self.minute > 0 else None)
+        self.log.addItem(f"Debrief: score {out['score']['met']} of {out['score']['of']}")
+        for s in out["score"]["items"]:
+            mark = "\u2713" if s["met"] else "\u2716"
+            self.log.addItem(f"   [{mark}] {s['expected']} \u2014 {s['why']}")
+        self.debrief = out
+        self.finished.emit(out)
+        return out
+
+    def export_debrief(self, folder: str) -> list:
+        """The debrief as CSV (timeline and course) and PDF (timeline, score, charts) into ``folder``."""
+        import csv
+        import io
+        from ..report import chart_images, write_pdf
+        from ..casefile import check_output_files
+        try:
+            folder = check_output_files("debrief folder", folder,
+                                        ("debrief-timeline.csv", "debrief-course.csv", "debrief.pdf"))
+        except CaseError as exc:
+            self.status.setText(f"\u2716 not exported: {exc}")
+            return []
+        out = getattr(self, "debrief", None) or self.finish()
+        folder.mkdir(exist_ok=True)
+        timeline = io.StringIO()
+        w = csv.writer(timeline, lineterminator="\n")
+        w.writerow(["minute [min]", "what", "detail"])
+        rows = [(e["minute"], f"event ({e['source']})", f"{e['kind']} {e['value']:g}: {e['note']}") for e in out["events"]]
+        rows += [(a["minute"], "learner", ", ".join(a["changed"])) for a in out["actions"]]
+        rows += [(d["minute"], "blood gas", f"PaO2 {d['pao2']:.1f} mmHg, PaCO2 {d['paco2']:.1f} mmHg, pH {d['ph']:.3f}, "
+                                           f"SaO2 {d['sao2']:.3f}; result at {d['ready_at']:g} min") for d in out["draws"]]
+        for r in sorted(rows, key=lambda r: r[0]):
+            w.writerow(r)
+        course = io.StringIO()
+        w = csv.writer(course, lineterminator="\n")
+        c = out["course"]
+        w.writerow(["minutes [min]", "PaO2 [mmHg]", "PaCO2 [mmHg]", "pH [pH units]", "SaO2 [fraction]"])
+        for row in zip(c["minutes"], c["pao2_mmhg"], c["paco2_mmhg"], c["ph"], c["sao2"]):
+            w.writerow(row)
+        write_atomic(folder / "debrief-timeline.csv", timeline.getvalue())
+        write_atomic(folder / "debrief-course.csv", course.getvalue())
+        html = [f"<h1>Walkthrough debrief: {escape(out['title'])}</h1><p><b>{escape(CAUTION)}</b></p>",
+                f"<p>Score {out['score']['met']} of {out['score']['of']}</p><ul>"]
+        html += [f"<li>{'(ok)' if s['met'] else '(missed)'} {escape(s['expected'])} \u2014 {escape(s['why'])}</li>"
+                 for s in out["score"]["items"]]
+        html.append("</ul><h2>Timeline</h2><ul>")
+        html += [f"<li>{m:.1f} min: {escape(what)} \u2014 {escape(detail)}</li>" for m, what, detail in sorted(rows)]
+        html.append("</ul><h2>Course</h2><p><img src='chart://pao2_mmhg' width='640'></p>"
+                    "<p><img src='chart://paco2_mmhg' width='640'></p>"
+                    f"<p><b>{escape(CAUTION)}</b></p>")
+        course_for_chart = {"course": {"minutes": c["minutes"], "pao2_mmhg": c["pao2_mmhg"], "paco2_mmhg": c["paco2_mmhg"],
+                                       "ph": c["ph"]}}
+        images = chart_images({"run": course_for_chart})
+        write_pdf(folder / "debrief.pdf", "\n".join(html), images)
+        files = [str(folder / n) for n in ("debrief-timeline.csv", "debrief-course.csv", "debrief.pdf")]
+        self.status.setText("exported " + ", ".join(files))
+        return files
+
+    def closeEvent(self, event):
+        self.timer.stop()
+        self.runner.wait(60000)
+        super().closeEvent(event)
