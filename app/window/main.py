@@ -10,35 +10,30 @@ from __future__ import annotations
 
 import copy
 import os
-from html import escape
 from pathlib import Path
 
 import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from ventcast.physiology.forecast import predict
-
 from .. import CAUTION
-from ..casefile import CaseError
-from ..engine import (RECHECK_NOTE, fit_case, forecast_fitted, limit_checks, plan_case, sample_fit, steady_block, to_settings,
-                      wean_case)
+from ..engine import RECHECK_NOTE, plan_case, steady_block, wean_case
 from ..worker import EngineRunner
 from .bedside import BedsidePanel
-from .common import (APP_NAME, AUTOSAVE_MS, DEBOUNCE_MS, ORG_NAME,
-                     TrialState, file_stamp, new_recovery_path)
+from .common import APP_NAME, AUTOSAVE_MS, DEBOUNCE_MS, ORG_NAME, TrialState, file_stamp, new_recovery_path
 from .dialogs import GoalsDialog
 from .files import CaseFiles
-from .menus import build_menus, show_about, show_shortcuts
+from .forecasting import ForecastPipeline
 from .limits import LimitsPanel
 from .lungfit import LungFitPanel
+from .menus import build_menus, show_about, show_shortcuts
 from .outlook import OutlookPanel
 from .plans import OptionsPanel, StepDownPanel
 from .trial import TrialPanel
 from .trials import TrialEditing
 
 
-class MainWindow(CaseFiles, TrialEditing, QtWidgets.QMainWindow):
+class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindow):
     """The window. ``synchronous=True`` computes on the calling thread (tests, screenshots)."""
 
     steady_shown = QtCore.Signal(object)     # stage 1: steady states and Limits on screen
@@ -207,152 +202,6 @@ class MainWindow(CaseFiles, TrialEditing, QtWidgets.QMainWindow):
         self._start_busy(cancellable=True)
         case_copy = copy.deepcopy(case)
         self.runner.submit("fit", lambda: self._fit_work(case_copy))
-
-    @staticmethod
-    def _fit_work(case):
-        # The estimate alone first (a tenth of the time): its forecast is shown while the posterior
-        # draws, which give every likely range, are computed in a second job ("draws").
-        _patient, _obs, result = fit_case(case, sample=False)
-        now = predict(result.model, to_settings(case["settings"]))
-        return {"result": result, "now": now}
-
-    def _fitted_for(self, doing: str):
-        """The complete fit (with its draws) for ``doing``, or None after saying why there is none yet."""
-        if self.fit_result is None:
-            self.status.setText(f"\u2716 the lung model is not fitted yet: cannot {doing}")
-            return None
-        if not self.fit_result.sampled:
-            self.status.setText(f"\u2716 the fit's likely ranges are still being computed (a few seconds): "
-                                f"{doing} when they are shown")
-            return None
-        return self.fit_result
-
-    # --- requests -----------------------------------------------------------------------------------
-    def _request_forecast(self):
-        """Stage 1 of a forecast: steady states of every trial and the Limits (fast); stages 2 (course and
-        likely range) and 3 (band of the course, next best measurement) follow as each result lands."""
-        if self.fit_result is None:
-            return
-        try:
-            trials = self._checked_trials()
-        except CaseError as exc:
-            self._on_failure(None, str(exc))
-            self._submit_draws()  # no forecast for a refused trial: the draws are still needed
-            return
-        case, result, active = copy.deepcopy(self.state.case), self.fit_result, self.state.active
-        self.status.setText(f"forecasting Trial {active}...")
-        self.runner.cancel("course")
-        self.runner.cancel("band")
-        self.runner.submit("steady", lambda: self._steady_work(case, result, trials, active))
-
-    @staticmethod
-    def _steady_work(case, result, trials, active):
-        compare, reasons = {}, {}
-        for t, s in trials.items():
-            p = predict(result.model, to_settings(s))
-            compare[t] = steady_block(p) if bool(np.all(p.success)) else None
-            reasons[t] = p.message
-        if compare[active] is None:
-            raise ArithmeticError(f"Trial {active}: the model has no steady state at these settings ({reasons[active]})")
-        return {"active": active, "trial_settings": trials[active], "compare": compare, "steady": compare[active],
-                "limit_lines": limit_checks(compare[active], case.get("goals"), fio2=float(trials[active]["fio2"])),
-                "case": case}
-
-    def _request_course(self, steady):
-        case, result, trial = steady["case"], self.fit_result, steady["trial_settings"]
-
-        def work():
-            out = forecast_fitted(case, result, trial, with_band=False, with_next=False)
-            out.update(active=steady["active"], trial_settings=trial, compare=steady["compare"],
-                       limit_lines=steady["limit_lines"])
-            return out
-
-        self.runner.submit("course", work)
-
-    def _request_band(self, forecast):
-        case, result = copy.deepcopy(self.state.case), self.fit_result
-        trial = forecast["trial_settings"]
-        self.runner.submit("band", lambda: forecast_fitted(case, result, trial, with_band=True, with_next=True))
-
-    # --- results ------------------------------------------------------------------------------------
-    def _on_result(self, request, result):
-        if request.kind == "fit":
-            self.fit_result = result["result"]
-            self.now_prediction = result["now"]
-            self._show_fit()
-            # The draws start once the first forecast is on screen (they would slow it down); see
-            # _submit_draws.
-            self._draws_for = self.fit_result
-            self._request_forecast()
-        elif request.kind == "draws":
-            if result["estimate"] is not self.fit_result:
-                return  # draws of a fit that has since been replaced (another case, changed data)
-            self._stop_busy()
-            self.fit_result = result["result"]
-            self._show_fit()
-            self.fit_shown.emit(self.fit_result)
-            self._request_forecast()
-        elif request.kind == "steady":
-            self.last_steady = result
-            self._show_steady(result)
-            self.status.setText(f"Trial {result['active']}: steady state shown; computing the course...")
-            self.steady_shown.emit(result)
-            self._request_course(result)
-        elif request.kind == "course":
-            self.last_forecast = result
-            self.last_band = None
-            self._show_forecast(result)
-            self.forecast_shown.emit(result)
-            self._submit_draws()
-            if self.fit_result is not None and self.fit_result.sampled:
-                self.status.setText(f"Trial {result['active']}: course shown; computing its likely range...")
-                self._request_band(result)
-            else:
-                self.status.setText(f"Trial {result['active']}: forecast from the fitted estimate shown; computing "
-                                    f"the likely ranges (posterior draws)...")
-        elif request.kind == "export":
-            self._stop_busy()
-            self._finish_export(result)
-        elif request.kind == "plan":
-            self._stop_busy()
-            self.last_plan = result
-            self.options.show_plan(result, self.units)
-            self.status.setText("options shown")
-            self.plan_shown.emit(result)
-        elif request.kind == "wean":
-            self._stop_busy()
-            self.last_wean = result
-            self.step_down.show_wean(result, self.units)
-            self.status.setText("step-down plan shown")
-            self.wean_shown.emit(result)
-        elif request.kind == "band":
-            self.last_band = result
-            self._show_band(result)
-            self.status.setText("forecast and likely range shown")
-            self.band_shown.emit(result)
-
-    def _submit_draws(self):
-        """Start the posterior draws of the estimate shown (once), after its first forecast."""
-        estimate, self._draws_for = getattr(self, "_draws_for", None), None
-        if estimate is not None and estimate is self.fit_result:
-            self.runner.submit("draws", lambda: {"estimate": estimate, "result": sample_fit(estimate)})
-
-    def _on_failure(self, request, message):
-        if request is not None and request.kind in ("steady", "course"):
-            self._submit_draws()  # no first forecast at this trial: the draws are still needed
-        if request is not None and request.kind in ("fit", "draws", "plan", "wean", "export"):
-            self._stop_busy()
-        if request is not None and request.kind == "plan":
-            self.options_message.setText(f"\u2716 {escape(message)}")
-        if request is not None and request.kind == "wean":
-            self.wean_message.setText(f"\u2716 {escape(message)}")
-        if request is not None and request.kind == "fit":
-            self.fit_message.setText(f"<b>The model could not be fitted:</b> {escape(message)}")
-        if request is not None and request.kind == "draws":
-            self.fit_message.setText(f"<b>No likely ranges:</b> {escape(message)}. The forecast shown is the fitted "
-                                     f"estimate alone; do not act on it without a range.")
-        self.status.setText(f"\u2716 {message}")
-        self.failure_shown.emit(message)
 
     def _show_fit(self):
         self.lung_fit.show_fit(self.fit_result)
