@@ -239,6 +239,9 @@ def validate(doc) -> dict:
     case["settings"] = check_settings("settings", case["settings"], pbw)
     if case.get("goals"):
         check_goals("goals", case["goals"])
+    if case.get("trials") is not None:
+        case["trials"] = {t: (None if case["trials"].get(t) is None else check_settings(f"trials.{t}", case["trials"][t], pbw))
+                          for t in ("A", "B", "C")}
     pb = patient["barometric_mmhg"]
     t = patient["temperature_c"]
     for i, obs in enumerate(case["observations"]):

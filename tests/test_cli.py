@@ -333,3 +333,18 @@ def test_a_fit_is_remembered_for_the_same_data_only():
     done = engine.sample_fit(estimate)
     assert np.array_equal(done.draws.shunt_fixed, sample_posterior(estimate).draws.shunt_fixed)
     assert engine.fit_case(case)[2] is done
+
+
+def test_saved_trials_are_checked_like_settings():
+    """A case file's trials (saved from the window) are checked like the settings: a bad one is refused
+    with its field, value and accepted range; the command line forecasts from the settings, not them."""
+    case = casefile.load_demo("ards-moderate")
+    doc = {**case, "trials": {"A": dict(case["settings"], peep_cmh2o=14), "B": None, "C": None}}
+    out = casefile.validate(doc)
+    assert out["trials"]["A"]["peep_cmh2o"] == 14 and out["trials"]["B"] is None
+    bad = {**case, "trials": {"A": dict(case["settings"]), "B": dict(case["settings"], vt_ml=1500)}}
+    with pytest.raises(casefile.CaseError) as err:
+        casefile.validate(bad)
+    assert err.value.field == "trials.B.vt_ml" and "1500" in str(err.value) and "1139" in str(err.value)
+    with pytest.raises(casefile.CaseError, match="trials"):
+        casefile.validate({**case, "trials": {"B": dict(case["settings"])}})  # Trial A is required

@@ -212,6 +212,28 @@ def test_units_switch_to_kpa(window, qtbot):
     window.sao2_action.setChecked(False)
 
 
+def test_save_keeps_the_trials_and_open_restores_them(window, qtbot, qapp, tmp_path):
+    """Issue 17, item 9: Save writes the trials (F1 says "trials and goals included"); opening the file
+    brings them back. A new trial starts from the current settings, not from Trial A."""
+    window.set_trial_value("peep_cmh2o", 14)
+    window.trial_tabs.setCurrentIndex(1)
+    assert window.state.trials["B"] == window.state.case["settings"] and window.state.trials["B"]["peep_cmh2o"] == 10
+    window.set_trial_value("fio2", 0.8)
+    path = tmp_path / "planned.ventcast.json"
+    assert window._save_to(str(path)) and not window.has_unsaved_work()
+    doc = json.loads(path.read_text())
+    assert doc["trials"]["A"]["peep_cmh2o"] == 14 and doc["trials"]["B"]["fio2"] == 0.8 and doc["trials"]["C"] is None
+    assert "trials" not in window.state.case
+    again = win.MainWindow(load(str(path)), path=str(path))
+    try:
+        with qtbot.waitSignal(again.band_shown, timeout=WAIT_MS):
+            pass
+        assert again.state.trials["A"]["peep_cmh2o"] == 14 and again.state.trials["B"]["fio2"] == 0.8
+        assert again.spins["peep_cmh2o"].value() == 14 and not again.has_unsaved_work()
+    finally:
+        _close(again, qapp)
+
+
 def test_pao2_axis_reads_mmhg_after_the_saturation_view_twice(window, qtbot):
     """Issue 17, item 2: after SaO2 and back (twice) the PaO2 axis still reads the course in mmHg (it read
     65000-80000: pyqtgraph kept an SI-prefix scale of 1000 from the 0-1 SaO2 axis), and so does kPa."""
@@ -253,19 +275,56 @@ def test_save_and_reopen_keeps_goals(window, qtbot, tmp_path):
     assert window.windowTitle().endswith("saved.ventcast.json")
 
 
+def _nothing_from_the_trial_on_screen(window):
+    """Every number, curve and Limits line computed from the trial is gone."""
+    col = 1 + "ABC".index(window.state.active)
+    assert all(window.compare.item(r, col).text() == "-" for r in range(window.compare.rowCount()))
+    assert all(chart.trial.getData()[0] is None or len(chart.trial.getData()[0]) == 0 for chart in window.charts.values())
+    assert window.limits.rowCount() == 0 and "not checked" in window.limits_title.text()
+    assert window.last_forecast is None and window.last_band is None
+
+
 def test_bad_trial_value_is_reported_not_computed(window, qtbot):
+    """Issue 17, item 1: a refused trial clears the forecast computed before and says why next to the
+    controls, in the words on screen (not key names)."""
+    assert window.last_forecast is not None and window.limits.rowCount() > 0
     window.state.trials["A"]["inspiratory_time_s"] = 3.5  # longer than the breath at RR 20
     with qtbot.waitSignal(window.failure_shown, timeout=WAIT_MS) as blocker:
         window._request_forecast()
     assert "Trial A.inspiratory_time_s" in blocker.args[0] and "breathe out" in blocker.args[0]
     assert window.status.text().startswith("\u2716")
+    problem = window.trial_panel.problem
+    assert problem.isVisibleTo(window) and problem.text().startswith("\u2716 Trial A, Ti: value 3.5 s leaves no time")
+    assert "inspiratory_time_s" not in problem.text() + window.status.text()
+    _nothing_from_the_trial_on_screen(window)
     # Accepted settings where the model finds no steady state: the failure and its reason, never numbers.
     window.state.trials["A"]["inspiratory_time_s"] = 2.9
-    before = window.last_forecast
     with qtbot.waitSignal(window.failure_shown, timeout=WAIT_MS) as blocker:
         window._request_forecast()
     assert "no steady state" in blocker.args[0] and "(" in blocker.args[0]
-    assert window.last_forecast is before
+    assert "no steady state" in problem.text()
+    _nothing_from_the_trial_on_screen(window)
+    # A good value again: the forecast comes back and the message goes.
+    window.state.trials["A"]["inspiratory_time_s"] = 0.9
+    with qtbot.waitSignal(window.band_shown, timeout=WAIT_MS):
+        window._request_forecast()
+    assert not problem.isVisibleTo(window) and window.limits.rowCount() > 0 and window.last_forecast is not None
+
+
+def test_spin_boxes_accept_what_the_engine_accepts(window, qtbot):
+    """Issue 17, item 1: VT 1200 mL cannot be entered for a 57 kg PBW patient (the engine accepts 2-20
+    mL/kg PBW, 114-1139 mL); every control's range is the engine's."""
+    from ventcast.app.casefile import SETTING_RANGES
+    pbw = window._pbw()
+    vt = window.spins["vt_ml"]
+    assert (vt.minimum(), vt.maximum()) == (round(2 * pbw), round(20 * pbw)) == (114, 1139)
+    window.set_trial_value("vt_ml", 1200)
+    assert vt.value() == 1139
+    for key, (lo, hi, _unit) in SETTING_RANGES.items():
+        if key in window.spins:
+            assert (window.spins[key].minimum(), window.spins[key].maximum()) == (lo, hi), key
+    window.sliders["vt_ml"].setValue(window.sliders["vt_ml"].maximum())
+    assert vt.value() == pytest.approx(114 + 10 * round((1139 - 114) / 10), abs=10)
 
 
 def test_rapid_changes_never_block_and_the_newest_wins(window, qtbot, monkeypatch):

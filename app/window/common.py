@@ -16,6 +16,7 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtGui
 
 from .. import MMHG_PER_KPA
+from ..casefile import SETTING_RANGES
 
 APP_NAME = "Ventcast"
 ORG_NAME = "Ventcast"
@@ -32,15 +33,26 @@ COLOUR = {"pao2": OKABE_ITO["blue"], "sao2": OKABE_ITO["blue"], "paco2": OKABE_I
 #: Symbols for Limits lines, so that status never rests on colour alone.
 STATUS_SYMBOL = {"ok": "\u2713 ok", "info": "i note", "caution": "\u26a0 caution", "danger": "\u2716 danger"}
 
-#: The trial-setting controls: key, label, unit, minimum, maximum, step, decimals.
+#: The trial-setting controls: key, label, unit, minimum, maximum, step, decimals. The ranges are the
+#: engine's accepted ranges (``casefile.SETTING_RANGES``); VT's is set per case (2-20 mL/kg PBW).
 CONTROLS = (
     ("fio2", "FiO2", "", 0.21, 1.0, 0.05, 2),
-    ("peep_cmh2o", "PEEP", "cmH2O", 0.0, 30.0, 1.0, 0),
+    ("peep_cmh2o", "PEEP", "cmH2O", *SETTING_RANGES["peep_cmh2o"][:2], 1.0, 0),
     ("vt_ml", "VT", "mL", 100.0, 1200.0, 10.0, 0),
-    ("inspiratory_pressure_cmh2o", "Inspiratory pressure", "cmH2O", 1.0, 50.0, 1.0, 0),
-    ("rr_per_min", "RR", "/min", 4.0, 60.0, 1.0, 0),
-    ("inspiratory_time_s", "Ti", "s", 0.3, 3.0, 0.05, 2),
+    ("inspiratory_pressure_cmh2o", "Inspiratory pressure", "cmH2O", *SETTING_RANGES["inspiratory_pressure_cmh2o"][:2],
+     1.0, 0),
+    ("rr_per_min", "RR", "/min", *SETTING_RANGES["rr_per_min"][:2], 1.0, 0),
+    ("inspiratory_time_s", "Ti", "s", *SETTING_RANGES["inspiratory_time_s"][:2], 0.05, 2),
 )
+#: What each settings key is called on screen.
+SETTING_LABELS = {"mode": "Mode", **{key: label for key, label, *_ in CONTROLS},
+                  "apparatus_dead_space_ml": "apparatus dead space"}
+
+
+def field_in_words(field: str) -> str:
+    """A case-file path in the words on screen: 'Trial A.vt_ml' -> 'Trial A, VT'."""
+    head, _, key = field.rpartition(".")
+    return f"{head}, {SETTING_LABELS.get(key, key.replace('_', ' '))}" if head else SETTING_LABELS.get(key, key)
 
 SHORTCUTS = (
     ("Ctrl+O", "open a case file"), ("Ctrl+S", "save the case (trials and goals included)"),

@@ -95,7 +95,7 @@ class CaseFiles:
                 self.status.setText(f"not saved: {path} changed on disk; use Save as to keep both")
                 return False
         try:
-            save(path, self.state.case)  # trials are not part of a case file; the recovery file keeps them
+            save(path, {**self.state.case, "trials": self.state.trials})  # trials and goals are saved with the case
         except (CaseError, OSError) as exc:
             self._on_failure(None, f"not saved: {exc}")
             return False

@@ -16,6 +16,7 @@ from ventcast.physiology.forecast import predict
 
 from ..casefile import CaseError
 from ..engine import fit_case, forecast_fitted, limit_checks, sample_fit, steady_block, to_settings
+from .common import field_in_words
 
 
 class ForecastPipeline:
@@ -49,7 +50,8 @@ class ForecastPipeline:
         try:
             trials = self._checked_trials()
         except CaseError as exc:
-            self._on_failure(None, str(exc))
+            self._show_refused(f"{field_in_words(exc.field)}: {str(exc)[len(exc.field) + 2:]}")
+            self.failure_shown.emit(str(exc))
             self._submit_draws()  # no forecast for a refused trial: the draws are still needed
             return
         case, result, active = copy.deepcopy(self.state.case), self.fit_result, self.state.active
@@ -150,8 +152,19 @@ class ForecastPipeline:
         if estimate is not None and estimate is self.fit_result:
             self.runner.submit("draws", lambda: {"estimate": estimate, "result": sample_fit(estimate)})
 
+    def _show_refused(self, why: str):
+        """No forecast for the trial: clear every number, curve and Limits line computed from the trial
+        before (never leave them on screen as if they were its forecast) and say why by the controls."""
+        self.last_steady = self.last_forecast = self.last_band = None
+        self.trial_panel.show_problem(why)
+        self._fill_compare({})
+        self.outlook.clear()
+        self.limits_panel.clear(self.state.active, "no forecast for this trial")
+        self.status.setText(f"\u2716 {why}")
+
     def _on_failure(self, request, message):
         if request is not None and request.kind in ("steady", "course"):
+            self._show_refused(message)
             self._submit_draws()  # no first forecast at this trial: the draws are still needed
         if request is not None and request.kind in ("fit", "draws", "plan", "wean", "export"):
             self._stop_busy()

@@ -35,6 +35,14 @@ class LimitsPanel(QtWidgets.QWidget):
 
     def set_trial(self, trial: str):
         self.title.setText(f"Limits of Trial {trial}")
+        self.title.setWordWrap(False)
+
+    def clear(self, trial: str, why: str):
+        """No limit lines: the trial has no forecast (``why``)."""
+        self.table.setRowCount(0)
+        self.title.setText(f"Limits of Trial {trial}: not checked ({why})")
+        self.title.setWordWrap(True)
+        self.recheck_label.clear()
 
     def fill(self, lines: list, units: str):
         self.table.setRowCount(len(lines))

@@ -20,7 +20,7 @@ from .. import CAUTION
 from ..engine import RECHECK_NOTE, plan_case, steady_block, wean_case
 from ..worker import EngineRunner
 from .bedside import BedsidePanel
-from .common import APP_NAME, AUTOSAVE_MS, DEBOUNCE_MS, ORG_NAME, TrialState, file_stamp, new_recovery_path
+from .common import APP_NAME, AUTOSAVE_MS, DEBOUNCE_MS, ORG_NAME, TRIALS, TrialState, file_stamp, new_recovery_path
 from .dialogs import GoalsDialog
 from .files import CaseFiles
 from .forecasting import ForecastPipeline
@@ -184,6 +184,10 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
         self._drop_recovery()
         self.case_unsaved = False
         self.disk_stamp = file_stamp(path) if path else None
+        case = dict(case)
+        saved = case.pop("trials", None)  # trials saved in the case file come back as they were
+        if trials is None and saved:
+            trials = {t: (None if saved.get(t) is None else dict(saved[t])) for t in TRIALS}
         self.state = TrialState(case=case, trials=trials or {"A": dict(case["settings"]), "B": None, "C": None},
                                 path=path)
         self.undo_stack.clear()
@@ -192,6 +196,8 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
         self.last_forecast = None
         self.last_band = None
         self.bedside.show_case(self.state.case, self.units)
+        pbw = self._pbw()  # VT is accepted from 2 to 20 mL/kg PBW (casefile.check_settings)
+        self.trial_panel.set_range("vt_ml", round(2.0 * pbw), round(20.0 * pbw))
         self.trial_panel.select_tab("A")
         self._show_trial_controls()
         self._update_title()
@@ -222,6 +228,8 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
         self.outlook.draw(out, self.now_prediction, self.units, self.oxygen_view, pplat_max, band)
 
     def _show_steady(self, out):
+        self.trial_panel.clear_problem()
+        self.limits_panel.set_trial(out["active"])
         self._fill_compare(out["compare"])
         self._fill_limits(out["limit_lines"])
 

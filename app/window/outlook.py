@@ -126,6 +126,14 @@ class OutlookPanel(QtWidgets.QGroupBox):
         pp.vb.sigResized.connect(lambda: self.vdvt_view.setGeometry(pp.vb.sceneBoundingRect()))
         lay.addWidget(self.graphics)
 
+    def clear(self):
+        """Remove every curve computed from the trial (a refused or failed trial shows none)."""
+        for chart in self.charts.values():
+            chart.set([], [])
+        for key in ("pplat", "dp"):
+            self.pressure_items[key].setData([], [])
+        self.vdvt.setData([], [])
+
     def label_axes(self, units: str, oxygen_view: str):
         """Axis titles in the unit of the window; the oxygen chart shows PaO2 or SaO2."""
         u = "kPa" if units == "kPa" else "mmHg"

@@ -59,7 +59,8 @@ class TrialPanel(QtWidgets.QGroupBox):
             slider.setPageStep(5)
             slider.setMaximumWidth(150)
             spin.valueChanged.connect(lambda _v, k=key: self._changed(k))
-            slider.valueChanged.connect(lambda i, k=key, lo=lo, step=step: self._slider_moved(k, lo + i * step))
+            slider.setProperty("low", lo)
+            slider.valueChanged.connect(lambda i, k=key, step=step: self._slider_moved(k, i * step))
             name = QtWidgets.QLabel(label)
             lay.addWidget(name, row, 0)
             lay.addWidget(spin, row, 1)
@@ -67,6 +68,13 @@ class TrialPanel(QtWidgets.QGroupBox):
             self.spins[key], self.sliders[key], self.rows[key] = spin, slider, (name, spin, slider)
         self.vt_per_kg = QtWidgets.QLabel("")
         lay.addWidget(self.vt_per_kg, 2 + len(CONTROLS), 1, 1, 2)
+        # Why no forecast is shown for this trial, in the words on screen, next to the controls.
+        self.problem = QtWidgets.QLabel("")
+        self.problem.setWordWrap(True)
+        self.problem.setTextFormat(QtCore.Qt.PlainText)
+        self.problem.setStyleSheet("QLabel { color: #8a1c00; font-weight: bold; }")
+        self.problem.hide()
+        lay.addWidget(self.problem, 3 + len(CONTROLS), 0, 1, 4)
         self.compare = QtWidgets.QTableWidget(0, 4)
         self.compare.setHorizontalHeaderLabels(["now (model)", "Trial A", "Trial B", "Trial C"])
         self.compare.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
@@ -81,9 +89,29 @@ class TrialPanel(QtWidgets.QGroupBox):
         if not self._quiet:
             self.control_changed.emit(key)
 
-    def _slider_moved(self, key, value):
+    def _slider_moved(self, key, offset):
         if not self._quiet:
-            self.spins[key].setValue(value)
+            self.spins[key].setValue(float(self.sliders[key].property("low")) + offset)
+
+    def set_range(self, key: str, low: float, high: float):
+        """Accepted range of one control (the engine's; VT's depends on the patient's PBW)."""
+        step = self.spins[key].singleStep()
+        self._quiet = True
+        try:
+            self.spins[key].setRange(low, high)
+            self.sliders[key].setRange(0, int(round((high - low) / step)))
+            self.sliders[key].setProperty("low", low)
+        finally:
+            self._quiet = False
+
+    def show_problem(self, text: str):
+        """Say why the trial has no forecast (every number computed from the trial is cleared)."""
+        self.problem.setText(f"\u2716 {text}")
+        self.problem.show()
+
+    def clear_problem(self):
+        self.problem.clear()
+        self.problem.hide()
 
     def mode_value(self) -> str:
         return "volume" if self.mode.currentIndex() == 0 else "pressure"
@@ -106,13 +134,14 @@ class TrialPanel(QtWidgets.QGroupBox):
             self.mode.setCurrentIndex(0 if s["mode"] == "volume" else 1)
             # The size of the breath is VT in volume control, the inspiratory pressure in pressure control.
             hidden = "inspiratory_pressure_cmh2o" if s["mode"] == "volume" else "vt_ml"
-            for key, _label, _unit, lo, _hi, step, _dec in CONTROLS:
+            for key, _label, _unit, _lo, _hi, step, _dec in CONTROLS:
                 v = s.get(key)
                 for w in self.rows[key]:
                     w.setVisible(key != hidden)
                 if v is not None:
                     self.spins[key].setValue(float(v))
-                    self.sliders[key].setValue(int(round((float(v) - lo) / step)))
+                    low = float(self.sliders[key].property("low"))
+                    self.sliders[key].setValue(int(round((float(v) - low) / step)))
         finally:
             self._quiet = False
         self.vt_per_kg.setText(vt_text)

@@ -22,7 +22,7 @@ class TrialEditing:
     def _on_trial_tab(self, index):
         t = TRIALS[index]
         if self.state.trials[t] is None:
-            self.state.trials[t] = dict(self.state.trials["A"])
+            self.state.trials[t] = dict(self.state.case["settings"])  # a new trial starts from the current settings
         self.state.active = t
         self._show_trial_controls()
         self.debounce.start()
