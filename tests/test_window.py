@@ -255,6 +255,26 @@ def test_pao2_axis_reads_mmhg_after_the_saturation_view_twice(window, qtbot):
     window.kpa_action.setChecked(False)
 
 
+def test_kpa_reaches_limits_and_goals(window, qtbot):
+    """Issue 17, item 6: in kPa the Limits give value and limit in kPa, and the goals dialog edits gas
+    goals in kPa (stored in mmHg; OK without an edit leaves the goals exactly as they were)."""
+    window.kpa_action.setChecked(True)
+    try:
+        rows = [window.limits.item(i, 1).text() for i in range(window.limits.rowCount())]
+        pao2 = next(r for r in rows if r.startswith("PaO2"))
+        assert "mmHg" not in " ".join(rows) and pao2.split("\n")[0].endswith("limit 7.3-10.7 kPa"), pao2
+        before = copy.deepcopy(window.state.case.get("goals") or {})
+        dialog = window.edit_goals()
+        assert dialog.fields["pao2_mmhg"][0].suffix() == " kPa" and dialog.fields["pao2_mmhg"][0].value() == 7.3
+        assert dialog.goals() == before
+        dialog.fields["pao2_mmhg"][0].setValue(8.0)
+        assert dialog.goals()["pao2_mmhg"][0] == round(8.0 * win.MMHG_PER_KPA, 1)
+        dialog.reject()
+        dialog.deleteLater()
+    finally:
+        window.kpa_action.setChecked(False)
+
+
 def test_goals_are_editable_and_checked(window, qtbot):
     dialog = window.edit_goals()
     dialog.fields["pplat_max_cmh2o"][0].setValue(25)
@@ -679,12 +699,34 @@ def _png_size(path):
 def test_screenshot_command_writes_a_png_of_the_size_asked(tmp_path):
     out = tmp_path / "shot.png"
     proc = subprocess.run([sys.executable, "-m", "ventcast", "open", "--demo", "postop-wean", "--set", "fio2=0.35",
-                           "--screenshot", str(out), "--size", "1200x800"], cwd=ROOT, capture_output=True, text=True,
+                           "--screenshot", str(out), "--size", "1280x800"], cwd=ROOT, capture_output=True, text=True,
                           timeout=300, env=dict(os.environ, QT_QPA_PLATFORM="offscreen"))
     assert proc.returncode == 0, proc.stderr
     assert out.stat().st_size > 10_000
-    assert _png_size(out) == (1200, 800)
+    assert _png_size(out) == (1280, 800)
     assert proc.stderr == ""
+
+
+def test_window_fits_1280_by_800_and_a_smaller_screenshot_is_refused(qtbot, qapp, tmp_path):
+    """Issue 17, item 3: the window can be 1280x800 with the caution and the status bar on screen (panels
+    scroll instead); a screenshot smaller than the window can be drawn is refused, never shrunk."""
+    w = win.MainWindow(load_demo("copd-trapping"), synchronous=True)
+    try:
+        w.resize(1280, 800)
+        w.show()
+        qapp.processEvents()
+        hint = w.minimumSizeHint()
+        assert hint.width() <= 1280 and hint.height() <= 760, hint
+        assert (w.width(), w.height()) == (1280, 800)
+        caution = w.caution_label.mapTo(w, QtCore.QPoint(0, 0))
+        assert w.caution_label.isVisible() and caution.y() + w.caution_label.height() <= 800 - w.statusBar().height()
+        assert w.statusBar().isVisible() and w.statusBar().mapTo(w, QtCore.QPoint(0, 0)).y() < 800
+    finally:
+        _close(w, qapp)
+    from ventcast.app.cli import main
+    out = tmp_path / "small.png"
+    assert main(["open", "--demo", "ards-moderate", "--screenshot", str(out), "--size", "800x600"]) == 2
+    assert not out.exists()
 
 
 def test_open_refuses_bad_input_before_any_window(tmp_path):

@@ -49,7 +49,7 @@ class BedsidePanel(QtWidgets.QGroupBox):
         self.history.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
         self.history.horizontalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeToContents)
         lay.addWidget(self.history, 1)
-        self.setMinimumWidth(270)
+        self.setMinimumWidth(220)
 
     def show_case(self, case: dict, units: str):
         """The case's label, latest observation, settings, indices and past observations."""

@@ -75,6 +75,18 @@ def gas_text(mmhg, units: str, digits: int = 0) -> str:
     return f"{mmhg:.{digits}f} mmHg"
 
 
+def mmhg_text_in(text: str, units: str) -> str:
+    """Every "<number> mmHg" and "<low>-<high> mmHg" of a text in the window's unit (kPa: one decimal)."""
+    if units != "kPa":
+        return text
+
+    def one(x):
+        return f"{kpa_from_mmhg(float(x)):.1f}"
+
+    text = re.sub(r"(\d+(?:\.\d+)?)-(\d+(?:\.\d+)?) mmHg", lambda m: f"{one(m[1])}-{one(m[2])} kPa", text)
+    return re.sub(r"(\d+(?:\.\d+)?) mmHg", lambda m: f"{one(m[1])} kPa", text)
+
+
 def data_dir() -> Path:
     """Where recovery files live (``VENTCAST_DATA_DIR`` overrides, for tests)."""
     env = os.environ.get("VENTCAST_DATA_DIR")

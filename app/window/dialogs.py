@@ -7,29 +7,35 @@ from pathlib import Path
 from PySide6 import QtCore, QtWidgets
 
 from ..casefile import parse_json, read_text, validate
+from .. import MMHG_PER_KPA
 from .common import GOAL_FIELDS, RECOVERY_GLOB, TRIALS, _process_alive, data_dir
 
 
 class GoalsDialog(QtWidgets.QDialog):
     """Per-case goals and limits (the case file's ``goals``); defaults are the published ones."""
 
-    def __init__(self, goals: dict, parent=None):
+    def __init__(self, goals: dict, parent=None, units: str = "mmHg"):
         super().__init__(parent)
         self.setWindowTitle("Goals and limits of this case")
         form = QtWidgets.QFormLayout(self)
         self.fields = {}
         self.original = dict(goals)
         self.defaults = {}
+        self.shown = {}  # the values as first shown, in the window's unit: unchanged ones are kept as they were
+        self.kpa = set()  # fields shown in kPa (gas pressures when the window shows kPa)
         for key, label, unit, default, lo, hi, step, dec in GOAL_FIELDS:
             self.defaults[key] = list(default) if isinstance(default, tuple) else default
             value = goals.get(key, default)
+            if unit == "mmHg" and units == "kPa":
+                self.kpa.add(key)
+                unit, lo, hi, step, dec = "kPa", lo / MMHG_PER_KPA, hi / MMHG_PER_KPA, 0.1, 1
             spins = []
             for v in (value if isinstance(default, tuple) else (value,)):
                 sp = QtWidgets.QDoubleSpinBox()
+                sp.setDecimals(dec)
                 sp.setRange(lo, hi)
                 sp.setSingleStep(step)
-                sp.setDecimals(dec)
-                sp.setValue(float(v))
+                sp.setValue(float(v) / MMHG_PER_KPA if key in self.kpa else float(v))
                 sp.setSuffix(f" {unit}" if unit and unit != "fraction" else "")
                 spins.append(sp)
             row = QtWidgets.QHBoxLayout()
@@ -39,6 +45,7 @@ class GoalsDialog(QtWidgets.QDialog):
                 row.addWidget(sp)
             form.addRow(label, row)
             self.fields[key] = spins
+            self.shown[key] = [sp.value() for sp in spins]
         buttons = QtWidgets.QDialogButtonBox(QtWidgets.QDialogButtonBox.Ok | QtWidgets.QDialogButtonBox.Cancel)
         buttons.accepted.connect(self._accept)
         buttons.rejected.connect(self.reject)
@@ -51,7 +58,12 @@ class GoalsDialog(QtWidgets.QDialog):
         default. Pressing OK without editing leaves the goals exactly as they were."""
         out = dict(self.original)
         for key, spins in self.fields.items():
-            vals = [round(sp.value(), 4) for sp in spins]
+            if [sp.value() for sp in spins] == self.shown[key]:
+                continue  # not edited: the goal stays exactly as it was (no unit round trip)
+            if key in self.kpa:
+                vals = [round(sp.value() * MMHG_PER_KPA, 1) for sp in spins]
+            else:
+                vals = [round(sp.value(), 4) for sp in spins]
             value = vals if len(vals) == 2 else vals[0]
             if key in self.original or value != self.defaults[key]:
                 out[key] = value

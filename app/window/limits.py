@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from PySide6 import QtCore, QtWidgets
 
-from .common import STATUS_SYMBOL, gas_text
+from .common import STATUS_SYMBOL, mmhg_text_in
 
 
 class LimitsPanel(QtWidgets.QWidget):
@@ -25,6 +25,9 @@ class LimitsPanel(QtWidgets.QWidget):
         self.table.setWordWrap(True)
         self.table.horizontalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeToContents)
         self.table.horizontalHeader().setStretchLastSection(True)
+        self.table.setTextElideMode(QtCore.Qt.ElideNone)
+        # Rows grow to their wrapped text whenever the column width changes (nothing cut off with "...").
+        self.table.horizontalHeader().sectionResized.connect(lambda *_: self.table.resizeRowsToContents())
         ll.addWidget(self.table, 1)
         self.goals_button = QtWidgets.QPushButton("Edit goals and limits of this case...")
         self.goals_button.clicked.connect(self.goals_requested.emit)
@@ -47,13 +50,11 @@ class LimitsPanel(QtWidgets.QWidget):
     def fill(self, lines: list, units: str):
         self.table.setRowCount(len(lines))
         for i, line in enumerate(lines):
-            value = line["value"]
-            if units == "kPa" and value.endswith(" mmHg"):
-                value = gas_text(float(value.split()[0]), units)
-            limit = line["limit"].replace("<=", "\u2264")
+            value = mmhg_text_in(line["value"], units)
+            limit = mmhg_text_in(line["limit"], units).replace("<=", "\u2264").replace(">=", "\u2265")
             check = f"{line['what']} {value}, limit {limit}\nwhy: {line['source']}"
             for j, text in enumerate((STATUS_SYMBOL[line["status"]], check)):
                 item = QtWidgets.QTableWidgetItem(text)
-                item.setToolTip(line["message"])
+                item.setToolTip(mmhg_text_in(line["message"], units))
                 self.table.setItem(i, j, item)
         self.table.resizeRowsToContents()

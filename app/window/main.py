@@ -33,6 +33,17 @@ from .trial import TrialPanel
 from .trials import TrialEditing
 
 
+def _scrolling(panel: QtWidgets.QWidget) -> QtWidgets.QScrollArea:
+    """``panel`` in a scroll area: on a small screen (1280 x 800) it scrolls instead of pushing the
+    caution and the status bar off the screen."""
+    area = QtWidgets.QScrollArea()
+    area.setWidget(panel)
+    area.setWidgetResizable(True)
+    area.setFrameShape(QtWidgets.QFrame.NoFrame)
+    area.setHorizontalScrollBarPolicy(QtCore.Qt.ScrollBarAsNeeded)
+    return area
+
+
 class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindow):
     """The window. ``synchronous=True`` computes on the calling thread (tests, screenshots)."""
 
@@ -104,10 +115,10 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
         self.right_tabs = QtWidgets.QTabWidget()
         for panel, title in ((self.limits_panel, "Limits"), (self.lung_fit, "Lung fit"), (self.options, "Options"),
                              (self.step_down, "Step-down plan")):
-            self.right_tabs.addTab(panel, title)
-        self.right_tabs.setMinimumWidth(380)
+            self.right_tabs.addTab(_scrolling(panel), title)
+        self.right_tabs.setMinimumWidth(300)
         split = QtWidgets.QSplitter(QtCore.Qt.Horizontal)
-        split.addWidget(self.bedside)
+        split.addWidget(_scrolling(self.bedside))
         middle = QtWidgets.QWidget()
         mid = QtWidgets.QVBoxLayout(middle)
         mid.setContentsMargins(0, 0, 0, 0)
@@ -119,6 +130,7 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
         split.setStretchFactor(1, 3)
         split.setStretchFactor(2, 1)
         split.setSizes([280, 900, 420])
+        split.setChildrenCollapsible(False)
         outer.addWidget(split, 1)
         self.caution_label = QtWidgets.QLabel(CAUTION)
         self.caution_label.setWordWrap(True)
@@ -255,7 +267,7 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
                 self.status.setText(f"\u26a0 {line['message']}")
 
     def edit_goals(self):
-        dialog = GoalsDialog(self.state.case.get("goals") or {}, self)
+        dialog = GoalsDialog(self.state.case.get("goals") or {}, self, units=self.units)
         dialog.accepted.connect(lambda: self.set_goals(dialog.goals()))
         dialog.open()
         return dialog

@@ -92,7 +92,13 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
             print(f"ventcast open: the case could not be fitted: {window.status.text()}", file=sys.stderr)
         image = window.grab()
         if image.size().width() != size[0] or image.size().height() != size[1]:
-            image = image.scaled(size[0], size[1])
+            # Never a shrunken picture of a larger window: that would hide what does not fit.
+            hint = window.minimumSizeHint()
+            least = (max(hint.width(), image.size().width()), max(hint.height(), image.size().height()))
+            window.close()
+            _dispose(window, app)
+            raise CaseError("--size", f"value {size[0]}x{size[1]} is smaller than this case's window can be drawn; "
+                                      f"the accepted range is at least {least[0]}x{least[1]}")
         data = QtCore.QByteArray()
         buffer = QtCore.QBuffer(data)
         buffer.open(QtCore.QIODevice.WriteOnly)

@@ -23,7 +23,7 @@ class TrialPanel(QtWidgets.QGroupBox):
 
     COMPARE_ROWS = (("PaO2", "pao2_mmhg", "gas", 0), ("PaCO2", "paco2_mmhg", "gas", 1), ("pH", "ph", "", 2),
                     ("SaO2", "sao2", "", 3), ("VD/VT", "vd_vt", "", 2), ("Pplat", "pplat_cmh2o", "cmH2O", 1),
-                    ("Driving pressure (Pplat \u2212 total PEEP)", "driving_pressure_cmh2o", "cmH2O", 1),
+                    ("\u0394P (Pplat \u2212 total PEEP)", "driving_pressure_cmh2o", "cmH2O", 1),
                     ("Mechanical power", "mechanical_power_j_min", "J/min", 1),
                     ("VT", "vt_ml_per_kg_pbw", "mL/kg PBW", 1), ("Cardiac output", "cardiac_output_l_min", "L/min", 1))
     RANGE_KEYS = {"pao2_mmhg", "paco2_mmhg", "ph", "sao2"}
@@ -81,7 +81,7 @@ class TrialPanel(QtWidgets.QGroupBox):
         self.compare.horizontalHeader().setStretchLastSection(True)
         self.compare.verticalHeader().setDefaultSectionSize(20)
         self.compare.setMinimumHeight(236)
-        self.compare.setMinimumWidth(520)
+        self.compare.setMinimumWidth(300)  # scrolls sideways on a small screen
         lay.addWidget(self.compare, 0, 3, 3 + len(CONTROLS), 1)
         lay.setColumnStretch(3, 1)
 
