@@ -432,7 +432,7 @@ def test_exports_report_csv_and_charts(window, qtbot, tmp_path):
     text = " ".join(" ".join(p.extract_text().split()) for p in pypdf.PdfReader(str(tmp_path / "r.pdf")).pages)
     assert "not a medical device" in text and "PEEP 12 cmH2O" in text
     files = window.export_charts(str(tmp_path / "charts"))
-    assert len(files) == 8 and all(Path(f).stat().st_size > 1000 for f in files)
+    assert len(files) == 10 and all(Path(f).stat().st_size > 1000 for f in files)
     assert (tmp_path / "charts" / "outlook-oxygen.svg").read_text().lstrip().startswith("<?xml")
 
 

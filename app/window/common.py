@@ -178,7 +178,7 @@ def no_si_prefix(axis: pg.AxisItem) -> None:
     axis.update()
 
 
-def _axis(plot: pg.PlotItem, left: str, bottom: str = "minutes after the change [min]"):
+def _axis(plot: pg.PlotItem, left: str, bottom: str = "after the change [min]"):
     plot.setLabel("left", left)
     plot.setLabel("bottom", bottom)
     for name in ("left", "bottom"):

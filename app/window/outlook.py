@@ -77,53 +77,48 @@ class OutlookChart:
             self.hover.hide()
             return
         p = vb.mapSceneToView(pos)
-        i = int(np.clip(np.searchsorted(self.x, p.x()), 0, self.x.size - 1))
+        i = int(np.argmin(np.abs(self.x - p.x())))  # the nearest sample to the pointer
         self.hover.setText(f"{self.x[i]:.1f} min: {self.y[i]:.3g}")
         self.hover.setPos(self.x[i], self.y[i])
         self.hover.show()
 
 
 class OutlookPanel(QtWidgets.QGroupBox):
-    """Four charts drawn from a forecast (plain data); it computes nothing."""
+    """Five charts drawn from a forecast (plain data); it computes nothing."""
+
+    TITLE = "Outlook (next 60 min; dashed: current settings, solid: trial, band: likely range 90 %)"
 
     def __init__(self, parent=None):
-        super().__init__("Outlook (next 60 min; dashed: current settings, solid: trial, band: likely range 90 %)", parent)
+        super().__init__("Outlook: no forecast yet (fitting the lung model...)", parent)
         lay = QtWidgets.QVBoxLayout(self)
         self.graphics = pg.GraphicsLayoutWidget()
         self.plots = {}
-        for i, key in enumerate(("oxygen", "paco2", "ph", "pressure")):
-            self.plots[key] = self.graphics.addPlot(row=i // 2, col=i % 2)
+        # Gases on top; below, the pressures (two columns wide) and VD/VT on a chart of its own, so that
+        # a fraction is never read against a pressure axis.
+        for key, row, col, span in (("oxygen", 0, 0, 1), ("paco2", 0, 1, 1), ("ph", 0, 2, 1),
+                                    ("pressure", 1, 0, 2), ("vd_vt", 1, 2, 1)):
+            self.plots[key] = self.graphics.addPlot(row=row, col=col, colspan=span)
         self.charts = {"oxygen": OutlookChart(self.plots["oxygen"], COLOUR["pao2"], 10.0),
                        "paco2": OutlookChart(self.plots["paco2"], COLOUR["paco2"], 5.0),
-                       "ph": OutlookChart(self.plots["ph"], COLOUR["ph"], 0.05)}
+                       "ph": OutlookChart(self.plots["ph"], COLOUR["ph"], 0.05),
+                       "vd_vt": OutlookChart(self.plots["vd_vt"], COLOUR["vd_vt"], 0.05)}
         _axis(self.plots["ph"], "pH")
+        _axis(self.plots["vd_vt"], "VD/VT [fraction]")
         pp = self.plots["pressure"]
         _axis(pp, "pressure [cmH2O]")
-        pp.addLegend(offset=(10, -10))  # bottom left, below the pressure lines
+        # The key as the chart's title, above the plot area: a legend inside it covered the lines.
+        pp.setTitle(f"<span style='color:{COLOUR['pplat']}'>\u2014 Pplat</span> &nbsp; "
+                    f"<span style='color:{COLOUR['dp']}'>\u2014 driving pressure</span> &nbsp; "
+                    f"<span style='color:#333333'>\u00b7\u00b7\u00b7 Pplat limit</span>", size="9pt")
         self.pressure_items = {
             "pplat_now": pp.plot(pen=pg.mkPen(COLOUR["pplat"], width=1, style=QtCore.Qt.DashLine)),
-            "pplat": pp.plot(pen=pg.mkPen(COLOUR["pplat"], width=1), name="Pplat"),
+            "pplat": pp.plot(pen=pg.mkPen(COLOUR["pplat"], width=1)),
             "dp_now": pp.plot(pen=pg.mkPen(COLOUR["dp"], width=1, style=QtCore.Qt.DashLine)),
-            "dp": pp.plot(pen=pg.mkPen(COLOUR["dp"], width=1), name="driving pressure"),
+            "dp": pp.plot(pen=pg.mkPen(COLOUR["dp"], width=1)),
         }
         self.pplat_limit = pg.InfiniteLine(angle=0, pos=30, movable=False,
-                                           pen=pg.mkPen("#555555", width=1, style=QtCore.Qt.DotLine),
-                                           label="Pplat limit", labelOpts={"position": 0.1})
+                                           pen=pg.mkPen("#333333", width=1, style=QtCore.Qt.DotLine))
         pp.addItem(self.pplat_limit)
-        # VD/VT on its own right-hand axis of the pressure chart.
-        self.vdvt_view = pg.ViewBox()
-        pp.showAxis("right")
-        pp.scene().addItem(self.vdvt_view)
-        pp.getAxis("right").linkToView(self.vdvt_view)
-        pp.getAxis("right").setLabel("VD/VT [fraction]")
-        pp.getAxis("right").enableAutoSIPrefix(False)
-        self.vdvt_view.setXLink(pp)
-        self.vdvt_now = pg.PlotDataItem(pen=pg.mkPen(COLOUR["vd_vt"], width=1, style=QtCore.Qt.DashLine))
-        self.vdvt = pg.PlotDataItem(pen=pg.mkPen(COLOUR["vd_vt"], width=1))
-        self.vdvt_view.addItem(self.vdvt_now)
-        self.vdvt_view.addItem(self.vdvt)
-        pp.legend.addItem(self.vdvt, "VD/VT (right axis)")
-        pp.vb.sigResized.connect(lambda: self.vdvt_view.setGeometry(pp.vb.sceneBoundingRect()))
         lay.addWidget(self.graphics)
 
     def clear(self):
@@ -132,7 +127,7 @@ class OutlookPanel(QtWidgets.QGroupBox):
             chart.set([], [])
         for key in ("pplat", "dp"):
             self.pressure_items[key].setData([], [])
-        self.vdvt.setData([], [])
+        self.setTitle("Outlook: no forecast for this trial (see the message by the controls)")
 
     def label_axes(self, units: str, oxygen_view: str):
         """Axis titles in the unit of the window; the oxygen chart shows PaO2 or SaO2."""
@@ -184,9 +179,7 @@ class OutlookPanel(QtWidgets.QGroupBox):
         pp = self.plots["pressure"]
         pp.setXRange(0, float(m[-1]), padding=0.01)
         ys = [float(b.pplat), float(b.driving_pressure), steady["pplat_cmh2o"] or 0, steady["driving_pressure_cmh2o"] or 0, 30]
-        pp.setYRange(0, max(ys) * 1.15, padding=0)
+        pp.setYRange(0, max(ys + [pplat_max]) * 1.15, padding=0)
         vd = arr("vd_vt") if "vd_vt" in c else flat * (steady["vd_vt"] or np.nan)
-        self.vdvt.setData(m, vd)
-        self.vdvt_now.setData(m, flat * float(g.vd_vt))
-        allv = np.concatenate([vd[np.isfinite(vd)], [float(g.vd_vt)]])
-        self.vdvt_view.setYRange(max(0.0, allv.min() - 0.1), min(1.0, allv.max() + 0.1), padding=0)
+        self.charts["vd_vt"].set(m, vd, flat * float(g.vd_vt), recheck=recheck)
+        self.setTitle(self.TITLE)
