@@ -138,7 +138,7 @@ def test_each_control_drives_a_forecast(window, qtbot, key, value):
     expected = _expected(window, out["trial_settings"])
     assert out["steady"]["pao2_mmhg"] == pytest.approx(expected["steady"]["pao2_mmhg"], abs=1e-6)
     row = [r[1] for r in window.trial_panel.COMPARE_ROWS].index("pao2_mmhg")
-    assert window.compare.item(row, 1).text().startswith(f"{expected['steady']['pao2_mmhg']:.0f}")
+    assert window.compare.item(row, 2).text().startswith(f"{expected['steady']['pao2_mmhg']:.0f}")
     if key == "fio2":
         assert expected["steady"]["pao2_mmhg"] > float(window.now_prediction.gas.pao2)
     if key == "rr_per_min":
@@ -184,9 +184,34 @@ def test_three_trials_side_by_side(window, qtbot):
     assert window.state.trials["A"]["peep_cmh2o"] == 14 and window.state.trials["B"]["fio2"] == 0.8
     row = [r[1] for r in window.trial_panel.COMPARE_ROWS].index("pplat_cmh2o")
     a = steady_block(predict(window.fit_result.model, to_settings(window.state.trials["A"])))
-    assert window.compare.item(row, 1).text() == f"{a['pplat_cmh2o']:.1f}"
-    assert window.compare.item(row, 3).text() == "-"  # Trial C not started
+    assert window.compare.item(row, 2).text() == f"{a['pplat_cmh2o']:.1f}"
+    assert window.compare.item(row, 4).text() == "-"  # Trial C not started
     assert window.limits_title.text() == "Limits of Trial B"
+
+
+def test_measured_and_model_side_by_side(window, qtbot, qapp):
+    """Issue 17, item 5: the latest measurement beside the model at the current settings, with the
+    difference; intrinsic PEEP and the delivered VT in mL in the comparison; the fit's data-quality
+    notes on the Bedside panel."""
+    rows = [r[1] for r in window.trial_panel.COMPARE_ROWS]
+    headers = [window.compare.horizontalHeaderItem(c).text() for c in range(window.compare.columnCount())]
+    assert headers[:2] == ["measured", "model now (\u0394)"]
+    obs = window.state.case["observations"][-1]
+    model = steady_block(window.now_prediction)
+    pao2 = rows.index("pao2_mmhg")
+    assert window.compare.item(pao2, 0).text() == f"{obs['pao2_mmhg']:.0f}"
+    assert window.compare.item(pao2, 1).text() == f"{model['pao2_mmhg']:.0f} (\u0394 {model['pao2_mmhg'] - obs['pao2_mmhg']:+.0f})"
+    assert window.compare.item(rows.index("intrinsic_peep_cmh2o"), 2).text() != "-"
+    measured_vt = obs.get("vte_ml") or obs["settings"]["vt_ml"]  # exhaled VT when measured
+    assert window.compare.item(rows.index("vt_ml"), 0).text() == f"{measured_vt:.0f}"
+    assert not window.bedside.notes.isVisibleTo(window)  # the demo's data raise no note
+    case = load_demo("ards-moderate")
+    case["observations"][-1]["sao2"] = 0.80  # does not match PaO2 68 on the dissociation curve
+    w = win.MainWindow(case, synchronous=True)
+    try:
+        assert w.bedside.notes.isVisibleTo(w) and "SaO2 0.80 is inconsistent" in w.bedside.notes.text()
+    finally:
+        _close(w, qapp)
 
 
 def test_hover_reads_out_the_trial_curve(window, qtbot):
@@ -297,7 +322,7 @@ def test_save_and_reopen_keeps_goals(window, qtbot, tmp_path):
 
 def _nothing_from_the_trial_on_screen(window):
     """Every number, curve and Limits line computed from the trial is gone."""
-    col = 1 + "ABC".index(window.state.active)
+    col = 2 + "ABC".index(window.state.active)
     assert all(window.compare.item(r, col).text() == "-" for r in range(window.compare.rowCount()))
     assert all(chart.trial.getData()[0] is None or len(chart.trial.getData()[0]) == 0 for chart in window.charts.values())
     assert window.limits.rowCount() == 0 and "not checked" in window.limits_title.text()

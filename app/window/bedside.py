@@ -42,6 +42,12 @@ class BedsidePanel(QtWidgets.QGroupBox):
             self.values[key] = w
             form.addRow(label, w)
         lay.addLayout(form)
+        # The fit's data-quality notes, where the measurements they question are shown.
+        self.notes = QtWidgets.QLabel("")
+        self.notes.setWordWrap(True)
+        self.notes.setTextFormat(QtCore.Qt.PlainText)
+        self.notes.hide()
+        lay.addWidget(self.notes)
         lay.addWidget(QtWidgets.QLabel("Past observations"))
         self.history = QtWidgets.QTableWidget(0, 5)
         self.history.setHorizontalHeaderLabels(["taken", "FiO2", "PEEP", "PaO2", "PaCO2"])
@@ -78,6 +84,11 @@ class BedsidePanel(QtWidgets.QGroupBox):
                                       f"{s['peep_cmh2o']:g}", gas_text(o["pao2_mmhg"], units),
                                       gas_text(o["paco2_mmhg"], units, 1))):
                 self.history.setItem(i, j, QtWidgets.QTableWidgetItem(text))
+
+    def show_notes(self, warnings: list):
+        """Data-quality notes of the fit (e.g. an SaO2 that does not match the PaO2), or none."""
+        self.notes.setText("\n".join(f"\u26a0 {w}" for w in warnings))
+        self.notes.setVisible(bool(warnings))
 
     def show_model_vd_vt(self, vd_vt: float):
         self.values["vd_vt"].setText(f"{vd_vt:.2f} (model, current settings)")

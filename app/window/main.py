@@ -17,7 +17,7 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from .. import CAUTION
-from ..engine import RECHECK_NOTE, plan_case, steady_block, wean_case
+from ..engine import RECHECK_NOTE, now_block, plan_case, steady_block, wean_case
 from ..worker import EngineRunner
 from .bedside import BedsidePanel
 from .common import APP_NAME, AUTOSAVE_MS, DEBOUNCE_MS, ORG_NAME, TRIALS, TrialState, file_stamp, new_recovery_path
@@ -223,6 +223,7 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
 
     def _show_fit(self):
         self.lung_fit.show_fit(self.fit_result)
+        self.bedside.show_notes(self.fit_result.warnings)
         now = self.now_prediction
         if now is not None and bool(np.all(now.success)):
             self.bedside.show_model_vd_vt(float(now.gas.vd_vt))
@@ -230,7 +231,18 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
 
     def _fill_compare(self, compare, ranges=None, ranges_trial=None):
         now = steady_block(self.now_prediction) if self.now_prediction is not None else None
-        self.trial_panel.fill_compare(now, compare, self.units, ranges, ranges_trial)
+        self.trial_panel.fill_compare(now, compare, self.units, ranges, ranges_trial, self._measured())
+
+    def _measured(self) -> dict:
+        """The latest observation in the comparison table's keys (what was measured, nothing modelled)."""
+        obs = self.state.case["observations"][-1]
+        s = obs["settings"]
+        vt = obs.get("vte_ml") or (s.get("vt_ml") if s["mode"] == "volume" else None)
+        out = {k: obs.get(k) for k in ("pao2_mmhg", "paco2_mmhg", "ph", "sao2", "pplat_cmh2o")}
+        out["vt_ml"] = vt
+        out["vt_ml_per_kg_pbw"] = None if vt is None else vt / self._pbw()
+        out["mechanical_power_j_min"] = now_block(self.state.case).get("mechanical_power_j_min")
+        return out
 
     def _fill_limits(self, lines):
         self.limits_panel.fill(lines, self.units)

@@ -11,6 +11,7 @@ import math
 
 from PySide6 import QtCore, QtWidgets
 
+from .. import MMHG_PER_KPA
 from .common import CONTROLS, TRIALS, kpa_from_mmhg
 
 
@@ -25,7 +26,10 @@ class TrialPanel(QtWidgets.QGroupBox):
                     ("SaO2", "sao2", "", 3), ("VD/VT", "vd_vt", "", 2), ("Pplat", "pplat_cmh2o", "cmH2O", 1),
                     ("\u0394P (Pplat \u2212 total PEEP)", "driving_pressure_cmh2o", "cmH2O", 1),
                     ("Mechanical power", "mechanical_power_j_min", "J/min", 1),
+                    ("Intrinsic PEEP", "intrinsic_peep_cmh2o", "cmH2O", 1), ("VT delivered", "vt_ml", "mL", 0),
                     ("VT", "vt_ml_per_kg_pbw", "mL/kg PBW", 1), ("Cardiac output", "cardiac_output_l_min", "L/min", 1))
+    #: Rows whose model value at the current settings is shown with its difference from the measured one.
+    DIFFERENCE_KEYS = {"pao2_mmhg", "paco2_mmhg", "ph", "sao2", "pplat_cmh2o", "vt_ml"}
     RANGE_KEYS = {"pao2_mmhg", "paco2_mmhg", "ph", "sao2"}
 
     def __init__(self, parent=None):
@@ -75,8 +79,11 @@ class TrialPanel(QtWidgets.QGroupBox):
         self.problem.setStyleSheet("QLabel { color: #8a1c00; font-weight: bold; }")
         self.problem.hide()
         lay.addWidget(self.problem, 3 + len(CONTROLS), 0, 1, 4)
-        self.compare = QtWidgets.QTableWidget(0, 4)
-        self.compare.setHorizontalHeaderLabels(["now (model)", "Trial A", "Trial B", "Trial C"])
+        self.compare = QtWidgets.QTableWidget(0, 5)
+        self.compare.setHorizontalHeaderLabels(["measured", "model now (\u0394)", "Trial A", "Trial B", "Trial C"])
+        self.compare.horizontalHeaderItem(0).setToolTip("the latest observation of the case (blood gas, ventilator)")
+        self.compare.horizontalHeaderItem(1).setToolTip("the fitted model at the current settings; \u0394: model "
+                                                        "minus measured")
         self.compare.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
         self.compare.horizontalHeader().setStretchLastSection(True)
         self.compare.verticalHeader().setDefaultSectionSize(20)
@@ -154,16 +161,24 @@ class TrialPanel(QtWidgets.QGroupBox):
             return f"{kpa_from_mmhg(v):.{max(digits, 1)}f}"
         return f"{v:.{digits}f}"
 
-    def fill_compare(self, now: dict | None, compare: dict, units: str, ranges=None, ranges_trial=None):
-        """One column for the current state (``now``, a steady block) and one per trial; the likely range
-        beside the values of ``ranges_trial``."""
+    def fill_compare(self, now: dict | None, compare: dict, units: str, ranges=None, ranges_trial=None,
+                     measured: dict | None = None):
+        """Columns: the latest measurements (``measured``, same keys), the model at the current settings
+        (``now``, a steady block, with its difference from the measurement) and each trial; the likely
+        range beside the values of ``ranges_trial``."""
         gas_unit = "kPa" if units == "kPa" else "mmHg"
         self.compare.setRowCount(len(self.COMPARE_ROWS))
         self.compare.setVerticalHeaderLabels(
             [f"{name} [{gas_unit if unit == 'gas' else unit}]" if unit else name for name, _k, unit, _d in self.COMPARE_ROWS])
+        measured = measured or {}
         for r, (_name, key, unit, digits) in enumerate(self.COMPARE_ROWS):
-            for col, (label, block) in enumerate([("now", now)] + [(t, compare.get(t)) for t in TRIALS]):
+            self.compare.setItem(r, 0, QtWidgets.QTableWidgetItem(self._value(measured.get(key), unit, digits, units)))
+            for col, (label, block) in enumerate([("now", now)] + [(t, compare.get(t)) for t in TRIALS], start=1):
                 text = "-" if block is None else self._value(block.get(key), unit, digits, units)
+                if label == "now" and text != "-" and key in self.DIFFERENCE_KEYS and measured.get(key) is not None:
+                    diff = float(block[key]) - float(measured[key])
+                    scale = 1.0 / MMHG_PER_KPA if unit == "gas" and units == "kPa" else 1.0
+                    text += f" (\u0394 {diff * scale:+.{max(digits, 1) if scale != 1.0 else digits}f})"
                 if ranges and label == ranges_trial and key in self.RANGE_KEYS and text != "-":
                     lo, hi = ranges[key]
                     text += f" ({self._value(lo, unit, digits, units)}–{self._value(hi, unit, digits, units)})"
