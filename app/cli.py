@@ -11,9 +11,11 @@ import json
 import sys
 from pathlib import Path
 
+from ventcast.physiology.planning.search import CONSTRAINT_NAMES
+
 from . import CAUTION
 from .bedside import bedside_indices
-from .engine import RECHECK_NOTE, ModelError
+from .engine import MARGIN_LABELS, RECHECK_NOTE, ModelError, ie_text
 from .casefile import (DEMO_NAMES, CaseError, check_output_file, check_output_files, demo_text, load, load_demo,
                        read_text, write_atomic)
 
@@ -233,11 +235,18 @@ def _cmd_plan(args) -> int:
         mark = "meets every goal" if o["probability_all_goals"] >= out["required_probability"] else "closest"
         print(f"\n{i}. {settings_text(o['settings'])}")
         print(f"   changes: {', '.join(o['changes']) or 'none'}")
+        print(f"   {ie_text(o['i_to_e'])}")
+        for caution in o["cautions"]:
+            if not caution.startswith("I:E"):
+                print(f"   {caution}")
         print(f"   PaO2 {st['pao2_mmhg']:.0f} mmHg, SaO2 {st['sao2']:.3f}, PaCO2 {st['paco2_mmhg']:.1f} mmHg, pH "
               f"{st['ph']:.2f}, Pplat {st['pplat_cmh2o']:.1f}, driving pressure {st['driving_pressure_cmh2o']:.1f} cmH2O, "
               f"mechanical power {st['mechanical_power_j_min']:.1f} J/min")
-        print("   margins to the goals and limits: " + ", ".join(f"{k} {v:+g}" for k, v in o["margins"].items()))
-        misses = ", ".join(f"{k} {100 * v:.0f} %" if v >= 0.01 else f"{k} <1 %" for k, v in o["misses"].items())
+        print("   margins to the goals and limits: " + ", ".join(
+            f"{MARGIN_LABELS[k][0]} {v:+.{MARGIN_LABELS[k][2]}f} {MARGIN_LABELS[k][1]}".rstrip()
+            for k, v in o["margins"].items()))
+        misses = ", ".join(f"{CONSTRAINT_NAMES.get(k, k)} {100 * v:.0f} %" if v >= 0.01 else
+                           f"{CONSTRAINT_NAMES.get(k, k)} <1 %" for k, v in o["misses"].items())
         print(f"   probability of meeting every goal and limit: {100 * o['probability_all_goals']:.0f} % ({mark})"
               + (f"; misses in the draws: {misses}" if misses else ""))
     print()

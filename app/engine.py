@@ -270,6 +270,20 @@ def now_block(case: dict) -> dict:
     return out
 
 
+#: Margins to goals and limits in words: key -> (name on screen, unit, decimals: the clinical precision).
+MARGIN_LABELS = {"spo2": ("SpO2", "", 3), "pao2_mmhg": ("PaO2", "mmHg", 0), "paco2_mmhg": ("PaCO2", "mmHg", 1),
+                 "ph": ("pH", "", 2), "pplat_cmh2o": ("Pplat", "cmH2O", 1),
+                 "driving_pressure_cmh2o": ("driving pressure", "cmH2O", 1),
+                 "intrinsic_peep_cmh2o": ("intrinsic PEEP", "cmH2O", 1),
+                 "mechanical_power_j_min": ("mechanical power", "J/min", 1)}
+
+#: The clinical precision of each quantity a limit checks (decimals): the check is made on the value as it
+#: is shown, so a pH shown as 7.30 is never "below 7.30" (common practice: PaO2 in whole mmHg, PaCO2 to 0.1,
+#: pH to 0.01, SaO2 to 0.001, pressures and VT per kg to 0.1, mechanical power to 0.1 J/min).
+CLINICAL_DECIMALS = {"pao2_mmhg": 0, "paco2_mmhg": 1, "ph": 2, "sao2": 3, "pplat_cmh2o": 1,
+                     "driving_pressure_cmh2o": 1, "vt_ml_per_kg_pbw": 1, "intrinsic_peep_cmh2o": 1,
+                     "mechanical_power_j_min": 1}
+
 #: Pressure control: below this share of the equilibrium volume within Ti, the Limits say so
 #: (1 - e^-3 = 0.95, three time constants; common practice).
 FILLING_MIN = 0.95
@@ -282,7 +296,7 @@ def limit_checks(steady: dict, goals: dict | None = None, fio2: float | None = N
     units), ``source``, ``status`` ('ok', 'info', 'caution' or 'danger') and ``message``.
     """
     goals = goals or {}
-    v = steady
+    v = {k: (round(x, CLINICAL_DECIMALS[k]) if k in CLINICAL_DECIMALS and x is not None else x) for k, x in steady.items()}
     lines = []
 
     def line(key, what, value, limit_text, bad, code, severity, message, value_text):
@@ -317,13 +331,15 @@ def limit_checks(steady: dict, goals: dict | None = None, fio2: float | None = N
     low, high = x is not None and x < ph_lo, x is not None and x > ph_hi
     line("ph", "pH", x, f"{ph_lo:.2f}-{ph_hi:.2f}", low or high, "ph_low" if low else "ph_high",
          "danger" if (low and x < 7.15) else "caution",
-         f"pH {x or 0:.3f} is below {ph_lo:.2f}" if low else f"pH {x or 0:.3f} is above {ph_hi:.2f}", f"{x or 0:.2f}")
+         f"pH {x or 0:.2f} is below {ph_lo:.2f}" if low else f"pH {x or 0:.2f} is above {ph_hi:.2f}", f"{x or 0:.2f}")
+    # No advice to lower FiO2 beside a pH in the danger zone: the patient needs attention, not weaning.
+    ph_danger = v["ph"] is not None and v["ph"] < 7.15
     x = v["pao2_mmhg"]
     low, high = x is not None and x < o2_lo, x is not None and x > o2_hi
     line("pao2", "PaO2", x, f"{o2_lo:g}-{o2_hi:g} mmHg", low or high, "pao2_low" if low else "pao2_above_goal",
          "danger" if low else "info",
          f"PaO2 {x or 0:.0f} mmHg is below {o2_lo:g} mmHg" if low
-         else f"PaO2 {x or 0:.0f} mmHg is above the {o2_hi:g} mmHg goal: FiO2 could likely come down",
+         else f"PaO2 {x or 0:.0f} mmHg is above the {o2_hi:g} mmHg goal" + ("" if ph_danger else ": FiO2 could likely come down"),
          f"{x or 0:.0f} mmHg")
     x = v["sao2"]
     low = x is not None and x < sp_lo
@@ -592,6 +608,13 @@ def case_goals(case: dict) -> Goals:
         raise CaseError("goals", str(exc)) from None
 
 
+def ie_text(i_to_e: float) -> str:
+    """I:E in the usual form ("1:2.0"; "1.1:1" and a caution when inspiration is the longer, an inverse ratio)."""
+    if i_to_e > 1.0:
+        return f"I:E {i_to_e:.1f}:1 (\u26a0 inverse ratio: inspiration longer than expiration)"
+    return f"I:E 1:{1.0 / i_to_e:.1f}"
+
+
 def plan_case(case: dict, result=None, required_probability: float = 0.9, progress=None) -> dict:
     """Options that meet the case's goals: the ``plan`` JSON of the README."""
     if result is None:
@@ -604,7 +627,17 @@ def plan_case(case: dict, result=None, required_probability: float = 0.9, progre
     for i, c in enumerate(res.options):
         pred = predict(result.model, c.settings)
         steady = steady_block(pred)
-        options.append({"settings": settings_dict(c.settings), "steady": steady,
+        ti, breath = float(c.settings.ti), 60.0 / float(c.settings.rr)
+        i_to_e = ti / max(breath - ti, 1e-9)
+        # The same cautions the Limits would show for this option (a limit the search only ranks is said so).
+        cautions = [ie_text(i_to_e)] if i_to_e > 1.0 else []
+        mp, mp_max = steady["mechanical_power_j_min"], (case.get("goals") or {}).get("mechanical_power_max_j_min")
+        if mp_max is None and mp is not None and mp > LIMITS["mechanical_power"].high:
+            cautions.append(f"\u26a0 mechanical power {mp:.1f} J/min is above {LIMITS['mechanical_power'].high:g} J/min "
+                            f"({LIMITS['mechanical_power'].source}): ranked, not refused; set a ceiling in the case's "
+                            f"goals to make it a limit")
+        options.append({"settings": settings_dict(c.settings), "steady": steady, "cautions": cautions,
+                        "i_to_e": round(i_to_e, 2), "inverse_ratio": bool(i_to_e > 1.0),
                         "margins": {k: round(v, 3) for k, v in margins(pred, goals).items()},
                         "probability_all_goals": round(c.probability, 3), "changes": list(c.changes),
                         "meets_goals_at_fit": c.map_meets,

@@ -85,7 +85,7 @@ LIMITS = {
     "spo2": Limit("spo2", "SpO2", 0.88, 0.95, "fraction", "ARDS Network 2000"),
     "intrinsic_peep": Limit("intrinsic_peep", "Intrinsic PEEP", None, 5.0, "cmH2O", "common practice"),
     "mechanical_power": Limit("mechanical_power", "Mechanical power", None, 17.0, "J/min",
-                              "Serpa Neto 2018 (from memory)"),
+                              "Serpa Neto 2018, from memory"),
     "fio2": Limit("fio2", "FiO2", None, 0.6, "fraction", "common practice (oxygen toxicity above 0.6)"),
     "rr": Limit("rr", "Rate", None, 35.0, "/min", "ARDS Network 2000"),
 }

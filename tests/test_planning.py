@@ -177,3 +177,51 @@ def test_step_down_holds_at_least_its_own_90_percent_time_and_the_floor():
         assert st.hold_min >= float(np.nanmax([course.t90_pao2, course.t90_paco2]))
         assert "90 %" in st.hold_basis and ("floor" in st.hold_basis or "takes" in st.hold_basis)
         current = st.settings
+
+
+def test_each_step_is_labelled_with_its_true_size():
+    """Issue 17, item 7: a step that stops at the target is labelled with its own size (FiO2 0.45 -> 0.40 is
+    'down by 0.05', never 'down by 0.10')."""
+    model = _truth({**TRUE, "shunt_fixed": 0.03, "recruitable": 0.02, "log_sd": 0.5})
+    res = step_down(model, model, vc(0.45, 10), GOALS, target_fio2=0.40, target_peep=10)
+    assert res.steps, res.stopped_because
+    for s, before in zip(res.steps, (vc(0.45, 10),) + tuple(x.settings for x in res.steps)):
+        if "FiO2 down by" in s.why:
+            assert s.why == f"FiO2 down by {float(before.fio2) - float(s.settings.fio2):.2f}"
+    assert res.steps[0].why == "FiO2 down by 0.05" and float(res.steps[0].settings.fio2) == pytest.approx(0.40)
+
+
+def test_limit_checks_use_the_shown_precision_and_no_weaning_advice_beside_danger():
+    """Issue 17, item 10 and 7: a pH of 7.296 is shown, and checked, as 7.30 (not 'below 7.30'); a high PaO2
+    beside a pH in the danger zone gets no 'FiO2 could come down' (common practice)."""
+    from ventcast.app.engine import limit_checks
+    steady = {"pplat_cmh2o": 25.0, "driving_pressure_cmh2o": 12.0, "vt_ml_per_kg_pbw": 6.0, "ph": 7.296,
+              "pao2_mmhg": 120.0, "sao2": 0.985, "paco2_mmhg": 45.0, "intrinsic_peep_cmh2o": 0.0,
+              "mechanical_power_j_min": 12.0, "inspiratory_filling": None}
+    lines = {l["what"]: l for l in limit_checks(steady, {}, fio2=0.5)}
+    assert lines["pH"]["value"] == "7.30" and lines["pH"]["status"] == "ok"
+    assert "could likely come down" in lines["PaO2"]["message"]
+    lines = {l["what"]: l for l in limit_checks(dict(steady, ph=6.89), {}, fio2=0.5)}
+    assert lines["pH"]["status"] == "danger" and lines["pH"]["message"].startswith("pH 6.89 is below 7.30")
+    assert "come down" not in lines["PaO2"]["message"]
+
+
+def test_options_say_what_the_limits_say_in_words(capsys):
+    """Issue 17, items 7 and 10: every option shows its I:E (an inverse ratio is a caution) and, when its
+    mechanical power is above the 17 J/min the Limits flag, says that the search only ranks it; the table
+    names goals and limits in words, never by internal keys."""
+    assert main(["plan", "--demo", "ards-moderate", "--format", "json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    for o in out["options"]:
+        s = o["settings"]
+        assert o["i_to_e"] == pytest.approx(s["inspiratory_time_s"] / (60 / s["rr_per_min"] - s["inspiratory_time_s"]), abs=0.01)
+        assert o["inverse_ratio"] == (o["i_to_e"] > 1.0)
+        assert any("inverse ratio" in c for c in o["cautions"]) == o["inverse_ratio"]
+        high_power = o["steady"]["mechanical_power_j_min"] > 17.0
+        assert any("ranked, not refused" in c for c in o["cautions"]) == high_power
+    assert main(["plan", "--demo", "ards-moderate"]) == 0
+    text = capsys.readouterr().out
+    assert "I:E 1:" in text or "I:E " in text
+    for key in ("pao2_mmhg", "paco2_mmhg", "pplat_cmh2o", "driving_pressure_cmh2o", "intrinsic_peep_cmh2o", "spo2 +"):
+        assert key not in text, key
+    assert "(from memory))" not in text

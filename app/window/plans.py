@@ -10,6 +10,7 @@ from html import escape
 
 from PySide6 import QtCore, QtWidgets
 
+from ..engine import ie_text
 from .common import gas_text
 
 
@@ -58,8 +59,8 @@ class OptionsPanel(QtWidgets.QWidget):
             forecast = (f"{gas_text(st['pao2_mmhg'], units)}, SaO2 {st['sao2']:.2f}, "
                         f"PaCO2 {gas_text(st['paco2_mmhg'], units, 1)}, pH {st['ph']:.2f}, "
                         f"Pplat {st['pplat_cmh2o']:.0f}, \u0394P {st['driving_pressure_cmh2o']:.0f} cmH2O")
-            for j, text in enumerate((f"{100 * o['probability_all_goals']:.0f} %", "\n".join(o["changes"]) or "none",
-                                      forecast)):
+            changes = "\n".join(o["changes"] + [ie_text(o["i_to_e"])] + [c for c in o["cautions"] if not c.startswith("I:E")])
+            for j, text in enumerate((f"{100 * o['probability_all_goals']:.0f} %", changes, forecast)):
                 self.table.setItem(i, j, QtWidgets.QTableWidgetItem(text))
         self.table.resizeRowsToContents()
 

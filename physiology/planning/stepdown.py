@@ -165,10 +165,13 @@ def step_down(model: PatientModel, draws: PatientModel, now, goals: Goals, targe
             check_oxygen = True
         else:
             options = []
-            fio2_moves = [(replace(current, fio2=round(max(fio2 - d, target_fio2 if fio2 > target_fio2 else 0.21), 2)),
-                           f"FiO2 down by {d:.2f}") for d in (0.10, 0.05) if fio2 > target_fio2 + 1e-9]
-            peep_moves = [(replace(current, peep=max(peep - 2.0, target_peep if peep > target_peep else 0.0)),
-                           "PEEP down by 2 cmH2O")] if peep > target_peep + 1e-9 else []
+            # Each move is labelled with its true size (a step that stops at the target is smaller).
+            new_fio2 = [round(max(fio2 - d, target_fio2 if fio2 > target_fio2 else 0.21), 2) for d in (0.10, 0.05)]
+            fio2_moves = [(replace(current, fio2=f), f"FiO2 down by {fio2 - f:.2f}")
+                          for f in dict.fromkeys(new_fio2) if fio2 > target_fio2 + 1e-9 and f < fio2 - 1e-9]
+            new_peep = max(peep - 2.0, target_peep if peep > target_peep else 0.0)
+            peep_moves = [(replace(current, peep=new_peep), f"PEEP down by {peep - new_peep:g} cmH2O")
+                          ] if peep > target_peep + 1e-9 else []
             # FiO2 first while it is above 0.5 (common practice), then PEEP before the last of the FiO2.
             options = fio2_moves + peep_moves if fio2 > 0.5 + 1e-9 else peep_moves + fio2_moves
             check_oxygen = True
