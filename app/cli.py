@@ -16,7 +16,7 @@ from ventcast.physiology.planning.search import CONSTRAINT_NAMES
 from . import CAUTION
 from .bedside import bedside_indices
 from .engine import MARGIN_LABELS, RECHECK_NOTE, ModelError, ie_text
-from .casefile import (DEMO_NAMES, CaseError, check_output_file, check_output_files, demo_text, load, load_demo,
+from .casefile import (DEMO_NAMES, SETTING_RANGES, CaseError, check_output_file, check_output_files, demo_text, load, load_demo,
                        read_text, write_atomic)
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_MODEL = 0, 1, 2, 3
@@ -403,9 +403,18 @@ def _cmd_desktop_entry(args) -> int:
     return EXIT_OK
 
 
+#: The --set help: every settings key a trial accepts, with its unit and accepted range (from the code's ranges).
+SET_HELP = ("change one setting for the trial: KEY=VALUE, repeatable. Keys: mode (volume or pressure), fio2 "
+            "(0.21-1.0), vt_ml (2-20 mL/kg PBW; volume mode), "
+            + ", ".join(f"{k} ({lo:g}-{hi:g} {unit})" for k, (lo, hi, unit) in SETTING_RANGES.items())
+            + "; inspiratory_time_s shorter than the breath")
+
+
 def build_parser() -> argparse.ArgumentParser:
+    from . import version
     parser = _Parser(prog="ventcast", description="Forecast blood gases after a ventilator setting change. "
                      + CAUTION)
+    parser.add_argument("--version", action="version", version=f"ventcast {version()}")
     sub = parser.add_subparsers(dest="verb", parser_class=_Parser)
     demo = sub.add_parser("demo", help="show the built-in invented demo cases, or write them with --out")
     demo.add_argument("--out", help="folder to write the demo case files into")
@@ -416,10 +425,10 @@ def build_parser() -> argparse.ArgumentParser:
         p = sub.add_parser(verb, help=help_)
         p.add_argument("case", nargs="?", help="case file (.ventcast.json)")
         p.add_argument("--demo", choices=DEMO_NAMES, help="use a built-in demo case instead of CASE")
-        p.add_argument("--format", choices=("table", "json"), default="table")
+        p.add_argument("--format", choices=("table", "json"), default="table",
+                       help="table for people (default), json for scripts")
         if verb == "predict":
-            p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
-                           help="change one setting for the trial (a case-file settings key)")
+            p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", help=SET_HELP)
             p.add_argument("--minutes", type=float, default=60.0, help="length of the course [min]")
         p.set_defaults(run=run)
     for verb, run, help_ in (("plan", _cmd_plan, "options: settings that meet the case's goals within the limits"),
@@ -434,8 +443,10 @@ def build_parser() -> argparse.ArgumentParser:
         else:
             p.add_argument("--table", choices=("lower-peep", "higher-peep"), default=None,
                            help="follow this ARDS Network PEEP/FiO2 table (default: model-driven)")
-            p.add_argument("--target-fio2", type=float, default=0.4)
-            p.add_argument("--target-peep", type=float, default=8.0)
+            p.add_argument("--target-fio2", type=float, default=0.4,
+                           help="FiO2 the plan steps down to, at most (0.21-1.0; default 0.4)")
+            p.add_argument("--target-peep", type=float, default=8.0,
+                           help="PEEP the plan steps down to, at most [cmH2O] (default 8)")
             p.add_argument("--spontaneous-rr", type=float, default=None, help="spontaneous rate for the RSBI [/min]")
             p.add_argument("--spontaneous-vt-ml", type=float, default=None, help="spontaneous VT for the RSBI [mL]")
         p.set_defaults(run=run)
@@ -450,7 +461,7 @@ def build_parser() -> argparse.ArgumentParser:
     rp = sub.add_parser("report", help="a PDF trial report (and CSV exports) for the case")
     rp.add_argument("case", nargs="?", help="case file (.ventcast.json)")
     rp.add_argument("--demo", choices=DEMO_NAMES, help="use a built-in demo case instead of CASE")
-    rp.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", help="Trial A: a change of the settings")
+    rp.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", help="Trial A: " + SET_HELP)
     rp.add_argument("--set-b", action="append", default=[], metavar="KEY=VALUE", help="Trial B (optional)")
     rp.add_argument("--set-c", action="append", default=[], metavar="KEY=VALUE", help="Trial C (optional)")
     rp.add_argument("--out", required=True, help="the PDF to write")
@@ -468,9 +479,9 @@ def build_parser() -> argparse.ArgumentParser:
     op.add_argument("case", nargs="?", help="case file (.ventcast.json)")
     op.add_argument("--demo", choices=DEMO_NAMES, help="open a built-in demo case instead of CASE")
     op.add_argument("--screenshot", metavar="FILE.png", help="render the window offscreen to a PNG and exit")
-    op.add_argument("--size", default="1600x1000", metavar="WxH", help="screenshot size in pixels")
-    op.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
-                    help="start Trial A from the case settings with this change (a case-file settings key)")
+    op.add_argument("--size", default="1600x1000", metavar="WxH",
+                    help="screenshot size in pixels (400x300 to 8000x8000, and at least what the window needs)")
+    op.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", help="Trial A: " + SET_HELP)
     op.add_argument("--tab", choices=("limits", "lung-fit", "options", "step-down"), default="limits",
                     help="right-hand panel shown (with --screenshot, options and step-down are computed first)")
     op.add_argument("--quit-after", type=float, default=None, metavar="SECONDS", help=argparse.SUPPRESS)

@@ -348,3 +348,18 @@ def test_saved_trials_are_checked_like_settings():
     assert err.value.field == "trials.B.vt_ml" and "1500" in str(err.value) and "1139" in str(err.value)
     with pytest.raises(casefile.CaseError, match="trials"):
         casefile.validate({**case, "trials": {"B": dict(case["settings"])}})  # Trial A is required
+
+
+def test_version_and_help_name_every_set_key_with_its_range(capsys):
+    """Issue 17: `ventcast --version`; the --set help lists every settings key with the accepted range the
+    code enforces (the README and --help agree)."""
+    from ventcast.app import version
+    with pytest.raises(SystemExit) as done:
+        main(["--version"])
+    assert done.value.code == 0 and capsys.readouterr().out.strip() == f"ventcast {version()}"
+    with pytest.raises(SystemExit):
+        main(["predict", "--help"])
+    text = " ".join(capsys.readouterr().out.split())
+    for key, (lo, hi, unit) in casefile.SETTING_RANGES.items():
+        assert f"{key} ({lo:g}-{hi:g} {unit})" in text, key
+    assert "fio2 (0.21-1.0)" in text and "vt_ml (2-20 mL/kg PBW" in text
