@@ -225,3 +225,15 @@ def test_options_say_what_the_limits_say_in_words(capsys):
     for key in ("pao2_mmhg", "paco2_mmhg", "pplat_cmh2o", "driving_pressure_cmh2o", "intrinsic_peep_cmh2o", "spo2 +"):
         assert key not in text, key
     assert "(from memory))" not in text
+
+
+def test_a_table_plan_off_the_table_says_so_and_what_the_table_asks_for():
+    """Issue 17, item 7: from FiO2 0.55 / PEEP 12, which is not on the higher-PEEP table, the plan takes no
+    step (its next rung would drop FiO2 to 0.30 at once) and names the table's PEEP at this FiO2 (ARDS
+    Network 2004 higher-PEEP table: FiO2 0.5-0.8 with PEEP 20)."""
+    model = _truth({**TRUE, "shunt_fixed": 0.05})
+    res = step_down(model, model, vc(0.55, 12), GOALS, table="higher-peep")
+    assert res.steps == () and not res.reached_target
+    assert "not on the higher-peep table" in res.stopped_because and "PEEP 20 cmH2O" in res.stopped_because
+    res = step_down(model, model, vc(0.5, 16), GOALS, table="higher-peep")  # a rung: the plan proceeds
+    assert res.steps and "not on the" not in (res.stopped_because or "")

@@ -119,6 +119,20 @@ def _table_rungs(table: str, fio2: float, peep: float):
     return first + [rungs[i] for i in range(start - 1, -1, -1)]
 
 
+def _off_table(table: str, fio2: float, peep: float) -> str | None:
+    """Why a table plan cannot start here (the current FiO2 and PEEP are not a rung of the table: its next
+    rung could be a jump, e.g. FiO2 0.55 -> 0.30), naming what the table asks for at this FiO2; None on a rung."""
+    rungs = table_steps(table)
+    if any(abs(f - fio2) < 1e-9 and abs(p - peep) < 1e-9 for f, p in rungs):
+        return None
+    above = [r for r in rungs if r[0] >= fio2 - 1e-9]
+    f_ask = min(r[0] for r in above) if above else max(r[0] for r in rungs)
+    peeps = sorted({p for f, p in rungs if abs(f - f_ask) < 1e-9})
+    asks = f"PEEP {peeps[0]:g}" if len(peeps) == 1 else f"PEEP {peeps[0]:g}-{peeps[-1]:g}"
+    return (f"FiO2 {fio2:.2f} with PEEP {peep:g} cmH2O is not on the {table} table: at FiO2 {f_ask:.1f} the table "
+            f"asks for {asks} cmH2O. Set a rung of the table first (or plan model-driven steps)")
+
+
 def step_down(model: PatientModel, draws: PatientModel, now, goals: Goals, target_fio2: float = 0.4,
               target_peep: float = 8.0, table: str | None = None, max_steps: int = 20,
               spontaneous_rr: float | None = None, spontaneous_vt_ml: float | None = None) -> StepDownResult:
@@ -139,6 +153,8 @@ def step_down(model: PatientModel, draws: PatientModel, now, goals: Goals, targe
     if not _oxygenation_safe(_draw_quantities(draws, current), goals):
         stopped = "oxygenation at the current settings is already at or below the lower goal: not a time to step down"
     rungs = _table_rungs(table, float(current.fio2), float(current.peep)) if table else None
+    if table and stopped is None:
+        stopped = _off_table(table, float(current.fio2), float(current.peep))
     if table and not rungs and stopped is None:
         stopped = f"the current FiO2 and PEEP are below every rung of the {table} table"
     rule = _stop_rule(goals)
