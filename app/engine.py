@@ -633,9 +633,8 @@ def plan_case(case: dict, result=None, required_probability: float = 0.9, progre
         cautions = [ie_text(i_to_e)] if i_to_e > 1.0 else []
         mp, mp_max = steady["mechanical_power_j_min"], (case.get("goals") or {}).get("mechanical_power_max_j_min")
         if mp_max is None and mp is not None and mp > LIMITS["mechanical_power"].high:
-            cautions.append(f"\u26a0 mechanical power {mp:.1f} J/min is above {LIMITS['mechanical_power'].high:g} J/min "
-                            f"({LIMITS['mechanical_power'].source}): ranked, not refused; set a ceiling in the case's "
-                            f"goals to make it a limit")
+            cautions.append(f"\u26a0 mechanical power {mp:.1f} J/min, above {LIMITS['mechanical_power'].high:g} "
+                            f"({LIMITS['mechanical_power'].source}): ranked, not refused")
         options.append({"settings": settings_dict(c.settings), "steady": steady, "cautions": cautions,
                         "i_to_e": round(i_to_e, 2), "inverse_ratio": bool(i_to_e > 1.0),
                         "margins": {k: round(v, 3) for k, v in margins(pred, goals).items()},

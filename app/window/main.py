@@ -129,7 +129,7 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
         split.setStretchFactor(0, 0)
         split.setStretchFactor(1, 3)
         split.setStretchFactor(2, 1)
-        split.setSizes([280, 900, 420])
+        split.setSizes([250, 850, 400])
         split.setChildrenCollapsible(False)
         outer.addWidget(split, 1)
         self.caution_label = QtWidgets.QLabel(CAUTION)

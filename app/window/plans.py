@@ -15,13 +15,17 @@ from .common import gas_text
 
 
 def _table(columns: list) -> QtWidgets.QTableWidget:
+    """A read-only table whose text columns share the width and wrap (nothing cut off on a small screen)."""
     t = QtWidgets.QTableWidget(0, len(columns))
     t.setHorizontalHeaderLabels(columns)
     t.verticalHeader().hide()
     t.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
     t.setWordWrap(True)
-    t.horizontalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeToContents)
-    t.horizontalHeader().setStretchLastSection(True)
+    t.setTextElideMode(QtCore.Qt.ElideNone)
+    header = t.horizontalHeader()
+    header.setSectionResizeMode(QtWidgets.QHeaderView.Stretch)
+    header.setSectionResizeMode(0, QtWidgets.QHeaderView.ResizeToContents)
+    header.sectionResized.connect(lambda *_: t.resizeRowsToContents())
     return t
 
 
