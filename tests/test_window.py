@@ -214,6 +214,20 @@ def test_measured_and_model_side_by_side(window, qtbot, qapp):
         _close(w, qapp)
 
 
+def test_goal_bands_on_the_charts(window, qtbot):
+    """Issue 17: each gas chart shows its goal as a band (PaO2 55-80 mmHg, or SpO2 0.88-0.95 in the SaO2
+    view; pH 7.30-7.45: ARDS Network 2000), in the window's unit."""
+    bands = window.outlook.goal_bands
+    assert bands["oxygen"].isVisible() and bands["oxygen"].getRegion() == pytest.approx((55, 80))
+    assert bands["ph"].getRegion() == pytest.approx((7.30, 7.45))
+    window.sao2_action.setChecked(True)
+    assert bands["oxygen"].getRegion() == pytest.approx((0.88, 0.95))
+    window.sao2_action.setChecked(False)
+    window.kpa_action.setChecked(True)
+    assert bands["oxygen"].getRegion() == pytest.approx((55 / win.MMHG_PER_KPA, 80 / win.MMHG_PER_KPA))
+    window.kpa_action.setChecked(False)
+
+
 def test_hover_reads_out_the_trial_curve(window, qtbot):
     chart = window.charts["paco2"]
     x, y = chart.trial.getData()
@@ -409,6 +423,8 @@ def test_options_panel_finds_settings_and_tries_one(window, qtbot):
     out = blocker.args[0]
     assert window.options_table.rowCount() == len(out["options"]) > 0
     assert window.options_table.item(0, 0).text().endswith("%")
+    assert "Oxygenation goal: PaO2 55 mmHg\u201380 mmHg or SpO2 0.88\u20130.95" in window.options_message.text()
+    assert "either one" in window.options_message.text()
     assert not window.progress.isVisible()
     with qtbot.waitSignal(window.forecast_shown, timeout=WAIT_MS):
         window.use_option(0)
@@ -434,6 +450,15 @@ def test_step_down_panel_follows_the_table(window, qtbot):
     assert "Readiness" in window.wean_readiness.text() and "Boles 2007" in window.wean_readiness.text()
     rsbi = next(c for c in out["readiness"] if "RSBI" in c["criterion"])
     assert rsbi["value"] == pytest.approx(80.0) and rsbi["met"] is True  # 24 / 0.3 L, below 105
+    assert ": 80 (" in window.wean_readiness.text()  # each criterion with its value (issue 17, item 8)
+    # "load this step into a trial": the step's settings become the current trial, undoably
+    if out["steps"]:
+        with qtbot.waitSignal(window.forecast_shown, timeout=WAIT_MS):
+            window.use_step(0)
+        assert window.last_forecast["trial_settings"] == check_settings("t", dict(out["steps"][0]["settings"]),
+                                                                        window._pbw())
+        with qtbot.waitSignal(window.forecast_shown, timeout=WAIT_MS):
+            window.undo_stack.undo()
 
 
 def test_long_work_can_be_cancelled(window, qtbot):

@@ -17,7 +17,7 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from .. import CAUTION
-from ..engine import RECHECK_NOTE, now_block, plan_case, steady_block, wean_case
+from ..engine import RECHECK_NOTE, case_goals, now_block, plan_case, steady_block, wean_case
 from ..worker import EngineRunner
 from .bedside import BedsidePanel
 from .common import APP_NAME, AUTOSAVE_MS, DEBOUNCE_MS, ORG_NAME, TRIALS, TrialState, file_stamp, new_recovery_path
@@ -112,6 +112,7 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
         self.options.option_chosen.connect(self.use_option)
         self.step_down = StepDownPanel()
         self.step_down.plan_requested.connect(self.plan_step_down)
+        self.step_down.step_chosen.connect(self.use_step)
         self.right_tabs = QtWidgets.QTabWidget()
         for panel, title in ((self.limits_panel, "Limits"), (self.lung_fit, "Lung fit"), (self.options, "Options"),
                              (self.step_down, "Step-down plan")):
@@ -250,6 +251,7 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
     def _draw_course(self, out, band=None):
         pplat_max = (self.state.case.get("goals") or {}).get("pplat_max_cmh2o", 30)
         self.outlook.draw(out, self.now_prediction, self.units, self.oxygen_view, pplat_max, band)
+        self.outlook.show_goals(case_goals(self.state.case).as_dict(), self.units, self.oxygen_view)
 
     def _show_steady(self, out):
         self.trial_panel.clear_problem()

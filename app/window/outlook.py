@@ -9,6 +9,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
+from .. import MMHG_PER_KPA
 from .common import COLOUR, _axis, kpa_from_mmhg
 
 
@@ -86,7 +87,7 @@ class OutlookChart:
 class OutlookPanel(QtWidgets.QGroupBox):
     """Five charts drawn from a forecast (plain data); it computes nothing."""
 
-    TITLE = "Outlook (next 60 min; dashed: current settings, solid: trial, band: likely range 90 %)"
+    TITLE = "Outlook (next 60 min; dashed: current settings, solid: trial, band: likely range 90 %, green: goal)"
 
     def __init__(self, parent=None):
         super().__init__("Outlook: no forecast yet (fitting the lung model...)", parent)
@@ -119,6 +120,16 @@ class OutlookPanel(QtWidgets.QGroupBox):
         self.pplat_limit = pg.InfiniteLine(angle=0, pos=30, movable=False,
                                            pen=pg.mkPen("#333333", width=1, style=QtCore.Qt.DotLine))
         pp.addItem(self.pplat_limit)
+        # The goal of each gas as a pale horizontal band behind its curves (the case's goals, else the
+        # published defaults), so that a forecast is read against what the team aims for.
+        self.goal_bands = {}
+        for key in ("oxygen", "paco2", "ph"):
+            band = pg.LinearRegionItem(orientation="horizontal", movable=False, brush=pg.mkBrush(0, 120, 60, 28),
+                                       pen=pg.mkPen(None))
+            band.setZValue(-20)
+            self.plots[key].addItem(band, ignoreBounds=True)
+            band.hide()
+            self.goal_bands[key] = band
         lay.addWidget(self.graphics)
 
     def clear(self):
@@ -136,6 +147,21 @@ class OutlookPanel(QtWidgets.QGroupBox):
         self.charts["paco2"].min_span = 5.0 / 7.5 if units == "kPa" else 5.0
         _axis(self.plots["oxygen"], "SaO2 [fraction]" if oxygen_view == "sao2" else f"PaO2 [{u}]")
         _axis(self.plots["paco2"], f"PaCO2 [{u}]")
+
+    def show_goals(self, goals: dict, units: str, oxygen_view: str):
+        """Goal bands: PaO2 (or SpO2 in the SaO2 view), PaCO2 and pH, in the window's unit."""
+        conv = (lambda x: x / MMHG_PER_KPA) if units == "kPa" else (lambda x: x)
+        ranges = {"oxygen": goals.get("spo2") if oxygen_view == "sao2" else
+                  (None if goals.get("pao2_mmhg") is None else [conv(x) for x in goals["pao2_mmhg"]]),
+                  "paco2": None if goals.get("paco2_mmhg") is None else [conv(x) for x in goals["paco2_mmhg"]],
+                  "ph": goals.get("ph")}
+        for key, rng in ranges.items():
+            band = self.goal_bands[key]
+            if rng is None:
+                band.hide()
+            else:
+                band.setRegion((float(rng[0]), float(rng[1])))
+                band.show()
 
     def draw(self, out: dict, now, units: str, oxygen_view: str, pplat_max: float, band: dict | None = None):
         """Draw a forecast's course (``out``, from :func:`app.engine.forecast_fitted`) against the current

@@ -29,6 +29,11 @@ def _table(columns: list) -> QtWidgets.QTableWidget:
     return t
 
 
+def _readiness_value(value) -> str:
+    """A readiness criterion's value at the last step ('not entered' when it needs data not given)."""
+    return "not entered" if value is None else f"{value:g}"
+
+
 class OptionsPanel(QtWidgets.QWidget):
     """Settings found by the goal search, best first, with their probability of meeting every goal."""
 
@@ -55,8 +60,13 @@ class OptionsPanel(QtWidgets.QWidget):
 
     def show_plan(self, out: dict, units: str):
         head = f"\u2713 {out['message']}" if out["met"] else f"\u26a0 {out['message']}"
-        self.message.setText(f"{escape(head)}<br>Screened {out['screened']} settings. Double-click an option "
-                             f"to try it in the current trial.")
+        g = out["goals"]
+        oxygen = " or ".join(part for part in (
+            None if g.get("pao2_mmhg") is None else f"PaO2 {gas_text(g['pao2_mmhg'][0], units)}\u2013{gas_text(g['pao2_mmhg'][1], units)}",
+            None if g.get("spo2") is None else f"SpO2 {g['spo2'][0]:.2f}\u2013{g['spo2'][1]:.2f} (the model's SaO2)") if part)
+        self.message.setText(f"{escape(head)}<br>Oxygenation goal: {escape(oxygen) or 'none'} (either one is met). "
+                             f"Screened {out['screened']} settings. Double-click an option to try it in the current "
+                             f"trial.")
         self.table.setRowCount(len(out["options"]))
         for i, o in enumerate(out["options"]):
             st = o["steady"]
@@ -73,6 +83,7 @@ class StepDownPanel(QtWidgets.QWidget):
     """The step-down request (steps, targets, spontaneous breathing for RSBI) and the plan."""
 
     plan_requested = QtCore.Signal()
+    step_chosen = QtCore.Signal(int)   # row of the step whose settings go into the current trial
     TABLES = (None, "lower-peep", "higher-peep")
 
     def __init__(self, parent=None):
@@ -98,7 +109,12 @@ class StepDownPanel(QtWidgets.QWidget):
         self.message.setWordWrap(True)
         lay.addWidget(self.message)
         self.steps = _table(["step", "forecast (likely range 90 %)", "hold"])
+        self.steps.setSelectionBehavior(QtWidgets.QAbstractItemView.SelectRows)
+        self.steps.cellDoubleClicked.connect(lambda row, _col: self.step_chosen.emit(row))
         lay.addWidget(self.steps, 1)
+        self.use_button = QtWidgets.QPushButton("Try the selected step in the current trial")
+        self.use_button.clicked.connect(lambda: self.step_chosen.emit(self.steps.currentRow()))
+        lay.addWidget(self.use_button)
         self.readiness = QtWidgets.QLabel("")
         self.readiness.setWordWrap(True)
         lay.addWidget(self.readiness)
@@ -136,4 +152,5 @@ class StepDownPanel(QtWidgets.QWidget):
         self.steps.resizeRowsToContents()
         marks = {True: "\u2713", False: "\u2716", None: "?"}
         self.readiness.setText("<b>Readiness at the last step:</b><br>" + "<br>".join(
-            f"{marks[c['met']]} {escape(c['criterion'])} ({escape(c['source'])})" for c in out["readiness"]))
+            f"{marks[c['met']]} {escape(c['criterion'])}: {_readiness_value(c['value'])} ({escape(c['source'])})"
+            for c in out["readiness"]))

@@ -89,6 +89,15 @@ class TrialEditing:
             return f"VT {s['vt_ml'] / pbw:.1f} mL/kg PBW (PBW {pbw:.1f} kg)"
         return f"PBW {pbw:.1f} kg; VT follows from the inspiratory pressure"
 
+    def use_step(self, row):
+        """Put a step-down step's settings into the current trial (undoable), to see its course."""
+        if self.last_wean is None or not 0 <= row < len(self.last_wean["steps"]):
+            return
+        before = dict(self.trial)
+        after = dict(self.last_wean["steps"][row]["settings"])
+        if after != before:
+            self.undo_stack.push(TrialChange(self, self.state.active, before, after, f"step {row + 1}"))
+
     def use_option(self, row):
         """Put an option's settings into the current trial (undoable)."""
         if self.last_plan is None or not 0 <= row < len(self.last_plan["options"]):
