@@ -95,9 +95,14 @@ class ForecastPipeline:
             self.fit_result = result["result"]
             self.now_prediction = result["now"]
             self._show_fit()
-            # The draws start once the first forecast is on screen (they would slow it down); see
-            # _submit_draws.
-            self._draws_for = self.fit_result
+            if self.fit_result.sampled:  # a fit remembered complete: nothing more to compute
+                self._draws_for = None
+                self._stop_busy()
+                self.fit_shown.emit(self.fit_result)
+            else:
+                # The draws start once the first forecast is on screen (they would slow it down); see
+                # _submit_draws.
+                self._draws_for = self.fit_result
             self._request_forecast()
         elif request.kind == "draws":
             if result["estimate"] is not self.fit_result:
