@@ -463,6 +463,10 @@ def _solve_arrays(a: dict, tol: float, max_iter: int, start: dict | None = None,
     cu = np.maximum(cu, 0.5)
     p = np.concatenate([pu, np.sum(w * pu, axis=1, keepdims=True), pv_o2], axis=1)
     c = np.concatenate([cu, np.sum(w * cu, axis=1, keepdims=True), pv_co2], axis=1)
+    if start is not None and start["p"].shape[0] == p.shape[0] and start["p"].shape[1] > p.shape[1]:
+        # A state from a batch with the high-V/Q mode, continued without it: its main units and blood.
+        start = dict(start, p=np.concatenate([start["p"][:, :nu], start["p"][:, -2:]], axis=1),
+                     c=np.concatenate([start["c"][:, :nu], start["c"][:, -2:]], axis=1))
     if start is not None and start["p"].shape == p.shape:
         warm = (np.all(np.isfinite(start["p"]) & (start["p"] > 0), axis=1)
                 & np.all(np.isfinite(start["c"]) & (start["c"] > 0), axis=1)
@@ -656,8 +660,7 @@ def _concatenate(parts: list) -> dict:
         if k == "it":
             out[k] = max(pt["it"] for pt in parts)
         elif k == "_state":
-            out[k] = {j: (np.concatenate([np.pad(pt[k][j], ((0, 0), (0, width + 2 - pt[k][j].shape[1])),
-                                                 constant_values=np.nan) for pt in parts])
+            out[k] = {j: (np.concatenate([_widen_state(pt[k][j], width) for pt in parts])
                           if parts[0][k][j].ndim == 2 else np.concatenate([pt[k][j] for pt in parts]))
                       for j in parts[0][k]}
         elif parts[0][k].ndim == 2:
@@ -667,16 +670,30 @@ def _concatenate(parts: list) -> dict:
     return out
 
 
+def _widen_state(x, width: int):
+    """A Newton state (units, then arterial and mixed-venous columns) widened to ``width`` units: the
+    missing units (a chunk without a high-V/Q mode beside one with it) are NaN, the blood stays last."""
+    missing = width + 2 - x.shape[1]
+    if missing <= 0:
+        return x
+    return np.concatenate([x[:, :-2], np.full((x.shape[0], missing), np.nan), x[:, -2:]], axis=1)
+
+
 def _place(r: dict, rows, redo: dict) -> None:
-    """Write the results of a continued pass (``redo``, for ``rows`` of ``r``) into ``r``."""
+    """Write the results of a continued pass (``redo``, for ``rows`` of ``r``) into ``r``. The continued
+    cases may have fewer unit columns (none of them has the high-V/Q mode): unit arrays are padded with
+    zeros, as :func:`_concatenate` does, and states keep their blood columns last."""
+    width = r["unit_vq"].shape[1]
     for k, v in redo.items():
         if k == "it":
             continue
         if k == "_state":
             for j, x in v.items():
-                r[k][j][rows] = x if x.ndim == 1 else x[:, :r[k][j].shape[1]]
+                r[k][j][rows] = x if x.ndim == 1 else _widen_state(x, width)
             continue
-        r[k][rows] = v if v.ndim == 1 else v[:, :r[k].shape[1]]
+        if v.ndim == 2 and v.shape[1] < width:
+            v = np.pad(v, ((0, 0), (0, width - v.shape[1])))
+        r[k][rows] = v
 
 
 def _solve_batch(a: dict, tol: float, max_iter: int, start: dict | None, settle: float = SETTLE_SHARE) -> dict:
