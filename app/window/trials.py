@@ -91,21 +91,20 @@ class TrialEditing:
 
     def use_step(self, row):
         """Put a step-down step's settings into the current trial (undoable), to see its course."""
-        if self.last_wean is None or not 0 <= row < len(self.last_wean["steps"]):
-            return
-        before = dict(self.trial)
-        after = dict(self.last_wean["steps"][row]["settings"])
-        if after != before:
-            self.undo_stack.push(TrialChange(self, self.state.active, before, after, f"step {row + 1}"))
+        self._try_row(self.last_wean, "steps", row, "step")
 
     def use_option(self, row):
         """Put an option's settings into the current trial (undoable)."""
-        if self.last_plan is None or not 0 <= row < len(self.last_plan["options"]):
+        self._try_row(self.last_plan, "options", row, "option")
+
+    def _try_row(self, shown, key: str, row: int, what: str):
+        """The settings of row ``row`` of a plan shown (``shown[key]``) as the current trial, undoably."""
+        if shown is None or not 0 <= row < len(shown[key]):
             return
         before = dict(self.trial)
-        after = dict(self.last_plan["options"][row]["settings"])
+        after = dict(shown[key][row]["settings"])
         if after != before:
-            self.undo_stack.push(TrialChange(self, self.state.active, before, after, f"option {row + 1}"))
+            self.undo_stack.push(TrialChange(self, self.state.active, before, after, f"{what} {row + 1}"))
 
     def _checked_trials(self):
         pbw = self._pbw()
