@@ -454,6 +454,18 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
         out["likely_range"] = {"pao2_mmhg": list(ranges["pao2"]), "paco2_mmhg": list(ranges["paco2"]),
                                "ph": list(ranges["ph"]), "sao2": list(ranges["sao2"])}
     alerts = limit_alerts(steady, case.get("goals"))
+    if out["likely_range"] is not None:
+        # The point forecast comes from the fitted estimate, the range from the posterior draws; when the
+        # estimate lies outside the draws' 90 % range it is atypical of what the data allow: say so.
+        for key, name, digits in (("pao2_mmhg", "PaO2", 0), ("paco2_mmhg", "PaCO2", 1)):
+            lo, hi = out["likely_range"][key]
+            x = steady[key]
+            if x is not None and not lo <= x <= hi:
+                alerts.append({"code": "estimate_outside_range", "severity": "caution",
+                               "message": f"the {name} forecast of the fitted estimate ({x:.{digits}f} mmHg) lies "
+                                          f"outside its likely range ({lo:.{digits}f} to {hi:.{digits}f} mmHg): the "
+                                          f"estimate is atypical of the parameters the data allow; read the range, "
+                                          f"and a second blood gas at other settings would settle it"})
     if ok_share < 0.95:
         alerts.append({"code": "range_incomplete", "severity": "caution",
                        "message": f"{100 * (1 - ok_share):.0f} % of the parameter draws have no steady state at the trial "

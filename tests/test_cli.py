@@ -363,3 +363,15 @@ def test_version_and_help_name_every_set_key_with_its_range(capsys):
     for key, (lo, hi, unit) in casefile.SETTING_RANGES.items():
         assert f"{key} ({lo:g}-{hi:g} {unit})" in text, key
     assert "fio2 (0.21-1.0)" in text and "vt_ml (2-20 mL/kg PBW" in text
+
+
+def test_a_forecast_outside_its_own_range_is_said(capsys):
+    """The point forecast (fitted estimate) and the likely range (posterior draws) can disagree: COPD demo,
+    PEEP 5 -> 8 cmH2O gave PaCO2 77.3 mmHg with a range of 61.8-75.4. Whenever the forecast lies outside its
+    range, an alert says so in words (never silently)."""
+    assert main(["predict", "--demo", "copd-trapping", "--set", "peep_cmh2o=8", "--format", "json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    flagged = {a["message"].split()[1] for a in out["alerts"] if a["code"] == "estimate_outside_range"}
+    for key, name in (("pao2_mmhg", "PaO2"), ("paco2_mmhg", "PaCO2")):
+        lo, hi = out["likely_range"][key]
+        assert (name in flagged) == (not lo <= out["steady"][key] <= hi), (name, out["steady"][key], lo, hi)

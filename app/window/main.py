@@ -265,10 +265,12 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
         self._fill_limits(out["limit_lines"])
         r = out.get("recheck_after_min")
         unchanged = out["settings"] == out["current_settings"]
-        self.recheck_label.setText(
-            "The trial equals the current settings: no change is expected." if unchanged else
-            "" if r is None else f"Re-check a blood gas after about {max(r, 1):.0f} min at the earliest "
-                                 f"({RECHECK_NOTE}).")
+        text = ("The trial equals the current settings: no change is expected." if unchanged else
+                "" if r is None else f"Re-check a blood gas after about {max(r, 1):.0f} min at the earliest "
+                                     f"({RECHECK_NOTE}).")
+        # A forecast outside its own likely range is said where the re-check advice is read.
+        outside = [a["message"] for a in out.get("alerts", []) if a["code"] == "estimate_outside_range"]
+        self.recheck_label.setText("\n".join([text] + [f"\u26a0 {m[0].upper()}{m[1:]}." for m in outside]).strip())
 
     def _show_band(self, out):
         if self.last_forecast is None:
