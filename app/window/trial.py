@@ -178,7 +178,9 @@ class TrialPanel(QtWidgets.QGroupBox):
                 if label == "now" and text != "-" and key in self.DIFFERENCE_KEYS and measured.get(key) is not None:
                     diff = float(block[key]) - float(measured[key])
                     scale = 1.0 / MMHG_PER_KPA if unit == "gas" and units == "kPa" else 1.0
-                    text += f" (\u0394 {diff * scale:+.{max(digits, 1) if scale != 1.0 else digits}f})"
+                    shown = max(digits, 1) if scale != 1.0 else digits
+                    diff = round(diff * scale, shown) + 0.0  # + 0.0: never "-0.00"
+                    text += f" (\u0394 {diff:+.{shown}f})"
                 if ranges and label == ranges_trial and key in self.RANGE_KEYS and text != "-":
                     lo, hi = ranges[key]
                     text += f" ({self._value(lo, unit, digits, units)}–{self._value(hi, unit, digits, units)})"
