@@ -270,6 +270,10 @@ def now_block(case: dict) -> dict:
     return out
 
 
+#: Below this arterial pH a low pH is a danger line, not a caution, and no weaning advice (such as
+#: lowering FiO2) is given beside it (common practice).
+PH_DANGER = 7.15
+
 #: Margins to goals and limits in words: key -> (name on screen, unit, decimals: the clinical precision).
 MARGIN_LABELS = {"spo2": ("SpO2", "", 3), "pao2_mmhg": ("PaO2", "mmHg", 0), "paco2_mmhg": ("PaCO2", "mmHg", 1),
                  "ph": ("pH", "", 2), "pplat_cmh2o": ("Pplat", "cmH2O", 1),
@@ -330,10 +334,10 @@ def limit_checks(steady: dict, goals: dict | None = None, fio2: float | None = N
     x = v["ph"]
     low, high = x is not None and x < ph_lo, x is not None and x > ph_hi
     line("ph", "pH", x, f"{ph_lo:.2f}-{ph_hi:.2f}", low or high, "ph_low" if low else "ph_high",
-         "danger" if (low and x < 7.15) else "caution",
+         "danger" if (low and x < PH_DANGER) else "caution",
          f"pH {x or 0:.2f} is below {ph_lo:.2f}" if low else f"pH {x or 0:.2f} is above {ph_hi:.2f}", f"{x or 0:.2f}")
     # No advice to lower FiO2 beside a pH in the danger zone: the patient needs attention, not weaning.
-    ph_danger = v["ph"] is not None and v["ph"] < 7.15
+    ph_danger = v["ph"] is not None and v["ph"] < PH_DANGER
     x = v["pao2_mmhg"]
     low, high = x is not None and x < o2_lo, x is not None and x > o2_hi
     line("pao2", "PaO2", x, f"{o2_lo:g}-{o2_hi:g} mmHg", low or high, "pao2_low" if low else "pao2_above_goal",

@@ -9,7 +9,6 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from .. import MMHG_PER_KPA
 from .common import COLOUR, _axis, kpa_from_mmhg
 
 
@@ -150,7 +149,7 @@ class OutlookPanel(QtWidgets.QGroupBox):
 
     def show_goals(self, goals: dict, units: str, oxygen_view: str):
         """Goal bands: PaO2 (or SpO2 in the SaO2 view), PaCO2 and pH, in the window's unit."""
-        conv = (lambda x: x / MMHG_PER_KPA) if units == "kPa" else (lambda x: x)
+        conv = kpa_from_mmhg if units == "kPa" else (lambda x: x)
         ranges = {"oxygen": goals.get("spo2") if oxygen_view == "sao2" else
                   (None if goals.get("pao2_mmhg") is None else [conv(x) for x in goals["pao2_mmhg"]]),
                   "paco2": None if goals.get("paco2_mmhg") is None else [conv(x) for x in goals["paco2_mmhg"]],

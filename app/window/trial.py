@@ -11,7 +11,6 @@ import math
 
 from PySide6 import QtCore, QtWidgets
 
-from .. import MMHG_PER_KPA
 from .common import CONTROLS, TRIALS, kpa_from_mmhg
 
 
@@ -177,9 +176,9 @@ class TrialPanel(QtWidgets.QGroupBox):
                 text = "-" if block is None else self._value(block.get(key), unit, digits, units)
                 if label == "now" and text != "-" and key in self.DIFFERENCE_KEYS and measured.get(key) is not None:
                     diff = float(block[key]) - float(measured[key])
-                    scale = 1.0 / MMHG_PER_KPA if unit == "gas" and units == "kPa" else 1.0
-                    shown = max(digits, 1) if scale != 1.0 else digits
-                    diff = round(diff * scale, shown) + 0.0  # + 0.0: never "-0.00"
+                    kpa = unit == "gas" and units == "kPa"  # the same unit and decimals as _value
+                    shown = max(digits, 1) if kpa else digits
+                    diff = round(kpa_from_mmhg(diff) if kpa else diff, shown) + 0.0  # + 0.0: never "-0.00"
                     text += f" (\u0394 {diff:+.{shown}f})"
                 if ranges and label == ranges_trial and key in self.RANGE_KEYS and text != "-":
                     lo, hi = ranges[key]

@@ -699,8 +699,6 @@ def _place(r: dict, rows, redo: dict) -> None:
 def _solve_batch(a: dict, tol: float, max_iter: int, start: dict | None, settle: float = SETTLE_SHARE) -> dict:
     """Chunks of at most CHUNK cases, each pass stopping once ``settle`` of its cases have settled;
     the unsettled ones continue together from their last iterate until ``max_iter`` iterations in all."""
-    n = a["fio2"].shape[0]
-
     def run(sub, budget, st):
         m = sub["fio2"].shape[0]
         parts = [_solve_arrays({k: v[lo:lo + CHUNK] for k, v in sub.items()}, tol, budget,
