@@ -289,6 +289,23 @@ def candidate_grid(now: Settings, pbw_kg: float, goals: Goals, peep_range=(5, 20
     return P[keep], S[keep], R[keep], fio2s
 
 
+#: The shortest inspiratory time the search proposes [s] (common practice for adults).
+TI_MIN_S = 0.5
+
+
+def _breath_checks(model, now: Settings, P, S, R, T, goals: Goals, pbw_kg: float):
+    """The limit checks of each breath (PEEP P, size S, rate R, inspiratory time T) that depend on the
+    breath only, whether it passes them all, and its intrinsic PEEP [cmH2O]."""
+    n = P.size
+    size = {"vt_ml": S} if now.mode == "volume" else {"inspiratory_pressure": S}
+    breaths = Settings(mode=now.mode, fio2=np.full(n, 0.5), peep=P, rr=R, ti=T,
+                       apparatus_dead_space_ml=np.full(n, float(now.apparatus_dead_space_ml or 0.0)),
+                       pause=np.zeros(n), **size)
+    b = breathe(breaths, model.mechanics, pbw_kg=pbw_kg)
+    mech = mechanics_checks(b, R, b.vt_ml / pbw_kg, goals)
+    return mech, np.logical_and.reduce(list(mech.values())) & np.asarray(b.success, dtype=bool), b.intrinsic_peep
+
+
 def search(model: PatientModel, draws: PatientModel, now: Settings, goals: Goals, pbw_kg: float,
            top: int = 5, n_best: int = 50, required_probability: float = 0.9, progress=None) -> SearchResult:
     """Settings that meet ``goals`` (see module notes). ``progress(fraction)`` is called between stages
@@ -296,15 +313,27 @@ def search(model: PatientModel, draws: PatientModel, now: Settings, goals: Goals
     if not 0.5 <= required_probability < 1.0:
         raise ValueError(f"required_probability = {required_probability} is outside the accepted range 0.5 to <1")
     P, S, R, fio2s = candidate_grid(now, pbw_kg, goals)
-    n_breaths = P.size
+    T = np.full(P.size, float(now.ti))
     apparatus = float(now.apparatus_dead_space_ml or 0.0)
+    mech, mech_ok, peepi = _breath_checks(model, now, P, S, R, T, goals, pbw_kg)
+    # Where intrinsic PEEP excludes breaths that pass every other limit, or comes within half of its
+    # limit (gas trapping the parameter draws may carry over it), a shorter inspiratory time lengthens
+    # expiration: those breaths are tried again at I:E 1:2, 1:3 and 1:4 (Ti of at least 0.5 s and
+    # shorter than now; common practice in obstructive disease).
+    others_ok = np.logical_and.reduce([v for k, v in mech.items() if k != "intrinsic_peep"])
+    with np.errstate(invalid="ignore"):
+        near_limit = ~(np.asarray(peepi) < 0.5 * goals.intrinsic_peep_max_cmh2o)
+    trapped = np.flatnonzero(near_limit & others_ok)
+    if trapped.size:
+        breath = 60.0 / R[trapped]
+        ti_new = np.round(np.stack([breath / 3.0, breath / 4.0, breath / 5.0]) / 0.05) * 0.05
+        keep = (ti_new >= TI_MIN_S) & (ti_new < float(now.ti) - 1e-9)
+        j = np.broadcast_to(trapped, ti_new.shape)[keep]
+        P, S, R, T = (np.concatenate([a, a[j]]) for a in (P, S, R, T))
+        T[-j.size:] = ti_new[keep]
+        mech, mech_ok, _peepi = _breath_checks(model, now, P, S, R, T, goals, pbw_kg)
+    n_breaths = P.size
     size = {"vt_ml": S} if now.mode == "volume" else {"inspiratory_pressure": S}
-    breaths = Settings(mode=now.mode, fio2=np.full(n_breaths, 0.5), peep=P, rr=R, ti=np.full(n_breaths, float(now.ti)),
-                       apparatus_dead_space_ml=np.full(n_breaths, apparatus), pause=np.zeros(n_breaths), **size)
-    b = breathe(breaths, model.mechanics, pbw_kg=pbw_kg)
-    vt_per_kg = b.vt_ml / pbw_kg
-    mech = mechanics_checks(b, R, vt_per_kg, goals)
-    mech_ok = np.logical_and.reduce(list(mech.values())) & np.asarray(b.success, dtype=bool)
     screened = int(n_breaths * fio2s.size)
     if progress:
         progress(0.2)
@@ -321,7 +350,7 @@ def search(model: PatientModel, draws: PatientModel, now: Settings, goals: Goals
     # closest options can still be shown.
     if goals.ph is not None or goals.paco2_mmhg is not None:
         probe = Settings(mode=now.mode, fio2=np.full(idx.size, float(now.fio2)), peep=P[idx], rr=R[idx],
-                         ti=np.full(idx.size, float(now.ti)), apparatus_dead_space_ml=np.full(idx.size, apparatus),
+                         ti=T[idx], apparatus_dead_space_ml=np.full(idx.size, apparatus),
                          pause=np.zeros(idx.size), **{key: v[idx] for key, v in size.items()})
         g1 = predict(model, probe).gas
         with np.errstate(invalid="ignore"):
@@ -336,7 +365,7 @@ def search(model: PatientModel, draws: PatientModel, now: Settings, goals: Goals
     k = idx.size
     F = np.repeat(fio2s[None, :], k, axis=0).ravel()
     rep = np.repeat(idx, fio2s.size)
-    cand = Settings(mode=now.mode, fio2=F, peep=P[rep], rr=R[rep], ti=np.full(F.size, float(now.ti)),
+    cand = Settings(mode=now.mode, fio2=F, peep=P[rep], rr=R[rep], ti=T[rep],
                     apparatus_dead_space_ml=np.full(F.size, apparatus), pause=np.zeros(F.size),
                     **{key: v[rep] for key, v in size.items()})
     pred = predict(model, cand)
@@ -346,7 +375,7 @@ def search(model: PatientModel, draws: PatientModel, now: Settings, goals: Goals
     violation = _violation(pred, goals)
     margin = _margin(pred, goals)
     n_changes = np.zeros(F.size)
-    for name, arr in (("fio2", F), ("peep", P[rep]), ("rr", R[rep]), (next(iter(size)), S[rep])):
+    for name, arr in (("fio2", F), ("peep", P[rep]), ("rr", R[rep]), ("ti", T[rep]), (next(iter(size)), S[rep])):
         ref = getattr(now, name)
         n_changes += 0 if ref is None else (np.abs(arr - float(ref)) > 1e-9)
     w = COST_WEIGHTS
