@@ -20,12 +20,35 @@ import numpy as np
 from ventcast.physiology.scenario import EVENT_KINDS, Action, Event, Timeline
 
 from . import CAUTION
-from .casefile import CaseError, DEMO_NAMES, load, load_demo, parse_json, read_text, schema_error, validate
+from .casefile import (CaseError, DEMO_NAMES, load, load_demo, parse_json, read_text, schema_error, setting_words,
+                       validate)
 from .engine import apply_sets, fit_case, settings_dict, to_settings
 
 FORMAT = "ventcast.walkthrough"
 VERSION = 1
 BUILT_IN = ("hypoxaemia-needs-peep", "hypercapnia-gas-trapping", "sudden-deterioration")
+
+
+#: Each event kind in the words on screen ({v}: its value).
+EVENT_WORDS = {"shunt_up": "shunt up by {p:.0f} % of cardiac output", "lung_collapse": "{p:.0f} % of the lung collapses",
+               "compliance_down": "compliance falls to {p:.0f} %", "resistance_up": "airway resistance rises to {p:.0f} %",
+               "metabolism_up": "O2 use and CO2 production rise to {p:.0f} %",
+               "cardiac_output_down": "cardiac output falls to {p:.0f} %", "circuit_leak": "circuit leak of {p:.0f} %",
+               "recruitment_manoeuvre": "recruitment manoeuvre to {v:g} cmH2O"}
+
+
+def event_words(kind: str, value: float) -> str:
+    """An event in the words on screen: ``('resistance_up', 1.3)`` -> 'airway resistance rises to 130 %'."""
+    return EVENT_WORDS[kind].format(v=value, p=100.0 * value)
+
+
+def set_words(assignment: str) -> str:
+    """A learner's setting change ``'peep_cmh2o=12'`` in the words on screen ('PEEP 12 cmH2O')."""
+    key, _, value = assignment.partition("=")
+    try:
+        return setting_words(key, float(value))
+    except ValueError:
+        return setting_words(key, value)
 
 
 def _schema() -> dict:
@@ -153,7 +176,7 @@ class Run:
             sets = [f"{k}={v}" for k, v in sets.items()]
         new = apply_sets(case_now, sets, where=where)
         self.timeline.add_action(Action(float(minute), to_settings(new), ", ".join(sets)))
-        self.action_log.append({"minute": float(minute), "settings": new, "changed": list(sets)})
+        self.action_log.append({"minute": float(minute), "settings": new, "changed": [set_words(x) for x in sets]})
         self._course = None
         return new
 
@@ -196,7 +219,9 @@ class Run:
                 value = settings_dict(self.timeline.settings_at(t)).get(ex["setting"])
                 met = value is not None and (value >= ex["value"] if ex["what"] == "setting_at_least" else value <= ex["value"])
                 word = "at least" if ex["what"] == "setting_at_least" else "at most"
-                text = f"{ex['setting']} {word} {ex['value']:g} by minute {t:g} (was {value})"
+                goal = setting_words(ex["setting"], ex["value"], word)
+                was = "not set" if value is None else setting_words(ex["setting"], value)
+                text = f"{goal} by minute {t:g} (at minute {t:g}: {was})"
             out.append({"expected": text, "met": bool(met), "why": ex.get("why", "")})
         return out
 
