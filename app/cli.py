@@ -15,9 +15,10 @@ from ventcast.physiology.planning.search import CONSTRAINT_NAMES
 
 from . import CAUTION
 from .bedside import bedside_indices
-from .engine import MARGIN_LABELS, RECHECK_NOTE, ModelError, ie_text
 from .casefile import (DEMO_NAMES, SETTING_RANGES, CaseError, check_output_file, check_output_files, demo_text, load, load_demo,
                        read_text, write_atomic)
+from .engine import MARGIN_LABELS, RECHECK_NOTE, ModelError, ie_text
+from .precision import rounded, sao2_text
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_MODEL = 0, 1, 2, 3
 
@@ -97,7 +98,7 @@ def _num(v, d=1):
 
 
 STEADY_ROWS = [("PaO2", "pao2_mmhg", "mmHg", 0), ("PaCO2", "paco2_mmhg", "mmHg", 1), ("pH", "ph", "", 2),
-               ("SaO2", "sao2", "", 3), ("PetCO2", "petco2_mmhg", "mmHg", 1), ("VD/VT", "vd_vt", "", 2),
+               ("SaO2", "sao2", "%", 0), ("PetCO2", "petco2_mmhg", "mmHg", 1), ("VD/VT", "vd_vt", "", 2),
                ("Qs/Qt (shunt)", "shunt_fraction", "", 2), ("Pplat", "pplat_cmh2o", "cmH2O", 1),
                ("Ppeak", "ppeak_cmh2o", "cmH2O", 1), ("Driving pressure (Pplat - total PEEP)", "driving_pressure_cmh2o", "cmH2O", 1),
                ("Intrinsic PEEP", "intrinsic_peep_cmh2o", "cmH2O", 1),
@@ -111,7 +112,7 @@ def _cmd_predict(args) -> int:
     case = _load_case(args)
     if not 1 <= args.minutes <= 240:
         raise CaseError("--minutes", f"value {args.minutes:g} is outside the accepted range 1 to 240 min")
-    out = forecast_case(case, args.set, minutes=args.minutes)
+    out = rounded(forecast_case(case, args.set, minutes=args.minutes))
     if args.format == "json":
         print(json.dumps(out))
         return EXIT_OK
@@ -130,11 +131,12 @@ def _cmd_predict(args) -> int:
     rng = out["likely_range"]
     for title, key, unit, d in STEADY_ROWS:
         band = ""
-        short = {"pao2_mmhg": "pao2_mmhg", "paco2_mmhg": "paco2_mmhg", "ph": "ph", "sao2": "sao2"}.get(key)
-        if short:
-            lo, hi = rng[short]
-            band = f"{lo:.{d}f} to {hi:.{d}f}"
-        print(f"  {title:<{width}} {_num(out['steady'][key], d):>9} {unit:<9} {band}")
+        scale = 100.0 if key == "sao2" else 1.0  # SaO2 in whole per cent (app.precision)
+        if key in ("pao2_mmhg", "paco2_mmhg", "ph", "sao2"):
+            lo, hi = rng[key]
+            band = f"{scale * lo:.{d}f} to {scale * hi:.{d}f}"
+        value = out["steady"][key]
+        print(f"  {title:<{width}} {_num(None if value is None else scale * value, d):>9} {unit:<9} {band}")
     if out["settings"] == out.get("current_settings"):
         print("\nThe trial equals the current settings: no change is expected.")
     elif out.get("recheck_after_min") is not None:
@@ -158,7 +160,7 @@ def _cmd_fit(args) -> int:
     case = _load_case(args)
     _patient, _obs, result = fit_case(case)
     block = fit_block(result, to_settings(case["settings"]))
-    out = {"now": now_block(case), "fit": block, "caution": CAUTION}
+    out = rounded({"now": now_block(case), "fit": block, "caution": CAUTION})
     if args.format == "json":
         print(json.dumps(out))
         return EXIT_OK
@@ -221,7 +223,7 @@ def _cmd_plan(args) -> int:
     case = _load_case(args)
     if not 0.5 <= args.probability < 1.0:
         raise CaseError("--probability", f"value {args.probability:g} is outside the accepted range 0.5 to below 1")
-    out = plan_case(case, required_probability=args.probability)
+    out = rounded(plan_case(case, required_probability=args.probability))
     if args.format == "json":
         print(json.dumps(out))
         return EXIT_OK
@@ -239,7 +241,7 @@ def _cmd_plan(args) -> int:
         for caution in o["cautions"]:
             if not caution.startswith("I:E"):
                 print(f"   {caution}")
-        print(f"   PaO2 {st['pao2_mmhg']:.0f} mmHg, SaO2 {st['sao2']:.3f}, PaCO2 {st['paco2_mmhg']:.1f} mmHg, pH "
+        print(f"   PaO2 {st['pao2_mmhg']:.0f} mmHg, SaO2 {sao2_text(st['sao2'])}, PaCO2 {st['paco2_mmhg']:.1f} mmHg, pH "
               f"{st['ph']:.2f}, Pplat {st['pplat_cmh2o']:.1f}, driving pressure {st['driving_pressure_cmh2o']:.1f} cmH2O, "
               f"mechanical power {st['mechanical_power_j_min']:.1f} J/min")
         print("   margins to the goals and limits: " + ", ".join(
@@ -265,8 +267,8 @@ def _cmd_wean(args) -> int:
                             ("--spontaneous-vt-ml", args.spontaneous_vt_ml, 50, 2000)):
         if v is not None and not lo <= v <= hi:
             raise CaseError(name, f"value {v:g} is outside the accepted range {lo} to {hi}")
-    out = wean_case(case, table=args.table, target_fio2=args.target_fio2, target_peep=args.target_peep,
-                    spontaneous_rr=args.spontaneous_rr, spontaneous_vt_ml=args.spontaneous_vt_ml)
+    out = rounded(wean_case(case, table=args.table, target_fio2=args.target_fio2, target_peep=args.target_peep,
+                            spontaneous_rr=args.spontaneous_rr, spontaneous_vt_ml=args.spontaneous_vt_ml))
     if args.format == "json":
         print(json.dumps(out))
         return EXIT_OK
@@ -276,7 +278,7 @@ def _cmd_wean(args) -> int:
     for i, st in enumerate(out["steps"], 1):
         v, r = st["steady"], st["likely_range"]
         print(f"\n{i}. {st['change']} ({st['why']})")
-        print(f"   SaO2 {v['sao2']:.3f} ({r['sao2'][0]:.3f} to {r['sao2'][1]:.3f}), PaO2 {v['pao2_mmhg']:.0f} mmHg "
+        print(f"   SaO2 {sao2_text(v['sao2'])} ({sao2_text(r['sao2'][0])} to {sao2_text(r['sao2'][1])}), PaO2 {v['pao2_mmhg']:.0f} mmHg "
               f"({r['pao2_mmhg'][0]:.0f} to {r['pao2_mmhg'][1]:.0f}), PaCO2 {v['paco2_mmhg']:.1f} mmHg, pH {v['ph']:.2f}")
         hold = "-" if st["hold_min"] is None else f"{st['hold_min']:.0f} min"
         print(f"   hold at least {hold} ({st['hold_basis']}), then check; {st['stop_if']}")
@@ -354,7 +356,7 @@ def _cmd_report(args) -> int:
 
 
 def _cmd_walkthrough(args) -> int:
-    from .walkthrough import Run, apply_actions_file, load_script
+    from .walkthrough import Run, apply_actions_file, event_words, load_script
     script, folder = load_script(args.script)
     if not args.headless:
         from .window import run as run_window
@@ -374,12 +376,12 @@ def _cmd_walkthrough(args) -> int:
         return EXIT_OK
     print(f"Walkthrough: {out['title']} (to minute {until:g})")
     for e in out["events"]:
-        print(f"  {e['minute']:5.1f} min  event {e['kind']} {e['value']:g}: {e['note']}")
+        print(f"  {e['minute']:5.1f} min  event: {event_words(e['kind'], e['value'])}: {e['note']}")
     for a in out["actions"]:
         print(f"  {a['minute']:5.1f} min  learner: {', '.join(a['changed'])}")
     for d in out["draws"]:
         print(f"  {d['minute']:5.1f} min  blood gas (result at {d['ready_at']:.1f} min): PaO2 {d['pao2']:.0f} mmHg, "
-              f"PaCO2 {d['paco2']:.1f} mmHg, pH {d['ph']:.2f}, SaO2 {d['sao2']:.2f}")
+              f"PaCO2 {d['paco2']:.1f} mmHg, pH {d['ph']:.2f}, SaO2 {sao2_text(d['sao2'])}")
     c = out["course"]
     print(f"  end: PaO2 {c['pao2_mmhg'][-1]:.0f} mmHg, PaCO2 {c['paco2_mmhg'][-1]:.1f} mmHg, pH {c['ph'][-1]:.2f}")
     print(f"Score: {out['score']['met']} of {out['score']['of']}")

@@ -19,6 +19,7 @@ from pathlib import Path
 from . import CAUTION, version
 from .casefile import write_atomic
 from .engine import PARAMETER_LABELS, RECHECK_NOTE, settings_text
+from .precision import sao2_text
 
 #: Course columns of the CSV export: (key in the forecast's course, header with its unit).
 COURSE_COLUMNS = (("minutes", "minutes [min]"), ("pao2_mmhg", "PaO2 [mmHg]"), ("pao2_low", "PaO2 likely low [mmHg]"),
@@ -143,11 +144,12 @@ def report_html(case: dict, forecasts: dict, plan: dict | None = None, generated
          f"{first['now']['pbw_kg']:.1f} kg, temperature {p['temperature_c']:g} &deg;C, Hb {p['hb_g_dl']:g} g/dL.<br>"
          f"Settings: {escape(settings_text(case['settings']))}.</p>",
          "<h2>Observations</h2><table border='1' cellspacing='0' cellpadding='3'><tr>"
-         + "".join(f"<th>{escape(hd)}</th>" for _k, hd in OBSERVATION_COLUMNS[:7]) + "</tr>"]
+         + "".join(f"<th>{escape(hd.replace('[fraction]', '[%]'))}</th>" for _k, hd in OBSERVATION_COLUMNS[:7])
+         + "</tr>"]
     for o in case["observations"]:
         s = o.get("settings") or case["settings"]
         cells = [o["taken_at"], f"{s['fio2']:.2f}", f"{s['peep_cmh2o']:g}", f"{o['pao2_mmhg']:g}", f"{o['paco2_mmhg']:g}",
-                 f"{o['ph']:.2f}", "-" if o.get("sao2") is None else f"{o['sao2']:.2f}"]
+                 f"{o['ph']:.2f}", sao2_text(o.get("sao2")).replace(" %", "")]
         h.append("<tr>" + "".join(f"<td>{escape(c)}</td>" for c in cells) + "</tr>")
     h.append("</table>")
     fit = first["fit"]
@@ -172,16 +174,21 @@ def report_html(case: dict, forecasts: dict, plan: dict | None = None, generated
     h.append("<tr><td>settings</td><td>" + escape(settings_text(case["settings"])) + "</td>"
              + "".join(f"<td>{escape(settings_text(f['settings']))}</td>" for f in forecasts.values()) + "</tr>")
     for label, key, d in (("PaO2 [mmHg]", "pao2_mmhg", 0), ("PaCO2 [mmHg]", "paco2_mmhg", 1), ("pH", "ph", 2),
-                          ("SaO2", "sao2", 3), ("VD/VT", "vd_vt", 2), ("Pplat [cmH2O]", "pplat_cmh2o", 1),
+                          ("SaO2 [%]", "sao2", 0), ("VD/VT", "vd_vt", 2), ("Pplat [cmH2O]", "pplat_cmh2o", 1),
                           ("driving pressure, Pplat - total PEEP [cmH2O]", "driving_pressure_cmh2o", 1),
                           ("mechanical power [J/min]", "mechanical_power_j_min", 1),
                           ("VT [mL/kg PBW]", "vt_ml_per_kg_pbw", 1), ("cardiac output [L/min]", "cardiac_output_l_min", 1)):
+        k = 100.0 if key == "sao2" else 1.0  # SaO2 in whole per cent (app.precision)
+
+        def scaled(x):
+            return None if x is None else k * x
+
         now = first.get("now_steady", {}).get(key)
-        cells = [_f(now, d)]
+        cells = [_f(scaled(now), d)]
         for f in forecasts.values():
             v = f["steady"].get(key)
             rng = f["likely_range"].get(key)
-            cells.append(_f(v, d) + (f" ({rng[0]:.{d}f} to {rng[1]:.{d}f})" if rng else ""))
+            cells.append(_f(scaled(v), d) + (f" ({k * rng[0]:.{d}f} to {k * rng[1]:.{d}f})" if rng else ""))
         h.append(f"<tr><td>{escape(label)}</td>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
     h.append("</table>")
     for t, f in forecasts.items():

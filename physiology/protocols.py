@@ -95,7 +95,7 @@ BERLIN_PF_BANDS = (("severe", 100.0), ("moderate", 200.0), ("mild", 300.0))
 
 #: Readiness for a spontaneous breathing trial [5], [6]: (key, description, threshold, source).
 READINESS_CRITERIA = (
-    ("fio2", "FiO2 at most 0.4 with SaO2 above 0.90", 0.4, "Boles 2007 Table 5"),
+    ("fio2", "FiO2 at most 0.4 with SaO2 above 90 %", 0.4, "Boles 2007 Table 5"),
     ("peep", "PEEP at most 8 cmH2O", 8.0, "Boles 2007 Table 5"),
     ("pf_ratio", "P/F at least 150 mmHg", 150.0, "Boles 2007 Table 5; MacIntyre 2001"),
     ("rr", "Rate at most 35/min", 35.0, "Boles 2007 Table 5"),

@@ -215,8 +215,8 @@ def check_observation(obs: Observation, patient: Patient) -> list[str]:
     if obs.sao2 is not None:
         expected = float(saturation(obs.pao2, obs.ph, obs.paco2, patient.temperature_c))
         if abs(expected - obs.sao2) > SAO2_MISMATCH:
-            warnings.append(f"SaO2 {obs.sao2:.2f} is inconsistent with PaO2 {obs.pao2:g} mmHg on the dissociation "
-                            f"curve (expected {expected:.2f}); check for carboxy- or methaemoglobin or a "
+            warnings.append(f"SaO2 {100 * obs.sao2:.0f} % is inconsistent with PaO2 {obs.pao2:g} mmHg on the "
+                            f"dissociation curve (expected {100 * expected:.0f} %); check for carboxy- or methaemoglobin or a "
                             f"pulse-oximetry value")
     return warnings
 

@@ -99,7 +99,7 @@ def _ranges(q: dict) -> dict:
 def _stop_rule(goals: Goals) -> str:
     parts = []
     if goals.spo2 is not None:
-        parts.append(f"SpO2 falls below {goals.spo2[0]:.2f}")
+        parts.append(f"SpO2 falls below {100 * goals.spo2[0]:.0f} %")
     elif goals.pao2_mmhg is not None:
         parts.append(f"PaO2 falls below {goals.pao2_mmhg[0]:g} mmHg")
     if goals.ph is not None:
@@ -238,17 +238,23 @@ def _hold(course) -> tuple:
     return HOLD_FLOOR_MIN, f"model 90 % time {model:.1f} min; {HOLD_FLOOR_SOURCE}"
 
 
+#: The precision each readiness value is shown and judged at (clinical precision: FiO2 0.01, PEEP 0.1
+#: cmH2O, P/F whole mmHg, rate whole, pH 0.01, RSBI whole; common practice).
+READINESS_DECIMALS = {"fio2": 2, "peep": 1, "pf_ratio": 0, "rr": 0, "ph": 2, "rsbi": 0}
+
+
 def readiness(pred: Prediction, settings, spontaneous_rr=None, spontaneous_vt_ml=None) -> list:
     """Readiness criteria for a spontaneous breathing trial at a forecast (criteria and sources are data
     in :data:`physiology.protocols.READINESS_CRITERIA`). RSBI only when spontaneous rate and VT are given."""
     g = pred.gas
-    values = {"fio2": (float(settings.fio2), float(settings.fio2) <= 0.4 + 1e-9 and float(g.sao2) > 0.90),
-              "peep": (float(settings.peep), float(settings.peep) <= 8.0 + 1e-9),
-              "pf_ratio": (float(g.pf_ratio), float(g.pf_ratio) >= 150.0),
-              "rr": (float(settings.rr), float(settings.rr) <= 35.0),
-              "ph": (float(g.ph), float(g.ph) >= 7.25)}
+    # Each value at the precision it is shown with, and judged as shown (never "7.25" beside "not met").
+    d = READINESS_DECIMALS
+    fio2, peep, pf = round(float(settings.fio2), d["fio2"]), round(float(settings.peep), d["peep"]), round(float(g.pf_ratio), d["pf_ratio"])
+    rr, ph, sao2 = round(float(settings.rr), d["rr"]), round(float(g.ph), d["ph"]), round(float(g.sao2), 2)
+    values = {"fio2": (fio2, fio2 <= 0.4 and sao2 > 0.90), "peep": (peep, peep <= 8.0), "pf_ratio": (pf, pf >= 150.0),
+              "rr": (rr, rr <= 35.0), "ph": (ph, ph >= 7.25)}
     if spontaneous_rr is not None and spontaneous_vt_ml:
-        rsbi = float(spontaneous_rr) / (float(spontaneous_vt_ml) / 1000.0)
+        rsbi = round(float(spontaneous_rr) / (float(spontaneous_vt_ml) / 1000.0), d["rsbi"])
         values["rsbi"] = (rsbi, rsbi < RSBI_THRESHOLD)
     out = []
     for key, text, _threshold, source in READINESS_CRITERIA:
@@ -257,5 +263,5 @@ def readiness(pred: Prediction, settings, spontaneous_rr=None, spontaneous_vt_ml
                         "note": "enter the spontaneous rate and VT to compute it"})
             continue
         v, met = values[key]
-        out.append({"criterion": text, "value": round(v, 3), "met": bool(met), "source": source})
+        out.append({"criterion": text, "value": v, "met": bool(met), "source": source})
     return out
