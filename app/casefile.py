@@ -42,6 +42,25 @@ SETTING_RANGES = {
     "inspiratory_pressure_cmh2o": (1.0, 50.0, "cmH2O"),
     "apparatus_dead_space_ml": (0.0, 300.0, "mL"),
 }
+#: Settings in the words on screen: (name, unit with its leading space).
+SETTING_WORDS = {"mode": ("mode", ""), "fio2": ("FiO2", ""), "peep_cmh2o": ("PEEP", " cmH2O"), "vt_ml": ("VT", " mL"),
+                 "rr_per_min": ("RR", "/min"), "inspiratory_time_s": ("Ti", " s"),
+                 "inspiratory_pressure_cmh2o": ("inspiratory pressure", " cmH2O"),
+                 "apparatus_dead_space_ml": ("apparatus dead space", " mL")}
+
+
+def setting_words(key: str, value=None, relation: str = "") -> str:
+    """A setting (and its value) in the words on screen: ``('inspiratory_time_s', 0.8)`` -> 'Ti 0.8 s';
+    with ``relation='at most'``: 'Ti at most 0.8 s'."""
+    name, unit = SETTING_WORDS.get(key, (key.replace("_", " "), ""))
+    if value is None:
+        return name
+    name = f"{name} {relation}" if relation else name
+    if isinstance(value, str):
+        return f"{name} {value}"
+    return f"{name} {value:.2f}" if key == "fio2" else f"{name} {float(value):g}{unit}"
+
+
 OBSERVATION_RANGES = {
     "pao2_mmhg": (20.0, 700.0, "mmHg"),
     "paco2_mmhg": (10.0, 150.0, "mmHg"),

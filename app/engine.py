@@ -13,6 +13,8 @@ from collections import OrderedDict
 
 import numpy as np
 
+from ventcast.physiology.bloodgas.acidbase import ph_invivo
+from ventcast.physiology.bloodgas.oxygen import saturation
 from ventcast.physiology.dynamics.course import simulate
 from ventcast.physiology.fitting.fit import (Observation, Patient, fit, likely_range, measured_at, sample_posterior,
                                              model_error_factors, next_best_measurement)
@@ -29,6 +31,7 @@ from ventcast.physiology.protocols import LIMITS
 from . import CAUTION
 from .bedside import bedside_indices
 from .casefile import CaseError, check_settings
+from .precision import decimals_for, sao2_text
 
 SETTING_KEYS = ("mode", "fio2", "peep_cmh2o", "vt_ml", "inspiratory_pressure_cmh2o", "rr_per_min",
                 "inspiratory_time_s", "apparatus_dead_space_ml")
@@ -283,10 +286,11 @@ MARGIN_LABELS = {"spo2": ("SpO2", "", 3), "pao2_mmhg": ("PaO2", "mmHg", 0), "pac
 
 #: The clinical precision of each quantity a limit checks (decimals): the check is made on the value as it
 #: is shown, so a pH shown as 7.30 is never "below 7.30" (common practice: PaO2 in whole mmHg, PaCO2 to 0.1,
-#: pH to 0.01, SaO2 to 0.001, pressures and VT per kg to 0.1, mechanical power to 0.1 J/min).
-CLINICAL_DECIMALS = {"pao2_mmhg": 0, "paco2_mmhg": 1, "ph": 2, "sao2": 3, "pplat_cmh2o": 1,
-                     "driving_pressure_cmh2o": 1, "vt_ml_per_kg_pbw": 1, "intrinsic_peep_cmh2o": 1,
-                     "mechanical_power_j_min": 1}
+#: pH to 0.01, SaO2 to 0.01 (whole %), pressures and VT per kg to 0.1, mechanical power to 0.1 J/min;
+#: the one rule of :mod:`app.precision`).
+CLINICAL_DECIMALS = {k: decimals_for(k) for k in ("pao2_mmhg", "paco2_mmhg", "ph", "sao2", "pplat_cmh2o",
+                                                 "driving_pressure_cmh2o", "vt_ml_per_kg_pbw", "intrinsic_peep_cmh2o",
+                                                 "mechanical_power_j_min")}
 
 #: Pressure control: below this share of the equilibrium volume within Ti, the Limits say so
 #: (1 - e^-3 = 0.95, three time constants; common practice).
@@ -322,10 +326,10 @@ def limit_checks(steady: dict, goals: dict | None = None, fio2: float | None = N
     fio2_max = min(goals.get("fio2_max", 1.0), LIMITS["fio2"].high)
     x = v["pplat_cmh2o"]
     line("pplat", "Pplat", x, f"<= {pplat_max:g} cmH2O", x is not None and x > pplat_max, "pplat_high", "danger",
-         f"Pplat {x or 0:.0f} cmH2O is above {pplat_max:g} cmH2O", f"{x or 0:.1f} cmH2O")
+         f"Pplat {x or 0:.1f} cmH2O is above {pplat_max:g} cmH2O", f"{x or 0:.1f} cmH2O")
     x = v["driving_pressure_cmh2o"]
     line("driving_pressure", "Driving pressure", x, f"<= {dp_max:g} cmH2O", x is not None and x > dp_max,
-         "driving_pressure_high", "caution", f"driving pressure {x or 0:.0f} cmH2O (Pplat - total PEEP) is above {dp_max:g} cmH2O",
+         "driving_pressure_high", "caution", f"driving pressure {x or 0:.1f} cmH2O (Pplat - total PEEP) is above {dp_max:g} cmH2O",
          f"{x or 0:.1f} cmH2O")
     x = v["vt_ml_per_kg_pbw"]
     line("vt_per_kg", "VT", x, f"{vt_lo:g}-{vt_hi:g} mL/kg PBW", x is not None and not vt_lo <= x <= vt_hi,
@@ -347,15 +351,15 @@ def limit_checks(steady: dict, goals: dict | None = None, fio2: float | None = N
          f"{x or 0:.0f} mmHg")
     x = v["sao2"]
     low = x is not None and x < sp_lo
-    line("spo2", "SaO2 (for the SpO2 goal)", x, f"{sp_lo:.2f}-{sp_hi:.2f}", low or (x is not None and x > sp_hi),
+    line("spo2", "SaO2 (for the SpO2 goal)", x, f"{100 * sp_lo:.0f}-{100 * sp_hi:.0f} %", low or (x is not None and x > sp_hi),
          "sao2_low" if low else "sao2_above_goal", "caution" if low else "info",
-         f"SaO2 {x or 0:.2f} is below the {sp_lo:.2f} goal" if low else f"SaO2 {x or 0:.2f} is above the {sp_hi:.2f} goal",
-         f"{x or 0:.3f}")
+         f"SaO2 {sao2_text(x)} is below the {sao2_text(sp_lo)} goal" if low
+         else f"SaO2 {sao2_text(x)} is above the {sao2_text(sp_hi)} goal", sao2_text(x))
     if "paco2_mmhg" in goals:
         c_lo, c_hi = goals["paco2_mmhg"]
         x = v["paco2_mmhg"]
         line("goal set for this case", "PaCO2", x, f"{c_lo:g}-{c_hi:g} mmHg", x is not None and not c_lo <= x <= c_hi,
-             "paco2_outside", "caution", f"PaCO2 {x or 0:.0f} mmHg is outside the {c_lo:g}-{c_hi:g} mmHg goal",
+             "paco2_outside", "caution", f"PaCO2 {x or 0:.1f} mmHg is outside the {c_lo:g}-{c_hi:g} mmHg goal",
              f"{x or 0:.1f} mmHg")
     ipeep_max = goals.get("intrinsic_peep_max_cmh2o", LIMITS["intrinsic_peep"].high)
     x = v["intrinsic_peep_cmh2o"]
@@ -365,7 +369,7 @@ def limit_checks(steady: dict, goals: dict | None = None, fio2: float | None = N
     mp_max = goals.get("mechanical_power_max_j_min", LIMITS["mechanical_power"].high)
     x = v["mechanical_power_j_min"]
     line("mechanical_power", "Mechanical power", x, f"<= {mp_max:g} J/min", x is not None and x > mp_max,
-         "mechanical_power_high", "caution", f"mechanical power {x or 0:.0f} J/min is above {mp_max:g} J/min",
+         "mechanical_power_high", "caution", f"mechanical power {x or 0:.1f} J/min is above {mp_max:g} J/min",
          f"{x or 0:.1f} J/min")
     x = v.get("inspiratory_filling")
     if x is not None and x < FILLING_MIN:
@@ -488,23 +492,22 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
                 alerts.append({"code": "band_unavailable", "severity": "caution",
                                "message": "the likely range of the course could not be computed; the steady-state "
                                           "range above still holds"})
-            lo_o2 = hi_o2 = lo_co2 = hi_co2 = np.full(course.minutes.size, np.nan)
+            lo_o2 = hi_o2 = lo_co2 = hi_co2 = lo_sa = hi_sa = np.full(course.minutes.size, np.nan)
         else:
-            band_pao2, band_paco2, left_out = band
+            band_pao2, band_paco2, band_sao2, left_out = band
             lo_o2, hi_o2 = np.nanpercentile(band_pao2, [5, 95], axis=0)
             lo_co2, hi_co2 = np.nanpercentile(band_paco2, [5, 95], axis=0)
+            lo_sa, hi_sa = np.nanpercentile(band_sao2, [5, 95], axis=0)
             if left_out:
                 alerts.append({"code": "band_draws_left_out", "severity": "info",
                                "message": f"{left_out} of {left_out + band_pao2.shape[0]} parameter draws could not be "
                                           f"followed over time (close to an unsustainable state) and are left out of "
                                           f"the course's likely range"})
 
-        def r(a, d=2):
-            return [None if not math.isfinite(float(x)) else round(float(x), d) for x in a]
-
-        out["course"] = {"minutes": r(course.minutes, 3), "pao2_mmhg": r(course.pao2), "paco2_mmhg": r(course.paco2),
-                         "ph": r(course.ph, 4), "sao2": r(course.sao2, 4), "pao2_low": r(lo_o2), "pao2_high": r(hi_o2),
-                         "paco2_low": r(lo_co2), "paco2_high": r(hi_co2)}
+        out["course"] = course_block(course)
+        out["course"].update({"pao2_low": _listed(lo_o2), "pao2_high": _listed(hi_o2), "paco2_low": _listed(lo_co2),
+                              "paco2_high": _listed(hi_co2), "sao2_low": _listed(lo_sa, 4),
+                              "sao2_high": _listed(hi_sa, 4)})
         recheck = float(course.recheck_after_min)
         out["recheck_after_min"] = None if not math.isfinite(recheck) else round(max(recheck, 0.0), 1)
     if with_next:
@@ -520,6 +523,28 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
     return out
 
 
+def _listed(a, d=2) -> list:
+    """An array as a JSON list (None where it is not finite), rounded to ``d`` decimals."""
+    return [None if not math.isfinite(float(x)) else round(float(x), d) for x in a]
+
+
+def course_block(course) -> dict:
+    """A course (``physiology.dynamics.course.simulate`` of one patient) as JSON lists: minutes, PaO2,
+    PaCO2, pH, SaO2 and VD/VT at each output time."""
+    return {"minutes": _listed(course.minutes, 3), "pao2_mmhg": _listed(course.pao2),
+            "paco2_mmhg": _listed(course.paco2), "ph": _listed(course.ph, 4), "sao2": _listed(course.sao2, 4),
+            "vd_vt": _listed(course.vd_vt, 4)}
+
+
+def trial_course(case: dict, result, trial_dict: dict, minutes: float = 60.0) -> dict:
+    """The course (no likely range) from the current settings to checked trial settings, for drawing
+    trials side by side; :class:`ModelError` when it has no course."""
+    course = simulate(result.model, to_settings(case["settings"]), to_settings(trial_dict), minutes=minutes)
+    if not course.success:
+        raise ModelError(course.message)
+    return course_block(course)
+
+
 #: Parameter draws integrated together when computing a course's likely range.
 BAND_CHUNK = 25
 
@@ -527,7 +552,7 @@ BAND_CHUNK = 25
 def _band(result, current, trial, minutes, n=200):
     """Courses of up to ``n`` parameter draws that have a steady state at both settings, or None.
 
-    Returns ``(pao2, paco2, left_out)``: arrays (draws, time) and the number of draws whose course
+    Returns ``(pao2, paco2, sao2, left_out)``: arrays (draws, time) and the number of draws whose course
     could not be integrated (near the edge of a sustainable state); those are left out of the band,
     found by halving the batch, and the caller says how many. Each draw carries the model error of the
     steady-state likely range (:func:`with_course_model_error`), so the band ends where the range does
@@ -546,12 +571,21 @@ def _band(result, current, trial, minutes, n=200):
     if kept < 50:
         return None
     pao2, paco2 = np.vstack([p[1] for p in parts]), np.vstack([p[2] for p in parts])
+    where = np.concatenate([p[0] for p in parts])
     if not measured_at(result, trial):
-        where = np.concatenate([p[0] for p in parts])
         factors = model_error_factors(int(np.atleast_1d(draws.shunt_fixed).size))
         pao2 = with_course_model_error(pao2, factors["pao2"][where])
         paco2 = with_course_model_error(paco2, factors["paco2"][where])
-    return pao2, paco2, int(idx.size - kept)
+    # SaO2 of each draw as the steady-state range has it (fit.with_model_error): its PaO2 on the
+    # dissociation curve at the pH of its PaCO2 and base excess (in-vivo curve) and its temperature.
+    b = int(np.atleast_1d(draws.shunt_fixed).size)
+    sbe = np.broadcast_to(np.asarray(draws.base_excess, dtype=float), (b,))[where][:, None]
+    temp = np.broadcast_to(np.asarray(draws.temperature, dtype=float), (b,))[where][:, None]
+    sao2 = np.full_like(pao2, np.nan)
+    ok = np.isfinite(pao2) & np.isfinite(paco2)
+    sbe, temp = np.broadcast_to(sbe, pao2.shape)[ok], np.broadcast_to(temp, pao2.shape)[ok]
+    sao2[ok] = saturation(np.clip(pao2[ok], 1.0, None), ph_invivo(paco2[ok], sbe), paco2[ok], temp)
+    return pao2, paco2, sao2, int(idx.size - kept)
 
 
 def with_course_model_error(values, factors):
@@ -631,6 +665,10 @@ def ie_text(i_to_e: float) -> str:
     return f"I:E 1:{1.0 / i_to_e:.1f}"
 
 
+#: The largest FiO2 drop an option proposes without saying to get there in steps (common practice).
+FIO2_STEP_MAX = 0.10
+
+
 def plan_case(case: dict, result=None, required_probability: float = 0.9, progress=None) -> dict:
     """Options that meet the case's goals: the ``plan`` JSON of the README."""
     if result is None:
@@ -647,6 +685,10 @@ def plan_case(case: dict, result=None, required_probability: float = 0.9, progre
         i_to_e = ti / max(breath - ti, 1e-9)
         # The same cautions the Limits would show for this option (a limit the search only ranks is said so).
         cautions = [ie_text(i_to_e)] if i_to_e > 1.0 else []
+        drop = float(now.fio2) - float(c.settings.fio2)
+        if drop > FIO2_STEP_MAX + 1e-9:
+            cautions.append(f"\u26a0 FiO2 {float(now.fio2):.2f} -> {float(c.settings.fio2):.2f} is a large drop: lower it "
+                            f"in steps of at most {FIO2_STEP_MAX:.2f} and check SpO2 after each (common practice)")
         mp, mp_max = steady["mechanical_power_j_min"], (case.get("goals") or {}).get("mechanical_power_max_j_min")
         if mp_max is None and mp is not None and mp > LIMITS["mechanical_power"].high:
             cautions.append(f"\u26a0 mechanical power {mp:.1f} J/min, above {LIMITS['mechanical_power'].high:g} "

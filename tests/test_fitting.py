@@ -88,7 +88,7 @@ def test_warns_on_petco2_above_paco2_and_sao2_mismatch():
     odd = Observation(settings=o.settings, pao2=o.pao2, paco2=o.paco2, ph=o.ph, petco2=o.paco2 + 8, sao2=0.70)
     f = fit(PT, [odd])
     assert any("PetCO2" in w and "above PaCO2" in w for w in f.warnings)
-    assert any("SaO2 0.70 is inconsistent" in w for w in f.warnings)
+    assert any("SaO2 70 % is inconsistent" in w for w in f.warnings)
 
 
 def test_needs_an_observation():

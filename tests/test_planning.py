@@ -237,3 +237,28 @@ def test_a_table_plan_off_the_table_says_so_and_what_the_table_asks_for():
     assert "not on the higher-peep table" in res.stopped_because and "PEEP 20 cmH2O" in res.stopped_because
     res = step_down(model, model, vc(0.5, 16), GOALS, table="higher-peep")  # a rung: the plan proceeds
     assert res.steps and "not on the" not in (res.stopped_because or "")
+
+
+def test_inspiratory_time_is_searched_when_intrinsic_peep_binds():
+    """Issue 17: when gas trapping excludes breaths, the search tries shorter inspiratory times (longer
+    expiration). An obstructive patient (airway resistance 40 cmH2O/L/s, the true model as its own
+    draw) at Ti 1.4 s, RR 20: options shorten Ti, keep intrinsic PEEP within its limit, and a shorter Ti
+    gives less trapping than the same breath at Ti 1.4 s (expiratory time sets trapping: Pepe & Marini
+    1982, from memory). A patient without trapping keeps its Ti."""
+    from dataclasses import replace
+
+    obstructive = _truth(dict(TRUE, resistance=40.0, shunt_fixed=0.08, recruitable=0.02))
+    now = replace(vc(0.5, 5, 450, 20), ti=1.4)
+    goals = Goals(paco2_mmhg=(35.0, 70.0), ph=(7.25, 7.45))
+    assert float(predict(obstructive, now).breathing.intrinsic_peep) > goals.intrinsic_peep_max_cmh2o
+    res = search(obstructive, obstructive, now, goals, PT.pbw_kg)
+    assert res.success and res.options
+    shorter = [o for o in res.options if float(o.settings.ti) < 1.4]
+    assert shorter, [o.changes for o in res.options]
+    for o in shorter:
+        assert any(c.startswith("Ti 1.4 -> ") for c in o.changes)
+        peepi = float(predict(obstructive, o.settings).breathing.intrinsic_peep)
+        at_old_ti = float(predict(obstructive, replace(o.settings, ti=1.4)).breathing.intrinsic_peep)
+        assert peepi <= goals.intrinsic_peep_max_cmh2o + 1e-6 and peepi < at_old_ti
+    unchanged = search(_truth(), _truth(), vc(0.6, 10), GOALS, PT.pbw_kg)
+    assert all(float(o.settings.ti) == 0.9 for o in unchanged.options)

@@ -100,7 +100,7 @@ def test_actions_file_drives_a_headless_run(tmp_path, capsys):
     assert main(["walkthrough", "hypoxaemia-needs-peep", "--headless", "--until", "30", "--actions", str(actions),
                  "--format", "json"]) == 0
     out = json.loads(capsys.readouterr().out)
-    assert [a["changed"] for a in out["actions"]] == [["peep_cmh2o=12"]]
+    assert [a["changed"] for a in out["actions"]] == [["PEEP 12 cmH2O"]]
     assert [d["minute"] for d in out["draws"]] == [7.0]
     assert [e["source"] for e in out["events"]] == ["script", "instructor"]
     assert out["score"]["met"] == 2
@@ -176,3 +176,14 @@ def test_bronchospasm_moves_blood_flow_to_low_vq_units_and_the_gases():
     assert float(before.gas.pao2 - spasm.gas.pao2) > sd_o2
     assert float(spasm.gas.paco2) > float(before.gas.paco2)
     assert float(spasm.shunt) < 0.06
+
+
+def test_score_and_timeline_speak_the_words_on_screen(capsys):
+    """Issue 17: text meant for people never shows internal keys ("inspiratory_time_s at most 0.8",
+    "event resistance_up 1.3")."""
+    import re
+
+    assert main(["walkthrough", "hypercapnia-gas-trapping", "--headless"]) == 0
+    text = capsys.readouterr().out
+    assert "Ti at most 0.8 s by minute 15" in text and "airway resistance rises to 130 %" in text
+    assert not re.search(r"\b[a-z0-9]+_[a-z0-9_]+\b", text), re.findall(r"\b[a-z0-9]+_[a-z0-9_]+\b", text)

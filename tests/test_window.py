@@ -195,7 +195,7 @@ def test_measured_and_model_side_by_side(window, qtbot, qapp):
     notes on the Bedside panel."""
     rows = [r[1] for r in window.trial_panel.COMPARE_ROWS]
     headers = [window.compare.horizontalHeaderItem(c).text() for c in range(window.compare.columnCount())]
-    assert headers[:2] == ["measured", "model now (\u0394)"]
+    assert headers[:2] == ["measured", "now (\u0394)"]
     obs = window.state.case["observations"][-1]
     model = steady_block(window.now_prediction)
     pao2 = rows.index("pao2_mmhg")
@@ -209,23 +209,71 @@ def test_measured_and_model_side_by_side(window, qtbot, qapp):
     case["observations"][-1]["sao2"] = 0.80  # does not match PaO2 68 on the dissociation curve
     w = win.MainWindow(case, synchronous=True)
     try:
-        assert w.bedside.notes.isVisibleTo(w) and "SaO2 0.80 is inconsistent" in w.bedside.notes.text()
+        assert w.bedside.notes.isVisibleTo(w) and "SaO2 80 % is inconsistent" in w.bedside.notes.text()
     finally:
         _close(w, qapp)
 
 
 def test_goal_bands_on_the_charts(window, qtbot):
     """Issue 17: each gas chart shows its goal as a band (PaO2 55-80 mmHg, or SpO2 0.88-0.95 in the SaO2
-    view; pH 7.30-7.45: ARDS Network 2000), in the window's unit."""
+    view, in %; pH 7.30-7.45: ARDS Network 2000), in the window's unit."""
     bands = window.outlook.goal_bands
     assert bands["oxygen"].isVisible() and bands["oxygen"].getRegion() == pytest.approx((55, 80))
     assert bands["ph"].getRegion() == pytest.approx((7.30, 7.45))
     window.sao2_action.setChecked(True)
-    assert bands["oxygen"].getRegion() == pytest.approx((0.88, 0.95))
+    assert bands["oxygen"].getRegion() == pytest.approx((88, 95))
     window.sao2_action.setChecked(False)
     window.kpa_action.setChecked(True)
     assert bands["oxygen"].getRegion() == pytest.approx((55 / win.MMHG_PER_KPA, 80 / win.MMHG_PER_KPA))
     window.kpa_action.setChecked(False)
+
+
+def test_trials_are_drawn_together_each_in_its_own_style(window, qtbot):
+    """Issue 17: Trials A, B and C on the Outlook together, one colour and line style per trial, the one
+    being edited thicker with its band, and a key above the charts (outside every plot area). Each
+    curve is the engine's course for that trial's settings, computed here independently."""
+    from ventcast.app.engine import simulate
+    from ventcast.app.window.outlook import TRIAL_STYLE
+
+    _change(qtbot, window, "peep_cmh2o", 14)
+    window.trial_tabs.setCurrentIndex(1)  # Trial B: a new trial from the current settings
+    out = _change(qtbot, window, "fio2", 0.8)
+    assert out["active"] == "B" and isinstance(out["others"]["A"], dict)
+    chart = window.charts["oxygen"]
+    current = to_settings(window.state.case["settings"])
+    for t in ("A", "B"):
+        course = simulate(window.fit_result.model, current, to_settings(window.state.trials[t]), minutes=60.0)
+        _x, y = chart.lines[t].getData()
+        assert np.allclose(y, course.pao2, atol=0.01)
+        assert chart.lines[t].opts["pen"].style() == TRIAL_STYLE[t][1]
+    assert chart.lines["B"].opts["pen"].widthF() > chart.lines["A"].opts["pen"].widthF()
+    assert chart.lines["C"].getData()[0] is None or len(chart.lines["C"].getData()[0]) == 0
+    # Pplat per trial: PEEP 14 (Trial A) above PEEP 10 (Trial B) in volume control.
+    assert window.charts["pplat"].lines["A"].getData()[1][0] > window.charts["pplat"].lines["B"].getData()[1][0]
+    key = window.outlook.key.text()
+    assert "Trial A" in key and "<b>Trial B (editing" in key and "Trial C" not in key
+    assert not window.outlook.graphics.geometry().intersects(window.outlook.key.geometry())
+
+
+def test_spo2_view_in_percent_with_its_likely_range(window, qtbot):
+    """Issue 17: the oxygen chart's SpO2 view is in % with the likely range as a band; the band's end
+    agrees with the steady-state likely range of SaO2 (fit.likely_range, an independent computation
+    over the same posterior draws) within 1 %."""
+    from ventcast.physiology.fitting.fit import likely_range
+
+    with qtbot.waitSignal(window.band_shown, timeout=WAIT_MS):
+        window.set_trial_value("fio2", 0.45)
+    window.sao2_action.setChecked(True)
+    chart = window.charts["oxygen"]
+    assert chart.band.isVisible()
+    _x, low = chart.low.getData()
+    _x, high = chart.high.getData()
+    _x, y = chart.trial.getData()
+    assert np.all(low <= high) and np.all((low > 50) & (high <= 100))
+    ranges, _t, _ok = likely_range(window.fit_result, to_settings(window.state.trials["A"]))
+    assert low[-1] == pytest.approx(100 * ranges["sao2"][0], abs=1.0)
+    assert high[-1] == pytest.approx(100 * ranges["sao2"][1], abs=1.0)
+    window.sao2_action.setChecked(False)
 
 
 def test_hover_reads_out_the_trial_curve(window, qtbot):
@@ -235,7 +283,7 @@ def test_hover_reads_out_the_trial_curve(window, qtbot):
     scene_pos = chart.plot.getViewBox().mapViewToScene(QtCore.QPointF(float(x[i]), float(y[i])))
     chart._moved(scene_pos)
     assert chart.hover.isVisible()
-    assert chart.hover.toPlainText() == f"{x[i]:.1f} min: {y[i]:.3g}"
+    assert chart.hover.toPlainText() == f"Trial A, {x[i]:.1f} min: {y[i]:.3g}"
 
 
 def test_units_switch_to_kpa(window, qtbot):
@@ -246,7 +294,8 @@ def test_units_switch_to_kpa(window, qtbot):
     assert np.allclose(y * win.MMHG_PER_KPA, window.last_forecast["course"]["pao2_mmhg"], atol=0.02)
     window.sao2_action.setChecked(True)
     _x, y = window.charts["oxygen"].trial.getData()
-    assert np.all((y > 0.5) & (y <= 1.0))
+    assert np.all((y > 50) & (y <= 100))  # SpO2 in %
+    assert "[%]" in window.plots["oxygen"].getAxis("left").labelText
     window.kpa_action.setChecked(False)
     window.sao2_action.setChecked(False)
 
@@ -423,7 +472,7 @@ def test_options_panel_finds_settings_and_tries_one(window, qtbot):
     out = blocker.args[0]
     assert window.options_table.rowCount() == len(out["options"]) > 0
     assert window.options_table.item(0, 0).text().endswith("%")
-    assert "Oxygenation goal: PaO2 55 mmHg\u201380 mmHg or SpO2 0.88\u20130.95" in window.options_message.text()
+    assert "Oxygenation goal: PaO2 55\u201380 mmHg or SpO2 88\u201395 %" in window.options_message.text()
     assert "either one" in window.options_message.text()
     assert not window.progress.isVisible()
     with qtbot.waitSignal(window.forecast_shown, timeout=WAIT_MS):
@@ -482,7 +531,7 @@ def test_exports_report_csv_and_charts(window, qtbot, tmp_path):
     text = " ".join(" ".join(p.extract_text().split()) for p in pypdf.PdfReader(str(tmp_path / "r.pdf")).pages)
     assert "not a medical device" in text and "PEEP 12 cmH2O" in text
     files = window.export_charts(str(tmp_path / "charts"))
-    assert len(files) == 10 and all(Path(f).stat().st_size > 1000 for f in files)
+    assert len(files) == 12 and all(Path(f).stat().st_size > 1000 for f in files)  # six charts, PNG and SVG
     assert (tmp_path / "charts" / "outlook-oxygen.svg").read_text().lstrip().startswith("<?xml")
 
 
@@ -533,7 +582,8 @@ def test_walkthrough_mode_start_inject_draw_finish_export(qtbot, qapp, tmp_path)
     qtbot.wait(300)
     assert w.minute == paused_at
     w.advance(5.0)  # jump past the scripted event at minute 4
-    assert any("event: lung_collapse" in w.log.item(i).text() for i in range(w.log.count()))
+    assert any("event: " in w.log.item(i).text() and "of the lung collapses" in w.log.item(i).text()
+               for i in range(w.log.count()))
     with qtbot.waitSignal(w.course_ready, timeout=WAIT_MS):
         w.inject("metabolism_up", 1.2)
     w.draw()
@@ -549,7 +599,7 @@ def test_walkthrough_mode_start_inject_draw_finish_export(qtbot, qapp, tmp_path)
     assert x[-1] == pytest.approx(w.minute, abs=0.25)
     files = w.export_debrief(str(tmp_path))
     assert {Path(f).name for f in files} == {"debrief-timeline.csv", "debrief-course.csv", "debrief.pdf"}
-    assert "lung_collapse" in (tmp_path / "debrief-timeline.csv").read_text()
+    assert "25 % of the lung collapses" in (tmp_path / "debrief-timeline.csv").read_text()
     w.close()
     w.deleteLater()
     QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
@@ -771,6 +821,15 @@ def test_window_fits_1280_by_800_and_a_smaller_screenshot_is_refused(qtbot, qapp
         caution = w.caution_label.mapTo(w, QtCore.QPoint(0, 0))
         assert w.caution_label.isVisible() and caution.y() + w.caution_label.height() <= 800 - w.statusBar().height()
         assert w.statusBar().isVisible() and w.statusBar().mapTo(w, QtCore.QPoint(0, 0)).y() < 800
+        # Item 8: nothing cut off sideways. Every past-observation column is inside the table, and the
+        # right-hand panels need no sideways scrolling (the step-down form wraps under its labels).
+        h = w.history
+        assert sum(h.columnWidth(c) for c in range(h.columnCount())) <= h.viewport().width()
+        for i in range(w.right_tabs.count()):
+            area = w.right_tabs.widget(i)
+            assert area.widget().minimumSizeHint().width() <= area.viewport().width(), w.right_tabs.tabText(i)
+        # Narrow: the trial panel drops its sliders (the spin boxes stay) to give the comparison room.
+        assert not any(s.isVisible() for s in w.sliders.values()) and w.spins["fio2"].isVisible()
     finally:
         _close(w, qapp)
     from ventcast.app.cli import main

@@ -8,6 +8,7 @@ from html import escape
 from PySide6 import QtCore, QtWidgets
 
 from ..engine import now_block, settings_text
+from ..precision import sao2_text
 from .common import gas_text
 
 
@@ -48,7 +49,9 @@ class BedsidePanel(QtWidgets.QGroupBox):
         self.notes.setTextFormat(QtCore.Qt.PlainText)
         self.notes.hide()
         lay.addWidget(self.notes)
-        lay.addWidget(QtWidgets.QLabel("Past observations"))
+        self.history_title = QtWidgets.QLabel("Past observations")
+        self.history_title.setWordWrap(True)
+        lay.addWidget(self.history_title)
         self.history = QtWidgets.QTableWidget(0, 5)
         self.history.setHorizontalHeaderLabels(["taken", "FiO2", "PEEP", "PaO2", "PaCO2"])
         self.history.verticalHeader().hide()
@@ -66,7 +69,7 @@ class BedsidePanel(QtWidgets.QGroupBox):
         v["pao2"].setText(gas_text(obs["pao2_mmhg"], units))
         v["paco2"].setText(gas_text(obs["paco2_mmhg"], units, 1))
         v["ph"].setText(f"{obs['ph']:.2f}")
-        v["sao2"].setText("-" if obs.get("sao2") is None else f"{obs['sao2']:.2f}")
+        v["sao2"].setText(sao2_text(obs.get("sao2")))
         v["settings"].setText(settings_text(obs["settings"]))
         for key, (d, unit) in self.FORMAT.items():
             x = idx.get(key)
@@ -78,12 +81,16 @@ class BedsidePanel(QtWidgets.QGroupBox):
         v["vd_vt"].setText("after the fit")
         rows = case["observations"]
         self.history.setRowCount(len(rows))
+        # The unit once, in the header: the values fit the narrow panel without being cut off.
+        u = "kPa" if units == "kPa" else "mmHg"
+        self.history_title.setText(f"Past observations (PEEP in cmH2O, gases in {u})")
         for i, o in enumerate(reversed(rows)):
             s = o["settings"]
-            for j, text in enumerate((o.get("taken_at", "")[5:16].replace("T", " "), f"{s['fio2']:.2f}",
-                                      f"{s['peep_cmh2o']:g}", gas_text(o["pao2_mmhg"], units),
-                                      gas_text(o["paco2_mmhg"], units, 1))):
+            for j, text in enumerate((o.get("taken_at", "")[5:16].replace("T", "\n"), f"{s['fio2']:.2f}",
+                                      f"{s['peep_cmh2o']:g}", gas_text(o["pao2_mmhg"], units).split()[0],
+                                      gas_text(o["paco2_mmhg"], units, 1).split()[0])):
                 self.history.setItem(i, j, QtWidgets.QTableWidgetItem(text))
+        self.history.resizeRowsToContents()
 
     def show_notes(self, warnings: list):
         """Data-quality notes of the fit (e.g. an SaO2 that does not match the PaO2), or none."""

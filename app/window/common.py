@@ -24,12 +24,22 @@ DEBOUNCE_MS = 50
 AUTOSAVE_MS = 30_000
 TRIALS = ("A", "B", "C")
 
-#: Okabe & Ito 2008 colour-blind-safe palette; one colour per quantity in every chart.
+#: Okabe & Ito 2008 colour-blind-safe palette.
 OKABE_ITO = {"black": "#000000", "orange": "#E69F00", "sky": "#56B4E9", "green": "#009E73",
              "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "purple": "#CC79A7"}
-COLOUR = {"pao2": OKABE_ITO["blue"], "sao2": OKABE_ITO["blue"], "paco2": OKABE_ITO["vermillion"],
-          "ph": OKABE_ITO["green"], "pplat": OKABE_ITO["purple"], "dp": OKABE_ITO["orange"],
-          "vd_vt": OKABE_ITO["sky"], "ventilation": OKABE_ITO["sky"], "perfusion": OKABE_ITO["vermillion"]}
+#: One colour per quantity where a chart shows quantities (the walkthrough's, the V/Q distribution).
+COLOUR = {"pao2": OKABE_ITO["blue"], "paco2": OKABE_ITO["vermillion"], "ventilation": OKABE_ITO["sky"],
+          "perfusion": OKABE_ITO["vermillion"]}
+#: One colour and line style per trial (never colour alone: the styles differ too), and the current
+#: settings in grey, dashed. The Okabe & Ito palette is colour-blind safe.
+TRIAL_STYLE = {"A": (OKABE_ITO["blue"], QtCore.Qt.SolidLine), "B": (OKABE_ITO["vermillion"], QtCore.Qt.DashDotLine),
+               "C": (OKABE_ITO["purple"], QtCore.Qt.DotLine)}
+#: The same in words (the trial tabs' tooltips).
+STYLE_NAME = {"A": "blue, solid", "B": "vermillion, dash-dot", "C": "purple, dotted"}
+NOW_STYLE = ("#5a5a5a", QtCore.Qt.DashLine)
+#: The key's drawing of each style, as text.
+STYLE_GLYPH = {QtCore.Qt.SolidLine: "\u2501\u2501", QtCore.Qt.DashDotLine: "\u2501\u00b7\u2501",
+               QtCore.Qt.DotLine: "\u00b7\u00b7\u00b7\u00b7", QtCore.Qt.DashLine: "\u2501 \u2501"}
 #: Symbols for Limits lines, so that status never rests on colour alone.
 STATUS_SYMBOL = {"ok": "\u2713 ok", "info": "i note", "caution": "\u26a0 caution", "danger": "\u2716 danger"}
 

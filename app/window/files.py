@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import copy
 import json
+import math
 import os
 from pathlib import Path
 
@@ -197,12 +198,23 @@ class CaseFiles:
         written = []
         for key, plot in self.plots.items():
             rect = plot.sceneBoundingRect()
-            size = rect.size().toSize()
+            # The Outlook's key (which line is which trial) above each chart: a chart alone is read too.
+            doc = QtGui.QTextDocument()
+            doc.setHtml(self.outlook.key.text())
+            doc.setTextWidth(rect.width())
+            top = int(math.ceil(doc.size().height())) if self.outlook.key.text() else 0
+            size = QtCore.QSize(int(rect.width()), int(rect.height()) + top)
+
+            def paint(device):
+                painter = QtGui.QPainter(device)
+                painter.fillRect(QtCore.QRectF(0, 0, size.width(), size.height()), QtGui.QColor("#ffffff"))
+                if top:
+                    doc.drawContents(painter)
+                plot.scene().render(painter, QtCore.QRectF(0, top, rect.width(), rect.height()), rect)
+                painter.end()
+
             image = QtGui.QImage(size, QtGui.QImage.Format_ARGB32)
-            image.fill(QtGui.QColor("#ffffff"))
-            painter = QtGui.QPainter(image)
-            plot.scene().render(painter, QtCore.QRectF(image.rect()), rect)
-            painter.end()
+            paint(image)
             png, svg = out / f"outlook-{key}.png", out / f"outlook-{key}.svg"
             data = QtCore.QByteArray()
             buffer = QtCore.QBuffer(data)
@@ -217,9 +229,7 @@ class CaseFiles:
             gen.setSize(size)
             gen.setViewBox(QtCore.QRect(0, 0, size.width(), size.height()))
             gen.setTitle(f"Ventcast Outlook: {key}")
-            painter = QtGui.QPainter(gen)
-            plot.scene().render(painter, QtCore.QRectF(0, 0, size.width(), size.height()), rect)
-            painter.end()
+            paint(gen)
             try:
                 write_atomic(png, bytes(data))
                 write_atomic(svg, bytes(svg_data))

@@ -15,7 +15,8 @@ import numpy as np
 from ventcast.physiology.forecast import predict
 
 from ..casefile import CaseError
-from ..engine import fit_case, forecast_fitted, limit_checks, sample_fit, steady_block, to_settings
+from ..engine import (ModelError, fit_case, forecast_fitted, limit_checks, sample_fit, steady_block, to_settings,
+                      trial_course)
 from .common import field_in_words
 
 
@@ -69,7 +70,8 @@ class ForecastPipeline:
             reasons[t] = p.message
         if compare[active] is None:
             raise ArithmeticError(f"Trial {active}: the model has no steady state at these settings ({reasons[active]})")
-        return {"active": active, "trial_settings": trials[active], "compare": compare, "steady": compare[active],
+        return {"active": active, "trial_settings": trials[active], "all_trials": trials, "compare": compare,
+                "steady": compare[active],
                 "limit_lines": limit_checks(compare[active], case.get("goals"), fio2=float(trials[active]["fio2"])),
                 "case": case}
 
@@ -79,10 +81,29 @@ class ForecastPipeline:
         def work():
             out = forecast_fitted(case, result, trial, with_band=False, with_next=False)
             out.update(active=steady["active"], trial_settings=trial, compare=steady["compare"],
-                       limit_lines=steady["limit_lines"])
+                       limit_lines=steady["limit_lines"],
+                       others=self._other_courses(case, result, steady["all_trials"], steady["active"],
+                                                  steady["compare"]))
             return out
 
         self.runner.submit("course", work)
+
+    @staticmethod
+    def _other_courses(case, result, trials, active, compare) -> dict:
+        """The course of every other trial (no likely range: that is drawn for the trial being edited),
+        or the reason it has none, so that the Outlook draws the trials side by side."""
+        others = {}
+        for t, s in trials.items():
+            if t == active:
+                continue
+            if compare.get(t) is None:
+                others[t] = "no steady state at its settings"
+                continue
+            try:
+                others[t] = trial_course(case, result, s)
+            except (ModelError, ArithmeticError) as exc:
+                others[t] = f"no course ({exc})"
+        return others
 
     def _request_band(self, forecast):
         case, result = copy.deepcopy(self.state.case), self.fit_result

@@ -249,9 +249,9 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
         self.limits_panel.fill(lines, self.units)
 
     def _draw_course(self, out, band=None):
-        pplat_max = (self.state.case.get("goals") or {}).get("pplat_max_cmh2o", 30)
-        self.outlook.draw(out, self.now_prediction, self.units, self.oxygen_view, pplat_max, band)
-        self.outlook.show_goals(case_goals(self.state.case).as_dict(), self.units, self.oxygen_view)
+        goals = case_goals(self.state.case).as_dict()
+        self.outlook.draw(out, self.now_prediction, self.units, self.oxygen_view, goals, band, out.get("others"))
+        self.outlook.show_goals(goals, self.units, self.oxygen_view)
 
     def _show_steady(self, out):
         self.trial_panel.clear_problem()

@@ -11,6 +11,7 @@ from html import escape
 from PySide6 import QtCore, QtWidgets
 
 from ..engine import ie_text
+from ..precision import sao2_text
 from .common import gas_text
 
 
@@ -50,7 +51,7 @@ class OptionsPanel(QtWidgets.QWidget):
                                         "the best 50 against the fit's parameter draws.")
         self.message.setWordWrap(True)
         lay.addWidget(self.message)
-        self.table = _table(["probability", "changes from now", "forecast"])
+        self.table = _table(["probability", "changes", "forecast"])
         self.table.setSelectionBehavior(QtWidgets.QAbstractItemView.SelectRows)
         self.table.cellDoubleClicked.connect(lambda row, _col: self.option_chosen.emit(row))
         lay.addWidget(self.table, 1)
@@ -62,17 +63,21 @@ class OptionsPanel(QtWidgets.QWidget):
         head = f"\u2713 {out['message']}" if out["met"] else f"\u26a0 {out['message']}"
         g = out["goals"]
         oxygen = " or ".join(part for part in (
-            None if g.get("pao2_mmhg") is None else f"PaO2 {gas_text(g['pao2_mmhg'][0], units)}\u2013{gas_text(g['pao2_mmhg'][1], units)}",
-            None if g.get("spo2") is None else f"SpO2 {g['spo2'][0]:.2f}\u2013{g['spo2'][1]:.2f} (the model's SaO2)") if part)
+            None if g.get("pao2_mmhg") is None else
+            f"PaO2 {gas_text(g['pao2_mmhg'][0], units).split()[0]}\u2013{gas_text(g['pao2_mmhg'][1], units)}",
+            None if g.get("spo2") is None else f"SpO2 {100 * g['spo2'][0]:.0f}\u2013{sao2_text(g['spo2'][1])} (the model's SaO2)")
+            if part)
         self.message.setText(f"{escape(head)}<br>Oxygenation goal: {escape(oxygen) or 'none'} (either one is met). "
                              f"Screened {out['screened']} settings. Double-click an option to try it in the current "
                              f"trial.")
         self.table.setRowCount(len(out["options"]))
         for i, o in enumerate(out["options"]):
             st = o["steady"]
-            forecast = (f"{gas_text(st['pao2_mmhg'], units)}, SaO2 {st['sao2']:.2f}, "
+            forecast = (f"{gas_text(st['pao2_mmhg'], units)}, SaO2 {sao2_text(st['sao2'])}, "
                         f"PaCO2 {gas_text(st['paco2_mmhg'], units, 1)}, pH {st['ph']:.2f}, "
-                        f"Pplat {st['pplat_cmh2o']:.0f}, \u0394P {st['driving_pressure_cmh2o']:.0f} cmH2O")
+                        f"Pplat {st['pplat_cmh2o']:.1f}, \u0394P {st['driving_pressure_cmh2o']:.1f}, "
+                        f"intrinsic PEEP {st['intrinsic_peep_cmh2o']:.1f} cmH2O, "
+                        f"mechanical power {st['mechanical_power_j_min']:.1f} J/min")
             changes = "\n".join(o["changes"] + [ie_text(o["i_to_e"])] + [c for c in o["cautions"] if not c.startswith("I:E")])
             for j, text in enumerate((f"{100 * o['probability_all_goals']:.0f} %", changes, forecast)):
                 self.table.setItem(i, j, QtWidgets.QTableWidgetItem(text))
@@ -90,8 +95,11 @@ class StepDownPanel(QtWidgets.QWidget):
         super().__init__(parent)
         lay = QtWidgets.QVBoxLayout(self)
         form = QtWidgets.QFormLayout()
+        form.setRowWrapPolicy(QtWidgets.QFormLayout.WrapLongRows)  # a narrow panel puts fields under labels
         self.table_choice = QtWidgets.QComboBox()
         self.table_choice.addItems(["model-driven", "ARDS Network lower-PEEP table", "ARDS Network higher-PEEP table"])
+        self.table_choice.setSizeAdjustPolicy(QtWidgets.QComboBox.AdjustToMinimumContentsLengthWithIcon)
+        self.table_choice.setMinimumContentsLength(14)
         form.addRow("Steps", self.table_choice)
         self.fio2 = self._spin(0.21, 1.0, 2, 0.05, 0.4, "")
         form.addRow("Target FiO2 at most", self.fio2)
@@ -109,6 +117,8 @@ class StepDownPanel(QtWidgets.QWidget):
         self.message.setWordWrap(True)
         lay.addWidget(self.message)
         self.steps = _table(["step", "forecast (likely range 90 %)", "hold"])
+        self.steps.horizontalHeaderItem(2).setToolTip("the shortest time to wait before the next step; hover a "
+                                                      "hold time for its basis")
         self.steps.setSelectionBehavior(QtWidgets.QAbstractItemView.SelectRows)
         self.steps.cellDoubleClicked.connect(lambda row, _col: self.step_chosen.emit(row))
         lay.addWidget(self.steps, 1)
@@ -143,12 +153,15 @@ class StepDownPanel(QtWidgets.QWidget):
         self.steps.setRowCount(len(out["steps"]))
         for i, st in enumerate(out["steps"]):
             v, r = st["steady"], st["likely_range"]
-            forecast = (f"SaO2 {v['sao2']:.3f} ({r['sao2'][0]:.3f}\u2013{r['sao2'][1]:.3f}), "
+            forecast = (f"SaO2 {sao2_text(v['sao2'])} ({100 * r['sao2'][0]:.0f}\u2013{sao2_text(r['sao2'][1])}), "
                         f"{gas_text(v['pao2_mmhg'], units)}, PaCO2 {gas_text(v['paco2_mmhg'], units, 1)}, "
                         f"pH {v['ph']:.2f}\n{st['stop_if']}")
-            hold = "-" if st["hold_min"] is None else f"{st['hold_min']:.0f} min\n({st.get('hold_basis', '')})"
+            hold = "-" if st["hold_min"] is None else f"{st['hold_min']:.0f} min"
             for j, text in enumerate((f"{i + 1}. {st['change']}\n({st['why']})", forecast, hold)):
-                self.steps.setItem(i, j, QtWidgets.QTableWidgetItem(text))
+                item = QtWidgets.QTableWidgetItem(text)
+                if j == 2 and st.get("hold_basis"):
+                    item.setToolTip(f"why {hold}: {st['hold_basis']}")  # the basis is long: hover to read it
+                self.steps.setItem(i, j, item)
         self.steps.resizeRowsToContents()
         marks = {True: "\u2713", False: "\u2716", None: "?"}
         self.readiness.setText("<b>Readiness at the last step:</b><br>" + "<br>".join(

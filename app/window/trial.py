@@ -9,9 +9,9 @@ from __future__ import annotations
 
 import math
 
-from PySide6 import QtCore, QtWidgets
+from PySide6 import QtCore, QtGui, QtWidgets
 
-from .common import CONTROLS, TRIALS, kpa_from_mmhg
+from .common import CONTROLS, STYLE_NAME, TRIAL_STYLE, TRIALS, kpa_from_mmhg
 
 
 class TrialPanel(QtWidgets.QGroupBox):
@@ -22,24 +22,33 @@ class TrialPanel(QtWidgets.QGroupBox):
     reset_requested = QtCore.Signal()
 
     COMPARE_ROWS = (("PaO2", "pao2_mmhg", "gas", 0), ("PaCO2", "paco2_mmhg", "gas", 1), ("pH", "ph", "", 2),
-                    ("SaO2", "sao2", "", 3), ("VD/VT", "vd_vt", "", 2), ("Pplat", "pplat_cmh2o", "cmH2O", 1),
-                    ("\u0394P (Pplat \u2212 total PEEP)", "driving_pressure_cmh2o", "cmH2O", 1),
-                    ("Mechanical power", "mechanical_power_j_min", "J/min", 1),
-                    ("Intrinsic PEEP", "intrinsic_peep_cmh2o", "cmH2O", 1), ("VT delivered", "vt_ml", "mL", 0),
+                    ("SaO2", "sao2", "%", 0), ("VD/VT", "vd_vt", "", 2), ("Pplat", "pplat_cmh2o", "cmH2O", 1),
+                    ("\u0394P", "driving_pressure_cmh2o", "cmH2O", 1),
+                    ("Mech. power", "mechanical_power_j_min", "J/min", 1),
+                    ("PEEPi", "intrinsic_peep_cmh2o", "cmH2O", 1), ("VT", "vt_ml", "mL", 0),
                     ("VT", "vt_ml_per_kg_pbw", "mL/kg PBW", 1), ("Cardiac output", "cardiac_output_l_min", "L/min", 1))
     #: Rows whose model value at the current settings is shown with its difference from the measured one.
     DIFFERENCE_KEYS = {"pao2_mmhg", "paco2_mmhg", "ph", "sao2", "pplat_cmh2o", "vt_ml"}
     RANGE_KEYS = {"pao2_mmhg", "paco2_mmhg", "ph", "sao2"}
+    ROW_TIPS = {"driving_pressure_cmh2o": "driving pressure: Pplat minus total PEEP (set plus intrinsic)",
+                "mechanical_power_j_min": "mechanical power (Gattinoni 2016, simplified equation)",
+                "vt_ml": "tidal volume delivered to the patient (measured: exhaled VT)",
+                "intrinsic_peep_cmh2o": "intrinsic PEEP (auto-PEEP): gas trapped at the end of expiration"}
 
     def __init__(self, parent=None):
         super().__init__("Trial settings", parent)
         self._quiet = False  # True while the panel itself sets the controls
+        self._compact = False  # True on a narrow screen: no sliders
+        self._hidden_key = "inspiratory_pressure_cmh2o"  # the breath-size control the mode does not use
         lay = QtWidgets.QGridLayout(self)
         self.trial_tabs = QtWidgets.QTabBar()
-        for t in TRIALS:
+        for i, t in enumerate(TRIALS):
             self.trial_tabs.addTab(f"Trial {t}")
+            self.trial_tabs.setTabTextColor(i, QtGui.QColor(TRIAL_STYLE[t][0]))  # its colour on the Outlook
+            self.trial_tabs.setTabToolTip(i, f"Trial {t}: drawn {STYLE_NAME[t]} on the Outlook")
         self.trial_tabs.currentChanged.connect(lambda i: None if self._quiet else self.tab_changed.emit(i))
-        lay.addWidget(self.trial_tabs, 0, 0, 1, 3)
+        self.trial_tabs.setExpanding(False)
+        lay.addWidget(self.trial_tabs, 0, 0, 1, 4)  # above the controls and the comparison
         self.mode = QtWidgets.QComboBox()
         self.mode.addItems(["volume control", "pressure control"])
         self.mode.currentIndexChanged.connect(lambda _i: self._changed("mode"))
@@ -47,7 +56,6 @@ class TrialPanel(QtWidgets.QGroupBox):
         lay.addWidget(self.mode, 1, 1)
         self.reset_button = QtWidgets.QPushButton("Reset to current")
         self.reset_button.clicked.connect(self.reset_requested.emit)
-        lay.addWidget(self.reset_button, 1, 2)
         self.spins, self.sliders, self.rows = {}, {}, {}
         for row, (key, label, unit, lo, hi, step, dec) in enumerate(CONTROLS, start=2):
             spin = QtWidgets.QDoubleSpinBox()
@@ -60,7 +68,7 @@ class TrialPanel(QtWidgets.QGroupBox):
             slider = QtWidgets.QSlider(QtCore.Qt.Horizontal)
             slider.setRange(0, int(round((hi - lo) / step)))
             slider.setPageStep(5)
-            slider.setMaximumWidth(150)
+            slider.setMaximumWidth(110)
             spin.valueChanged.connect(lambda _v, k=key: self._changed(k))
             slider.setProperty("low", lo)
             slider.valueChanged.connect(lambda i, k=key, step=step: self._slider_moved(k, i * step))
@@ -70,26 +78,49 @@ class TrialPanel(QtWidgets.QGroupBox):
             lay.addWidget(slider, row, 2)
             self.spins[key], self.sliders[key], self.rows[key] = spin, slider, (name, spin, slider)
         self.vt_per_kg = QtWidgets.QLabel("")
+        self.vt_per_kg.setWordWrap(True)
         lay.addWidget(self.vt_per_kg, 2 + len(CONTROLS), 1, 1, 2)
+        lay.addWidget(self.reset_button, 3 + len(CONTROLS), 0, 1, 2)
         # Why no forecast is shown for this trial, in the words on screen, next to the controls.
         self.problem = QtWidgets.QLabel("")
         self.problem.setWordWrap(True)
         self.problem.setTextFormat(QtCore.Qt.PlainText)
         self.problem.setStyleSheet("QLabel { color: #8a1c00; font-weight: bold; }")
         self.problem.hide()
-        lay.addWidget(self.problem, 3 + len(CONTROLS), 0, 1, 4)
+        lay.addWidget(self.problem, 4 + len(CONTROLS), 0, 1, 4)
         self.compare = QtWidgets.QTableWidget(0, 5)
-        self.compare.setHorizontalHeaderLabels(["measured", "model now (\u0394)", "Trial A", "Trial B", "Trial C"])
+        self.compare.setHorizontalHeaderLabels(["measured", "now (\u0394)", "Trial A", "Trial B", "Trial C"])
         self.compare.horizontalHeaderItem(0).setToolTip("the latest observation of the case (blood gas, ventilator)")
         self.compare.horizontalHeaderItem(1).setToolTip("the fitted model at the current settings; \u0394: model "
                                                         "minus measured")
+        for col, t in enumerate(TRIALS, start=2):
+            self.compare.horizontalHeaderItem(col).setForeground(QtGui.QColor(TRIAL_STYLE[t][0]))
         self.compare.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
         self.compare.horizontalHeader().setStretchLastSection(True)
         self.compare.verticalHeader().setDefaultSectionSize(20)
         self.compare.setMinimumHeight(236)
         self.compare.setMinimumWidth(300)  # scrolls sideways on a small screen
-        lay.addWidget(self.compare, 0, 3, 3 + len(CONTROLS), 1)
+        lay.addWidget(self.compare, 1, 3, 3 + len(CONTROLS), 1)
         lay.setColumnStretch(3, 1)
+
+    #: Below this panel width the sliders are hidden (the spin boxes stay), so that the comparison of
+    #: every trial fits beside the controls on a 1280-pixel screen.
+    COMPACT_WIDTH = 820
+
+    def resizeEvent(self, event):
+        super().resizeEvent(event)
+        compact = self.width() < self.COMPACT_WIDTH
+        if compact != self._compact:
+            self._compact = compact
+            self._show_rows()
+
+    def _show_rows(self):
+        """The size of the breath is VT in volume control, the inspiratory pressure in pressure control;
+        sliders only when the panel is wide enough."""
+        for key, (name, spin, slider) in self.rows.items():
+            name.setVisible(key != self._hidden_key)
+            spin.setVisible(key != self._hidden_key)
+            slider.setVisible(key != self._hidden_key and not self._compact)
 
     def _changed(self, key):
         if not self._quiet:
@@ -138,12 +169,10 @@ class TrialPanel(QtWidgets.QGroupBox):
         self._quiet = True
         try:
             self.mode.setCurrentIndex(0 if s["mode"] == "volume" else 1)
-            # The size of the breath is VT in volume control, the inspiratory pressure in pressure control.
-            hidden = "inspiratory_pressure_cmh2o" if s["mode"] == "volume" else "vt_ml"
+            self._hidden_key = "inspiratory_pressure_cmh2o" if s["mode"] == "volume" else "vt_ml"
+            self._show_rows()
             for key, _label, _unit, _lo, _hi, step, _dec in CONTROLS:
                 v = s.get(key)
-                for w in self.rows[key]:
-                    w.setVisible(key != hidden)
                 if v is not None:
                     self.spins[key].setValue(float(v))
                     low = float(self.sliders[key].property("low"))
@@ -158,6 +187,8 @@ class TrialPanel(QtWidgets.QGroupBox):
             return "-"
         if unit == "gas" and units == "kPa":
             return f"{kpa_from_mmhg(v):.{max(digits, 1)}f}"
+        if unit == "%":  # a fraction shown in per cent (SaO2)
+            return f"{100.0 * v:.{digits}f}"
         return f"{v:.{digits}f}"
 
     def fill_compare(self, now: dict | None, compare: dict, units: str, ranges=None, ranges_trial=None,
@@ -169,6 +200,11 @@ class TrialPanel(QtWidgets.QGroupBox):
         self.compare.setRowCount(len(self.COMPARE_ROWS))
         self.compare.setVerticalHeaderLabels(
             [f"{name} [{gas_unit if unit == 'gas' else unit}]" if unit else name for name, _k, unit, _d in self.COMPARE_ROWS])
+        for r, (_name, key, _unit, _d) in enumerate(self.COMPARE_ROWS):
+            if key in self.ROW_TIPS:
+                self.compare.verticalHeaderItem(r).setToolTip(self.ROW_TIPS[key])
+        for col, t in enumerate(TRIALS, start=2):  # a trial not set up takes no room
+            self.compare.setColumnHidden(col, bool(compare) and t not in compare)
         measured = measured or {}
         for r, (_name, key, unit, digits) in enumerate(self.COMPARE_ROWS):
             self.compare.setItem(r, 0, QtWidgets.QTableWidgetItem(self._value(measured.get(key), unit, digits, units)))
@@ -178,7 +214,8 @@ class TrialPanel(QtWidgets.QGroupBox):
                     diff = float(block[key]) - float(measured[key])
                     kpa = unit == "gas" and units == "kPa"  # the same unit and decimals as _value
                     shown = max(digits, 1) if kpa else digits
-                    diff = round(kpa_from_mmhg(diff) if kpa else diff, shown) + 0.0  # + 0.0: never "-0.00"
+                    diff = kpa_from_mmhg(diff) if kpa else 100.0 * diff if unit == "%" else diff
+                    diff = round(diff, shown) + 0.0  # + 0.0: never "-0.00"
                     text += f" (\u0394 {diff:+.{shown}f})"
                 if ranges and label == ranges_trial and key in self.RANGE_KEYS and text != "-":
                     lo, hi = ranges[key]

@@ -9,8 +9,9 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
 from .. import CAUTION
-from ..casefile import CaseError, write_atomic
+from ..casefile import CaseError, setting_words, write_atomic
 from ..engine import settings_dict
+from ..precision import sao2_text
 from ..worker import EngineRunner
 from .common import APP_NAME, COLOUR, CONTROLS, _axis
 
@@ -149,17 +150,19 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         """Move the clock (pause, resume and jump all come here); reveals what falls due."""
         if self.run._course is None:
             return  # the course is being recomputed: the clock waits for it
+        from ..walkthrough import event_words
+
         start, end = self.minute, min(self.minute + minutes, self.run.duration)
         due = self.run.due(start, end)
         for e in due["events"]:
-            self.log.addItem(f"{e.minute:5.1f} min  \u26a0 event: {e.kind} {e.value:g} \u2014 {e.note}")
+            self.log.addItem(f"{e.minute:5.1f} min  \u26a0 event: {event_words(e.kind, e.value)} \u2014 {e.note}")
         for c in due["checkpoints"]:
             self.log.addItem(f"{c['minute']:5.1f} min  ? {c['prompt']}")
             self.prompt.setText(c["prompt"])
         for d in due["results"]:
             v = d.values
             self.log.addItem(f"{d.ready_at:5.1f} min  blood gas drawn at {d.minute:.1f} min: PaO2 {v['pao2']:.0f} mmHg, "
-                             f"PaCO2 {v['paco2']:.1f} mmHg, pH {v['ph']:.2f}, SaO2 {v['sao2']:.2f}")
+                             f"PaCO2 {v['paco2']:.1f} mmHg, pH {v['ph']:.2f}, SaO2 {sao2_text(v['sao2'])}")
             self.result_shown.emit(d)
         self.minute = end
         self._show_clock()
@@ -177,13 +180,18 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
 
     # -- learner and instructor -----------------------------------------------------------------------
     def apply_settings(self):
-        sets = {k: round(sp.value(), 2) for k, sp in self.learner_spins.items()}
+        now = settings_dict(self.run.timeline.settings_at(self.minute))
+        sets = {k: round(sp.value(), 2) for k, sp in self.learner_spins.items()
+                if now.get(k) is None or abs(round(sp.value(), 2) - float(now[k])) > 1e-9}  # what the learner changed
+        if not sets:
+            self.status.setText("no setting changed")
+            return
         try:
             self.run.act(self.minute, sets)
         except (CaseError, ValueError) as exc:
             self.status.setText(f"\u2716 {exc}")
             return
-        self.log.addItem(f"{self.minute:5.1f} min  learner: " + ", ".join(f"{k} {v:g}" for k, v in sets.items()))
+        self.log.addItem(f"{self.minute:5.1f} min  learner: " + ", ".join(setting_words(k, v) for k, v in sets.items()))
         self._recompute()
 
     def inject(self, kind: str | None = None, value: float | None = None):
@@ -259,10 +267,12 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         timeline = io.StringIO()
         w = csv.writer(timeline, lineterminator="\n")
         w.writerow(["minute [min]", "what", "detail"])
-        rows = [(e["minute"], f"event ({e['source']})", f"{e['kind']} {e['value']:g}: {e['note']}") for e in out["events"]]
+        from ..walkthrough import event_words
+        rows = [(e["minute"], f"event ({e['source']})", f"{event_words(e['kind'], e['value'])}: {e['note']}")
+                for e in out["events"]]
         rows += [(a["minute"], "learner", ", ".join(a["changed"])) for a in out["actions"]]
         rows += [(d["minute"], "blood gas", f"PaO2 {d['pao2']:.1f} mmHg, PaCO2 {d['paco2']:.1f} mmHg, pH {d['ph']:.3f}, "
-                                           f"SaO2 {d['sao2']:.3f}; result at {d['ready_at']:g} min") for d in out["draws"]]
+                                           f"SaO2 {sao2_text(d['sao2'])}; result at {d['ready_at']:g} min") for d in out["draws"]]
         for r in sorted(rows, key=lambda r: r[0]):
             w.writerow(r)
         course = io.StringIO()
