@@ -375,3 +375,45 @@ def test_a_forecast_outside_its_own_range_is_said(capsys):
     for key, name in (("pao2_mmhg", "PaO2"), ("paco2_mmhg", "PaCO2")):
         lo, hi = out["likely_range"][key]
         assert (name in flagged) == (not lo <= out["steady"][key] <= hi), (name, out["steady"][key], lo, hi)
+
+
+def test_outputs_use_one_rounding_rule(capsys):
+    """Issue 17, item 10: every single value in the JSON is at its clinical precision (app.precision),
+    the same as the text: PaO2 and P/F whole mmHg, PaCO2 0.1, pH 0.01, SaO2 0.01 (whole %), pressures 0.1
+    (common practice); the text prints the same values."""
+    assert main(["predict", "--demo", "ards-moderate", "--set", "peep_cmh2o=12", "--format", "json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+
+    def decimals(x):
+        text = repr(float(x))
+        return 0 if text.endswith(".0") else len(text.split(".")[1])
+
+    for block, key, most in (("now", "pf_ratio_mmhg", 0), ("steady", "pao2_mmhg", 0), ("steady", "paco2_mmhg", 1),
+                             ("steady", "ph", 2), ("steady", "sao2", 2), ("steady", "pplat_cmh2o", 1),
+                             ("steady", "driving_pressure_cmh2o", 1), ("fit", "vco2_ml_min", 0)):
+        assert decimals(out[block][key]) <= most, (block, key, out[block][key])
+    assert all(decimals(x) <= 0 for x in out["likely_range"]["pao2_mmhg"])
+    assert main(["predict", "--demo", "ards-moderate", "--set", "peep_cmh2o=12"]) == 0
+    text = capsys.readouterr().out
+    st = out["steady"]
+    assert f"{st['pao2_mmhg']:.0f} mmHg" in text and f"{100 * st['sao2']:.0f} %" in text
+    dp = [a["message"] for a in out["alerts"] if a["code"] == "driving_pressure_high"]
+    assert dp and f"driving pressure {st['driving_pressure_cmh2o']:.1f} cmH2O" in dp[0]
+
+
+def test_readiness_values_are_judged_as_shown():
+    """A readiness value is rounded to its shown precision before it is judged: pH 7.246 reads 7.25 and
+    meets "pH at least 7.25" (MacIntyre 2001), never "7.25 - not met"."""
+    from types import SimpleNamespace
+
+    from ventcast.physiology.planning.stepdown import readiness
+
+    pred = SimpleNamespace(gas=SimpleNamespace(ph=7.2496, pf_ratio=149.6, sao2=0.905))
+    settings = SimpleNamespace(fio2=0.4, peep=8.0, rr=20.0)
+    rows = {r["criterion"]: r for r in readiness(pred, settings, spontaneous_rr=30, spontaneous_vt_ml=285.0)}
+    ph = next(r for k, r in rows.items() if "pH" in k)
+    pf = next(r for k, r in rows.items() if "P/F" in k)
+    rsbi = next(r for k, r in rows.items() if "RSBI" in k)
+    assert (ph["value"], ph["met"]) == (7.25, True)
+    assert (pf["value"], pf["met"]) == (150.0, True)
+    assert rsbi["value"] == 105.0 and rsbi["met"] is False  # 30 / 0.285 = 105.3: "below 105" not met
