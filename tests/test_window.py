@@ -828,6 +828,14 @@ def test_window_fits_1280_by_800_and_a_smaller_screenshot_is_refused(qtbot, qapp
         for i in range(w.right_tabs.count()):
             area = w.right_tabs.widget(i)
             assert area.widget().minimumSizeHint().width() <= area.viewport().width(), w.right_tabs.tabText(i)
+        # The Lung fit table shows every row whole (its names wrap; the panel scrolls instead).
+        w.right_tabs.setCurrentIndex(1)
+        for _ in range(10):
+            qapp.processEvents()
+        t = w.fit_table
+        assert t.rowCount() > 10
+        assert t.height() >= t.horizontalHeader().height() + sum(t.rowHeight(r) for r in range(t.rowCount()))
+        assert all(t.rowHeight(r) >= t.sizeHintForRow(r) for r in range(t.rowCount()))
         # Narrow: the trial panel drops its sliders (the spin boxes stay) to give the comparison room.
         assert not any(s.isVisible() for s in w.sliders.values()) and w.spins["fio2"].isVisible()
     finally:

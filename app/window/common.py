@@ -13,7 +13,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import pyqtgraph as pg
-from PySide6 import QtCore, QtGui
+from PySide6 import QtCore, QtGui, QtWidgets
 
 from .. import MMHG_PER_KPA
 from ..casefile import SETTING_RANGES
@@ -227,3 +227,43 @@ def _quiet_offscreen_warnings(mode, context, message):
     if "propagateSizeHints" in message:
         return
     print(message, file=sys.stderr)
+
+
+def fit_rows(table: QtWidgets.QTableWidget) -> None:
+    """Row heights to the wrapped text; a table without a vertical scroll bar is made tall enough to show
+    every row (its panel scrolls instead), so that no row is ever hidden."""
+    table.resizeRowsToContents()
+    if table.verticalScrollBarPolicy() == QtCore.Qt.ScrollBarAlwaysOff:
+        rows = sum(table.rowHeight(r) for r in range(table.rowCount()))
+        table.setFixedHeight(table.horizontalHeader().height() + rows + 2 * table.frameWidth())
+
+
+class _RowFitter(QtCore.QObject):
+    """Fits a table's rows to its wrapped text whenever its width changes (stretched columns are resized
+    without a sectionResized signal)."""
+
+    def __init__(self, table):
+        super().__init__(table)
+        self.table, self.width = table, -1
+
+    def eventFilter(self, obj, event):
+        if event.type() == QtCore.QEvent.Resize and obj.width() != self.width:
+            self.width = obj.width()
+            QtCore.QTimer.singleShot(0, self.table, lambda: fit_rows(self.table))  # never after deletion
+        return False
+
+
+def wrapped_table(columns: list) -> QtWidgets.QTableWidget:
+    """A read-only table whose text columns share the width and wrap (nothing cut off on a small screen)."""
+    t = QtWidgets.QTableWidget(0, len(columns))
+    t.setHorizontalHeaderLabels(columns)
+    t.verticalHeader().hide()
+    t.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
+    t.setWordWrap(True)
+    t.setTextElideMode(QtCore.Qt.ElideNone)
+    header = t.horizontalHeader()
+    header.setSectionResizeMode(QtWidgets.QHeaderView.Stretch)
+    header.setSectionResizeMode(0, QtWidgets.QHeaderView.ResizeToContents)
+    header.sectionResized.connect(lambda *_: fit_rows(t))
+    t.viewport().installEventFilter(_RowFitter(t))
+    return t

@@ -7,10 +7,10 @@ from html import escape
 
 import numpy as np
 import pyqtgraph as pg
-from PySide6 import QtWidgets
+from PySide6 import QtCore, QtWidgets
 
 from ..engine import PARAMETER_LABELS, model_assumptions
-from .common import COLOUR, _axis
+from .common import COLOUR, _axis, fit_rows, wrapped_table
 
 
 class LungFitPanel(QtWidgets.QWidget):
@@ -22,15 +22,14 @@ class LungFitPanel(QtWidgets.QWidget):
         self.message = QtWidgets.QLabel("fitting...")
         self.message.setWordWrap(True)
         fl.addWidget(self.message)
-        self.table = QtWidgets.QTableWidget(0, 2)
-        self.table.setHorizontalHeaderLabels(["parameter", "estimate (likely range 90 %)"])
-        self.table.verticalHeader().hide()
-        self.table.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
-        self.table.horizontalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeToContents)
-        self.table.horizontalHeader().setStretchLastSection(True)
-        self.table.setMinimumHeight(250)
-        self.table.verticalHeader().setDefaultSectionSize(22)
-        fl.addWidget(self.table, 1)
+        # Both columns share the width and wrap, so that neither is cut off in a narrow panel.
+        # The whole table is shown (the panel scrolls instead), so no scroll bar narrows its columns.
+        self.table = wrapped_table(["parameter", "estimate (90 % range)"])
+        self.table.horizontalHeader().setSectionResizeMode(0, QtWidgets.QHeaderView.Stretch)  # names wrap
+        self.table.horizontalHeader().setSectionResizeMode(1, QtWidgets.QHeaderView.ResizeToContents)  # never cut
+        self.table.setVerticalScrollBarPolicy(QtCore.Qt.ScrollBarAlwaysOff)
+        self.table.setHorizontalScrollBarPolicy(QtCore.Qt.ScrollBarAlwaysOff)
+        fl.addWidget(self.table)
         self.ident_label = QtWidgets.QLabel("")
         self.ident_label.setWordWrap(True)
         fl.addWidget(self.ident_label)
@@ -67,6 +66,7 @@ class LungFitPanel(QtWidgets.QWidget):
                 value = f"{f.estimates[n]:.{d}f} {unit} (range: computing...)"
             for j, text in enumerate((label, value.strip())):
                 self.table.setItem(i, j, QtWidgets.QTableWidgetItem(text))
+        fit_rows(self.table)
         symbol = "\u2713" if f.success else "\u2716"
         pending = "" if f.sampled else " (likely ranges: computing the posterior draws...)"
         self.message.setText(f"{symbol} {escape(f.message)}{pending}")

@@ -12,22 +12,7 @@ from PySide6 import QtCore, QtWidgets
 
 from ..engine import ie_text
 from ..precision import sao2_text
-from .common import gas_text
-
-
-def _table(columns: list) -> QtWidgets.QTableWidget:
-    """A read-only table whose text columns share the width and wrap (nothing cut off on a small screen)."""
-    t = QtWidgets.QTableWidget(0, len(columns))
-    t.setHorizontalHeaderLabels(columns)
-    t.verticalHeader().hide()
-    t.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
-    t.setWordWrap(True)
-    t.setTextElideMode(QtCore.Qt.ElideNone)
-    header = t.horizontalHeader()
-    header.setSectionResizeMode(QtWidgets.QHeaderView.Stretch)
-    header.setSectionResizeMode(0, QtWidgets.QHeaderView.ResizeToContents)
-    header.sectionResized.connect(lambda *_: t.resizeRowsToContents())
-    return t
+from .common import gas_text, wrapped_table
 
 
 def _readiness_value(value) -> str:
@@ -51,7 +36,7 @@ class OptionsPanel(QtWidgets.QWidget):
                                         "the best 50 against the fit's parameter draws.")
         self.message.setWordWrap(True)
         lay.addWidget(self.message)
-        self.table = _table(["probability", "changes", "forecast"])
+        self.table = wrapped_table(["probability", "changes", "forecast"])
         self.table.setSelectionBehavior(QtWidgets.QAbstractItemView.SelectRows)
         self.table.cellDoubleClicked.connect(lambda row, _col: self.option_chosen.emit(row))
         lay.addWidget(self.table, 1)
@@ -116,7 +101,7 @@ class StepDownPanel(QtWidgets.QWidget):
         self.message = QtWidgets.QLabel("")
         self.message.setWordWrap(True)
         lay.addWidget(self.message)
-        self.steps = _table(["step", "forecast (likely range 90 %)", "hold"])
+        self.steps = wrapped_table(["step", "forecast (likely range 90 %)", "hold"])
         self.steps.horizontalHeaderItem(2).setToolTip("the shortest time to wait before the next step; hover a "
                                                       "hold time for its basis")
         self.steps.setSelectionBehavior(QtWidgets.QAbstractItemView.SelectRows)

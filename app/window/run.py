@@ -87,7 +87,8 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
     if screenshot:
         window.resize(*size)
         window.show()
-        app.processEvents()
+        for _ in range(10):  # layout passes and deferred row fitting (zero-time timers) settle
+            app.processEvents()
         if window.fit_result is None:
             print(f"ventcast open: the case could not be fitted: {window.status.text()}", file=sys.stderr)
         image = window.grab()
