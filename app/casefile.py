@@ -25,7 +25,7 @@ from ventcast.physiology.gasexchange.alveolar import alveolar_po2
 from ventcast.physiology.indices import predicted_body_weight
 
 FORMAT = "ventcast.case"
-VERSION = 1
+VERSION = 2  # 2 adds settings_history (a version-1 file reads unchanged)
 MAX_BYTES = 1_000_000
 DEMO_NAMES = ("ards-moderate", "copd-trapping", "postop-wean", "refractory-shunt")
 
@@ -129,9 +129,17 @@ def schema_error(err, path: str) -> CaseError:
     return CaseError(where, message if len(message) <= 200 else message[:195] + " ...")
 
 
-def _schema_errors(doc: dict) -> None:
+def check_patient(patient: dict) -> None:
+    """The patient block alone, by the case schema's rules (a form or command checks it first)."""
+    _schema_errors({"format": FORMAT, "version": VERSION, "patient": patient, "settings": {}, "observations": []},
+                   only="patient")
+
+
+def _schema_errors(doc: dict, only: str | None = None) -> None:
     validator = jsonschema.Draft202012Validator(_schema())
     errors = sorted(validator.iter_errors(doc), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
+    if only is not None:
+        errors = [e for e in errors if list(e.absolute_path)[:1] == [only]]
     if not errors:
         return
     err = errors[0]
@@ -279,6 +287,21 @@ def validate(doc) -> dict:
                             f"{obs['paco2_mmhg']:g} mmHg: the alveolar PO2 is only {pa_ideal:.0f} mmHg "
                             f"(accepted up to {pa_ideal + PAO2_ABOVE_ALVEOLAR_TOLERANCE:.0f}). Likely causes: "
                             f"FiO2 recorded wrongly, or air in the sample")
+    previous = None
+    for i, change in enumerate(case.get("settings_history") or []):
+        field = f"settings_history[{i}]"
+        change["settings"] = check_settings(f"{field}.settings", change["settings"], pbw)
+        if change.get("previous_settings") is not None:
+            change["previous_settings"] = check_settings(f"{field}.previous_settings", change["previous_settings"], pbw)
+        at = check_taken_at(f"{field}.applied_at", change["applied_at"])
+        if previous is not None and at <= previous:
+            raise CaseError(f"{field}.applied_at", f"value {change['applied_at']!r} is not after the change before it; "
+                                                   f"changes are listed oldest first")
+        previous = at
+        course = change["forecast"]["course"]
+        lengths = {len(v) for v in course.values()}
+        if len(lengths) != 1:
+            raise CaseError(f"{field}.forecast.course", "its series have different lengths")
     times = [check_taken_at(f"observations[{i}].taken_at", o["taken_at"]) for i, o in enumerate(case["observations"])]
     # "now" is the newest gas, whatever order the file lists them in (a stable sort keeps equal times)
     order = sorted(range(len(times)), key=lambda i: times[i])
@@ -520,7 +543,8 @@ def write_atomic(path, text: str | bytes, mode: int | None = None) -> None:
 
 
 def dumps(case: dict) -> str:
-    return json.dumps(case, indent=2) + "\n"
+    """A case as the text of its file, in the current file version (an older file is migrated when saved)."""
+    return json.dumps(dict(case, version=VERSION), indent=2) + "\n"
 
 
 def save(path, case: dict) -> None:

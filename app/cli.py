@@ -405,6 +405,118 @@ def _cmd_desktop_entry(args) -> int:
     return EXIT_OK
 
 
+def _write_case(args, case: dict, target) -> None:
+    """Write the case atomically: in place, or to --out (refused if it exists, unless --force)."""
+    from .casefile import dumps
+    out = check_output_file("--out", args.out, force=getattr(args, "force", False)) if args.out else target
+    write_atomic(out, dumps(case))
+
+
+def _cmd_new(args) -> int:
+    from .entry import new_case, settings_from_sets
+    patient = {"sex": args.sex, "height_cm": args.height_cm, "weight_kg": args.weight_kg, "age_years": args.age_years,
+               "hb_g_dl": args.hb_g_dl, "temperature_c": args.temperature_c, "barometric_mmhg": args.barometric_mmhg}
+    settings = settings_from_sets(patient, args.set)
+    case = new_case(patient, settings, label=args.label, condition=args.condition)
+    _write_case(args, case, None)
+    print(json.dumps({"written": args.out, "caution": CAUTION}) if args.format == "json" else
+          f"Wrote {args.out}: a new case with no blood gas yet; add one with `ventcast add-gas {args.out} ...`.\n\n{CAUTION}")
+    return EXIT_OK
+
+
+#: add-gas options: (option, case-file field, kPa option or None, help).
+GAS_OPTIONS = (("--pao2-mmhg", "pao2_mmhg", "--pao2-kpa", "PaO2 [mmHg] (or --pao2-kpa)"),
+               ("--paco2-mmhg", "paco2_mmhg", "--paco2-kpa", "PaCO2 [mmHg] (or --paco2-kpa)"),
+               ("--ph", "ph", None, "pH"), ("--sao2", "sao2", None, "SaO2 [fraction 0-1]"),
+               ("--hco3", "hco3_mmol_l", None, "HCO3 [mmol/L]"),
+               ("--petco2-mmhg", "petco2_mmhg", "--petco2-kpa", "end-tidal PCO2 [mmHg] (or --petco2-kpa)"),
+               ("--pplat-cmh2o", "pplat_cmh2o", None, "plateau pressure [cmH2O]"),
+               ("--ppeak-cmh2o", "ppeak_cmh2o", None, "peak pressure [cmH2O]"),
+               ("--vte-ml", "vte_ml", None, "exhaled VT [mL]"), ("--ve-l-min", "ve_l_min", None, "minute ventilation [L/min]"),
+               ("--hb-g-dl", "hb_g_dl", None, "haemoglobin with the gas [g/dL] (becomes the patient's Hb)"))
+
+
+def _cmd_add_gas(args) -> int:
+    from .engine import apply_sets
+    from .entry import add_observation, kpa_to_mmhg
+    from .paste import read_pasted
+    case = load(args.case)
+    obs, source = {}, {}
+    if args.paste:
+        text = sys.stdin.read(20_001) if args.paste == "-" else read_text(args.paste, "--paste", max_bytes=20_000)
+        pasted = read_pasted(text, gas_unit=args.paste_gas_unit, hb_unit=args.paste_hb_unit)
+        if pasted.questions:
+            raise CaseError("--paste", f"{pasted.questions[0]} (answer with --paste-gas-unit mmHg|kPa or "
+                                       f"--paste-hb-unit g/dL|g/L|mmol/L)")
+        for key, value in pasted.values.items():
+            obs[key], source[key] = value, "--paste"
+    for option, key, kpa_option, _help in GAS_OPTIONS:
+        for opt, conv in ((option, float), (kpa_option, kpa_to_mmhg)):
+            value = getattr(args, opt.lstrip("-").replace("-", "_")) if opt else None
+            if value is None:
+                continue
+            if key in obs:
+                raise CaseError(opt, f"value {value:g} given twice (also by {source[key]}); give it once")
+            obs[key], source[key] = conv(value), opt
+    for opt, key in (("--pao2-mmhg", "pao2_mmhg"), ("--paco2-mmhg", "paco2_mmhg"), ("--ph", "ph")):
+        if key not in obs:
+            raise CaseError(opt, "required (a blood gas needs PaO2, PaCO2 and pH)")
+    if args.at:
+        obs["taken_at"] = args.at
+    if args.set:
+        obs["settings"] = apply_sets(case, args.set)
+    new = add_observation(case, obs)
+    _write_case(args, new, args.case)
+    where = args.out or args.case
+    if args.format == "json":
+        print(json.dumps({"written": where, "observations": len(new["observations"]), "caution": CAUTION}))
+    else:
+        print(f"Added the blood gas to {where} ({len(new['observations'])} observation(s)).\n\n{CAUTION}")
+    return EXIT_OK
+
+
+def _cmd_apply(args) -> int:
+    from .engine import apply_sets, fit_case, forecast_fitted, settings_text
+    from .entry import apply_change, stored_forecast
+    case = load(args.case)
+    if not args.set:
+        raise CaseError("--set", "required: the settings the ventilator was changed to (KEY=VALUE, repeatable)")
+    trial = apply_sets(case, args.set)
+    _p, _o, result = fit_case(case)
+    out = forecast_fitted(case, result, trial, with_band=True, with_next=False)
+    new = apply_change(case, trial, stored_forecast(out), args.at)
+    _write_case(args, new, args.case)
+    change = new["settings_history"][-1]
+    st = change["forecast"]["steady"]
+    if args.format == "json":
+        print(json.dumps(rounded({"written": args.out or args.case, "applied_at": change["applied_at"],
+                                  "settings": trial, "forecast": change["forecast"]["steady"],
+                                  "likely_range": change["forecast"]["likely_range"], "caution": CAUTION})))
+    else:
+        print(f"Recorded at {change['applied_at']}: {settings_text(trial)}.\nForecast kept for the check: PaO2 "
+              f"{st['pao2_mmhg']:.0f} mmHg, PaCO2 {st['paco2_mmhg']:.1f} mmHg, pH {st['ph']:.2f} at steady state.\n"
+              f"\n{CAUTION}")
+    return EXIT_OK
+
+
+def _cmd_check(args) -> int:
+    from .entry import CHECKED, forecast_check, tally_text
+    check = rounded(forecast_check(load(args.case)))
+    if args.format == "json":
+        print(json.dumps(check))
+        return EXIT_OK
+    print(f"Forecast check: {tally_text(check)}.")
+    for p in check["pairs"]:
+        print(f"\n  gas {p['gas_taken_at']}, {p['minutes_after_change']:g} min after the change of {p['applied_at']}:")
+        for key, name, unit, d in CHECKED:
+            lo, hi = p["likely_range"][key]
+            mark = "inside" if p["inside"][key] else "OUTSIDE"
+            print(f"    {name:<6} measured {p['measured'][key]:.{d}f}, forecast {p['forecast'][key]:.{d}f} "
+                  f"({lo:.{d}f} to {hi:.{d}f}) {unit:<5} {mark}")
+    print(f"\n{CAUTION}")
+    return EXIT_OK
+
+
 #: The --set help: every settings key a trial accepts, with its unit and accepted range (from the code's ranges).
 SET_HELP = ("change one setting for the trial: KEY=VALUE, repeatable. Keys: mode (volume or pressure), fio2 "
             "(0.21-1.0), vt_ml (2-20 mL/kg PBW; volume mode), "
@@ -452,6 +564,54 @@ def build_parser() -> argparse.ArgumentParser:
             p.add_argument("--spontaneous-rr", type=float, default=None, help="spontaneous rate for the RSBI [/min]")
             p.add_argument("--spontaneous-vt-ml", type=float, default=None, help="spontaneous VT for the RSBI [mL]")
         p.set_defaults(run=run)
+    nw = sub.add_parser("new", help="write a new case: the patient and the current settings (no blood gas yet)")
+    nw.add_argument("--out", required=True, help="the case file to write (.ventcast.json)")
+    nw.add_argument("--force", action="store_true", help="replace --out if it exists")
+    nw.add_argument("--sex", required=True, choices=("female", "male"))
+    nw.add_argument("--height-cm", type=float, required=True, help="height [cm] (100-250)")
+    nw.add_argument("--weight-kg", type=float, required=True, help="weight [kg] (20-300)")
+    nw.add_argument("--age-years", type=float, default=None, help="age [years] (16-110)")
+    nw.add_argument("--hb-g-dl", type=float, default=None, help="haemoglobin [g/dL] (4-22; default 12)")
+    nw.add_argument("--temperature-c", type=float, default=None, help="temperature [degC] (32-42; default 37)")
+    nw.add_argument("--barometric-mmhg", type=float, default=None, help="barometric pressure [mmHg] (450-800; default 760)")
+    nw.add_argument("--condition", choices=("ards", "obstructive", "post-operative", "other"), default=None,
+                    help="sets the fit's priors (default other)")
+    nw.add_argument("--label", default=None, help="a name for the case (no real patient names in shared files)")
+    nw.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                    help="the current settings (required: mode, fio2, peep_cmh2o, rr_per_min, inspiratory_time_s, and "
+                         "vt_ml or inspiratory_pressure_cmh2o). " + SET_HELP.split(": ", 1)[1])
+    nw.add_argument("--format", choices=("table", "json"), default="table")
+    nw.set_defaults(run=_cmd_new)
+    ag = sub.add_parser("add-gas", help="add a blood gas (and ventilator readings) to a case, atomically")
+    ag.add_argument("case", help="case file (.ventcast.json); changed in place unless --out is given")
+    for option, _key, kpa_option, help_ in GAS_OPTIONS:
+        ag.add_argument(option, type=float, default=None, help=help_)
+        if kpa_option:
+            ag.add_argument(kpa_option, type=float, default=None, help=f"the same in kPa (instead of {option})")
+    ag.add_argument("--at", default=None, help="time taken, ISO 8601 with its zone (default: now)")
+    ag.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                    help="settings in force when it was taken, if not the current ones. " + SET_HELP.split(": ", 1)[1])
+    ag.add_argument("--paste", metavar="FILE|-", help="read the values from a pasted result ('label value unit' lines)")
+    ag.add_argument("--paste-gas-unit", choices=("mmHg", "kPa"), default=None,
+                    help="unit of pasted gas pressures written without one")
+    ag.add_argument("--paste-hb-unit", choices=("g/dL", "g/L", "mmol/L"), default=None,
+                    help="unit of a pasted Hb written without one")
+    ag.add_argument("--out", default=None, help="write the new case here instead of changing CASE")
+    ag.add_argument("--force", action="store_true", help="replace --out if it exists")
+    ag.add_argument("--format", choices=("table", "json"), default="table")
+    ag.set_defaults(run=_cmd_add_gas)
+    ap = sub.add_parser("apply", help="record that the ventilator was changed, with the forecast made for the change")
+    ap.add_argument("case", help="case file (.ventcast.json); changed in place unless --out is given")
+    ap.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", help="the new settings. " + SET_HELP.split(": ", 1)[1])
+    ap.add_argument("--at", default=None, help="time of the change, ISO 8601 with its zone (default: now)")
+    ap.add_argument("--out", default=None, help="write the new case here instead of changing CASE")
+    ap.add_argument("--force", action="store_true", help="replace --out if it exists")
+    ap.add_argument("--format", choices=("table", "json"), default="table")
+    ap.set_defaults(run=_cmd_apply)
+    ck = sub.add_parser("check", help="each stored forecast against the blood gas measured after its change")
+    ck.add_argument("case", help="case file (.ventcast.json)")
+    ck.add_argument("--format", choices=("table", "json"), default="table")
+    ck.set_defaults(run=_cmd_check)
     wk = sub.add_parser("walkthrough", help="a scripted teaching case: the window's Walkthrough, or --headless")
     wk.add_argument("script", help="walkthrough script (.walkthrough.json) or a built-in name")
     wk.add_argument("--headless", action="store_true", help="run without the window and print the debrief")

@@ -161,6 +161,9 @@ def fit_case(case: dict, sample: bool = True):
     """Fit the case's observations: (patient, observations, FitResult). ``sample=False`` gives the
     estimate alone (no draws or ranges yet; complete it with :func:`sample_fit`), unless the same
     inputs were fitted completely before in this process."""
+    if not case["observations"]:
+        raise CaseError("observations", "the case has no blood gas yet: add one (ventcast add-gas, or Add blood gas "
+                                        "in the window) before the model can be fitted")
     patient = to_patient(case)
     observations = to_observations(case)
     key = _fit_key(patient, observations)
@@ -492,12 +495,13 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
                 alerts.append({"code": "band_unavailable", "severity": "caution",
                                "message": "the likely range of the course could not be computed; the steady-state "
                                           "range above still holds"})
-            lo_o2 = hi_o2 = lo_co2 = hi_co2 = lo_sa = hi_sa = np.full(course.minutes.size, np.nan)
+            lo_o2 = hi_o2 = lo_co2 = hi_co2 = lo_sa = hi_sa = lo_ph = hi_ph = np.full(course.minutes.size, np.nan)
         else:
-            band_pao2, band_paco2, band_sao2, left_out = band
+            band_pao2, band_paco2, band_sao2, band_ph, left_out = band
             lo_o2, hi_o2 = np.nanpercentile(band_pao2, [5, 95], axis=0)
             lo_co2, hi_co2 = np.nanpercentile(band_paco2, [5, 95], axis=0)
             lo_sa, hi_sa = np.nanpercentile(band_sao2, [5, 95], axis=0)
+            lo_ph, hi_ph = np.nanpercentile(band_ph, [5, 95], axis=0)
             if left_out:
                 alerts.append({"code": "band_draws_left_out", "severity": "info",
                                "message": f"{left_out} of {left_out + band_pao2.shape[0]} parameter draws could not be "
@@ -507,7 +511,7 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
         out["course"] = course_block(course)
         out["course"].update({"pao2_low": _listed(lo_o2), "pao2_high": _listed(hi_o2), "paco2_low": _listed(lo_co2),
                               "paco2_high": _listed(hi_co2), "sao2_low": _listed(lo_sa, 4),
-                              "sao2_high": _listed(hi_sa, 4)})
+                              "sao2_high": _listed(hi_sa, 4), "ph_low": _listed(lo_ph, 4), "ph_high": _listed(hi_ph, 4)})
         recheck = float(course.recheck_after_min)
         out["recheck_after_min"] = None if not math.isfinite(recheck) else round(max(recheck, 0.0), 1)
     if with_next:
@@ -552,7 +556,7 @@ BAND_CHUNK = 25
 def _band(result, current, trial, minutes, n=200):
     """Courses of up to ``n`` parameter draws that have a steady state at both settings, or None.
 
-    Returns ``(pao2, paco2, sao2, left_out)``: arrays (draws, time) and the number of draws whose course
+    Returns ``(pao2, paco2, sao2, ph, left_out)``: arrays (draws, time) and the number of draws whose course
     could not be integrated (near the edge of a sustainable state); those are left out of the band,
     found by halving the batch, and the caller says how many. Each draw carries the model error of the
     steady-state likely range (:func:`with_course_model_error`), so the band ends where the range does
@@ -581,11 +585,12 @@ def _band(result, current, trial, minutes, n=200):
     b = int(np.atleast_1d(draws.shunt_fixed).size)
     sbe = np.broadcast_to(np.asarray(draws.base_excess, dtype=float), (b,))[where][:, None]
     temp = np.broadcast_to(np.asarray(draws.temperature, dtype=float), (b,))[where][:, None]
-    sao2 = np.full_like(pao2, np.nan)
+    sao2, ph = np.full_like(pao2, np.nan), np.full_like(pao2, np.nan)
     ok = np.isfinite(pao2) & np.isfinite(paco2)
     sbe, temp = np.broadcast_to(sbe, pao2.shape)[ok], np.broadcast_to(temp, pao2.shape)[ok]
-    sao2[ok] = saturation(np.clip(pao2[ok], 1.0, None), ph_invivo(paco2[ok], sbe), paco2[ok], temp)
-    return pao2, paco2, sao2, int(idx.size - kept)
+    ph[ok] = ph_invivo(paco2[ok], sbe)
+    sao2[ok] = saturation(np.clip(pao2[ok], 1.0, None), ph[ok], paco2[ok], temp)
+    return pao2, paco2, sao2, ph, int(idx.size - kept)
 
 
 def with_course_model_error(values, factors):

@@ -246,7 +246,7 @@ def test_course_band_leaves_out_draws_it_cannot_follow(monkeypatch):
     trial = engine.to_settings(engine.apply_sets(case, ["peep_cmh2o=12"]))
     bad_shunt = float(np.asarray(result.draws.shunt_fixed)[7])
     real = course_module.simulate
-    _o2, _co2, _sa, left_before = engine._band(result, current, trial, 60.0)  # draws the model itself cannot follow
+    _o2, _co2, _sa, _ph, left_before = engine._band(result, current, trial, 60.0)  # draws the model itself cannot follow
 
     def flaky(draws, *args, **kwargs):
         c = real(draws, *args, **kwargs)
@@ -255,7 +255,7 @@ def test_course_band_leaves_out_draws_it_cannot_follow(monkeypatch):
         return c
 
     monkeypatch.setattr(engine, "simulate", flaky)
-    pao2, paco2, _sao2, left_out = engine._band(result, current, trial, 60.0)
+    pao2, paco2, _sao2, _ph, left_out = engine._band(result, current, trial, 60.0)
     # Resampled draws can repeat: every copy of the failing draw is left out, besides those left out before.
     copies = int(np.sum(np.isclose(np.asarray(result.draws.shunt_fixed), bad_shunt)))
     assert left_before < left_out <= left_before + copies
