@@ -644,7 +644,7 @@ def build_parser() -> argparse.ArgumentParser:
     op.add_argument("--size", default="1600x1000", metavar="WxH",
                     help="screenshot size in pixels (400x300 to 8000x8000, and at least what the window needs)")
     op.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", help="Trial A: " + SET_HELP)
-    op.add_argument("--tab", choices=("limits", "lung-fit", "options", "step-down"), default="limits",
+    op.add_argument("--tab", choices=("limits", "lung-fit", "options", "step-down", "forecast-check"), default="limits",
                     help="right-hand panel shown (with --screenshot, options and step-down are computed first)")
     op.add_argument("--quit-after", type=float, default=None, metavar="SECONDS", help=argparse.SUPPRESS)
     op.set_defaults(run=_cmd_open)

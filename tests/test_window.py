@@ -892,3 +892,81 @@ def test_questions_are_plain_text_and_return_the_button_pressed(qtbot, qapp):
                             ("Discard changes", QtWidgets.QMessageBox.DestructiveRole, "discard"),
                             ("Cancel", QtWidgets.QMessageBox.RejectRole, "cancel")])
     assert answer == "discard" and seen["format"] == QtCore.Qt.PlainText
+
+
+def test_bedside_loop_in_the_window(qtbot, qapp, tmp_path):
+    """Issue 15: New case -> Add blood gas by form -> fit -> change Trial A -> Apply -> Add the next gas by
+    Paste -> a Forecast check row with the right inside/outside -> Save -> reopen: everything is there.
+    Each data change is undoable; the forms refuse bad input next to the field and change nothing."""
+    from ventcast.app.entry import forecast_check
+
+    w = win.MainWindow(load_demo("ards-moderate"), synchronous=True)
+    w.ask_unsaved = lambda doing: "discard"
+    try:
+        w.show()
+        new = w.new_case_dialog()
+        new.sex.setCurrentText("male")
+        new.fields["height_cm"].setText("178")
+        new.fields["weight_kg"].setText("500")  # refused next to the field, OK disabled
+        assert "weight" in new.error.text() and "20 to 300" in new.error.text()
+        assert not new.buttons.button(QtWidgets.QDialogButtonBox.Ok).isEnabled()
+        new.fields["weight_kg"].setText("85")
+        new.condition.setCurrentText("ards")
+        for key, value in (("fio2", "0.6"), ("peep_cmh2o", "10"), ("vt_ml", "450"), ("rr_per_min", "20"),
+                           ("inspiratory_time_s", "0.9")):
+            new.fields[key].setText(value)
+        new.first_gas.setChecked(False)
+        assert new.buttons.button(QtWidgets.QDialogButtonBox.Ok).isEnabled(), new.error.text()
+        new.buttons.button(QtWidgets.QDialogButtonBox.Ok).click()
+        assert w.state.case["observations"] == [] and w.fit_result is None and w.has_unsaved_work()
+        now = QtCore.QDateTime.currentDateTime()
+        gas = w.add_gas_dialog()
+        gas.taken.setDateTime(now.addSecs(-3600))
+        gas.fields["ph"].setText("7,33")
+        gas.fields["paco2_mmhg"].setText("48")
+        gas.fields["pao2_mmhg"].setText("640")  # impossible at FiO2 0.6: refused, named
+        assert "PaO2" in gas.error.text() and not gas.buttons.button(QtWidgets.QDialogButtonBox.Ok).isEnabled()
+        gas.fields["pao2_mmhg"].setText("64")
+        gas.fields["sao2"].setText("91")  # per cent on screen
+        gas.fields["pplat_cmh2o"].setText("27")
+        with qtbot.waitSignal(w.band_shown, timeout=WAIT_MS):
+            gas.buttons.button(QtWidgets.QDialogButtonBox.Ok).click()
+        obs = w.state.case["observations"][0]
+        assert obs["sao2"] == 0.91 and obs["ph"] == 7.33 and w.fit_result is not None
+        with qtbot.waitSignal(w.band_shown, timeout=WAIT_MS):
+            w.set_trial_value("peep_cmh2o", 14)
+        apply = w.apply_trial_dialog()
+        assert apply is not None, w.status.text()
+        apply.when.setDateTime(now.addSecs(-1800))
+        with qtbot.waitSignal(w.fit_shown, timeout=WAIT_MS):
+            apply.accept()
+        assert w.state.case["settings"]["peep_cmh2o"] == 14 and len(w.state.case["settings_history"]) == 1
+        stored = copy.deepcopy(w.state.case["settings_history"][0]["forecast"])
+        gas = w.add_gas_dialog()
+        gas.taken.setDateTime(now)
+        gas.paste.setPlainText("BLOOD GAS\npH 7,30\npCO2 6.9 kPa\npO2 79 mmHg\nsO2 94 %\nLac 1.1 mmol/L")
+        got = gas.read_paste()
+        assert got.values["pao2_mmhg"] == 79.0 and "line 6: not used by Ventcast" in gas.paste_report.text()
+        assert gas.fields["paco2_mmhg"].text() == f"{round(6.9 * win.MMHG_PER_KPA, 1):g}"
+        gas.buttons.button(QtWidgets.QDialogButtonBox.Ok).click()
+        check = forecast_check(w.state.case)
+        assert check["pair_count"] == 1 and w.check_panel.table.rowCount() == 1
+        pair = check["pairs"][0]
+        verdict = "inside" if pair["inside"]["pao2_mmhg"] else "outside"
+        assert verdict in w.check_panel.table.item(0, 1).text()
+        assert w.check_panel.tally.text().startswith(f"{check['inside_count']} of 1 measured gas")
+        # The stored forecast is kept as it was shown.
+        assert w.state.case["settings_history"][0]["forecast"] == stored
+        # Undo takes the pasted gas away (and redo brings it back).
+        w.undo_stack.undo()
+        assert len(w.state.case["observations"]) == 1 and w.check_panel.table.rowCount() == 0
+        w.undo_stack.redo()
+        assert len(w.state.case["observations"]) == 2
+        path = tmp_path / "loop.ventcast.json"
+        assert w._save_to(str(path))
+        reopened = load(str(path))
+        assert reopened["version"] == 2 and len(reopened["observations"]) == 2
+        assert reopened["settings_history"][0]["forecast"] == stored
+        assert forecast_check(reopened) == check
+    finally:
+        _close(w, qapp)

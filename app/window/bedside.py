@@ -15,6 +15,8 @@ from .common import gas_text
 class BedsidePanel(QtWidgets.QGroupBox):
     """Measured values of the case, shown in the window's unit."""
 
+    gas_requested = QtCore.Signal()  # Add blood gas
+
     ROWS = (("pao2", "PaO2"), ("paco2", "PaCO2"), ("ph", "pH"), ("sao2", "SaO2"),
             ("settings", "Settings"), ("pf_ratio_mmhg", "P/F ratio"),
             ("aa_gradient_mmhg", "A\u2013a gradient"), ("vd_vt", "VD/VT (model)"),
@@ -23,7 +25,7 @@ class BedsidePanel(QtWidgets.QGroupBox):
             ("ventilatory_ratio", "Ventilatory ratio"), ("oxygenation_index", "Oxygenation index"),
             ("berlin_category", "Berlin category"), ("base_excess_mmol_l", "Base excess"))
     #: Index: (decimals, unit).
-    FORMAT = {"pf_ratio_mmhg": (0, "mmHg"), "aa_gradient_mmhg": (0, "mmHg"), "driving_pressure_cmh2o": (0, "cmH2O"),
+    FORMAT = {"pf_ratio_mmhg": (0, "mmHg"), "aa_gradient_mmhg": (0, "mmHg"), "driving_pressure_cmh2o": (1, "cmH2O"),
               "compliance_ml_per_cmh2o": (0, "mL/cmH2O"), "pbw_kg": (1, "kg"), "vt_ml_per_kg_pbw": (1, "mL/kg PBW"),
               "mechanical_power_j_min": (1, "J/min"), "ventilatory_ratio": (2, ""), "oxygenation_index": (1, ""),
               "base_excess_mmol_l": (1, "mmol/L")}
@@ -34,6 +36,9 @@ class BedsidePanel(QtWidgets.QGroupBox):
         self.case_label = QtWidgets.QLabel("")
         self.case_label.setWordWrap(True)
         lay.addWidget(self.case_label)
+        self.add_gas = QtWidgets.QPushButton("Add blood gas... (Ctrl+G)")
+        self.add_gas.clicked.connect(self.gas_requested.emit)
+        lay.addWidget(self.add_gas)
         form = QtWidgets.QFormLayout()
         self.values = {}
         for key, label in self.ROWS:
@@ -63,6 +68,13 @@ class BedsidePanel(QtWidgets.QGroupBox):
     def show_case(self, case: dict, units: str):
         """The case's label, latest observation, settings, indices and past observations."""
         self.case_label.setText(f"<b>{escape(case.get('label', ''))}</b>")
+        self.history.setRowCount(0)
+        if not case["observations"]:  # a new case: its settings, and nothing measured yet
+            for w in self.values.values():
+                w.setText("-")
+            self.values["settings"].setText(settings_text(case["settings"]))
+            self.values["pao2"].setText("no blood gas yet")
+            return
         obs = case["observations"][-1]
         idx = now_block(case)
         v = self.values

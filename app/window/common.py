@@ -59,13 +59,25 @@ SETTING_LABELS = {"mode": "Mode", **{key: label for key, label, *_ in CONTROLS},
                   "apparatus_dead_space_ml": "apparatus dead space"}
 
 
+#: Patient and observation fields in the words on screen (settings: SETTING_LABELS).
+FIELD_WORDS = {"pao2_mmhg": "PaO2", "paco2_mmhg": "PaCO2", "ph": "pH", "sao2": "SaO2", "hco3_mmol_l": "HCO3",
+               "petco2_mmhg": "PetCO2", "pplat_cmh2o": "Pplat", "ppeak_cmh2o": "Ppeak", "vte_ml": "exhaled VT",
+               "ve_l_min": "minute ventilation", "hb_g_dl": "Hb", "taken_at": "time taken", "height_cm": "height",
+               "weight_kg": "weight", "age_years": "age", "temperature_c": "temperature",
+               "barometric_mmhg": "barometric pressure", "sex": "sex", "patient": "patient", "settings": "settings"}
+
+
 def field_in_words(field: str) -> str:
-    """A case-file path in the words on screen: 'Trial A.vt_ml' -> 'Trial A, VT'."""
-    head, _, key = field.rpartition(".")
-    return f"{head}, {SETTING_LABELS.get(key, key.replace('_', ' '))}" if head else SETTING_LABELS.get(key, key)
+    """A case-file path in the words on screen: 'Trial A.vt_ml' -> 'Trial A, VT'; 'blood gas: pao2_mmhg'
+    -> 'blood gas, PaO2'; 'patient.height_cm' -> 'patient, height'."""
+    head, _, key = field.replace(": ", ".").rpartition(".")
+    words = SETTING_LABELS.get(key) or FIELD_WORDS.get(key) or key.replace("_", " ")
+    return f"{head}, {words}" if head else words
 
 SHORTCUTS = (
-    ("Ctrl+O", "open a case file"), ("Ctrl+S", "save the case (trials and goals included)"),
+    ("Ctrl+N", "new case"), ("Ctrl+O", "open a case file"),
+    ("Ctrl+S", "save the case (trials, goals, gases and applied changes included)"),
+    ("Ctrl+G", "add a blood gas (typed or pasted)"), ("Ctrl+Shift+A", "apply the trial to the patient"),
     ("Ctrl+Shift+S", "save as"), ("Ctrl+Z / Ctrl+Shift+Z", "undo / redo a trial change"),
     ("Ctrl+1 / 2 / 3", "edit Trial A / B / C"), ("Ctrl+R", "reset the trial to the current settings"),
     ("Ctrl+K", "switch mmHg / kPa"), ("Ctrl+Shift+O", "switch the oxygen chart PaO2 / SaO2"),

@@ -27,6 +27,8 @@ from .forecasting import ForecastPipeline
 from .limits import LimitsPanel
 from .lungfit import LungFitPanel
 from .menus import build_menus, show_about, show_shortcuts
+from .bedside_loop import BedsideLoop
+from .checks import ForecastCheckPanel
 from .outlook import OutlookPanel
 from .plans import OptionsPanel, StepDownPanel
 from .trial import TrialPanel
@@ -44,7 +46,7 @@ def _scrolling(panel: QtWidgets.QWidget) -> QtWidgets.QScrollArea:
     return area
 
 
-class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindow):
+class MainWindow(BedsideLoop, ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindow):
     """The window. ``synchronous=True`` computes on the calling thread (tests, screenshots)."""
 
     steady_shown = QtCore.Signal(object)     # stage 1: steady states and Limits on screen
@@ -113,9 +115,12 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
         self.step_down = StepDownPanel()
         self.step_down.plan_requested.connect(self.plan_step_down)
         self.step_down.step_chosen.connect(self.use_step)
+        self.check_panel = ForecastCheckPanel()
+        self.bedside.gas_requested.connect(self.add_gas_dialog)
+        self.trial_panel.apply_requested.connect(self.apply_trial_dialog)
         self.right_tabs = QtWidgets.QTabWidget()
         for panel, title in ((self.limits_panel, "Limits"), (self.lung_fit, "Lung fit"), (self.options, "Options"),
-                             (self.step_down, "Step-down plan")):
+                             (self.step_down, "Step-down"), (self.check_panel, "Forecast check")):
             self.right_tabs.addTab(_scrolling(panel), title)
         self.right_tabs.setMinimumWidth(300)
         split = QtWidgets.QSplitter(QtCore.Qt.Horizontal)
@@ -217,10 +222,8 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
         self.recovery_file = new_recovery_path(self.case_name())
         if path:
             self._remember_recent(path)
-        self.status.setText("fitting the lung model to the observations...")
-        self._start_busy(cancellable=True)
-        case_copy = copy.deepcopy(case)
-        self.runner.submit("fit", lambda: self._fit_work(case_copy))
+        self.show_forecast_check()
+        self._refit()
 
     def _show_fit(self):
         self.lung_fit.show_fit(self.fit_result)
@@ -236,6 +239,8 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
 
     def _measured(self) -> dict:
         """The latest observation in the comparison table's keys (what was measured, nothing modelled)."""
+        if not self.state.case["observations"]:
+            return {}
         obs = self.state.case["observations"][-1]
         s = obs["settings"]
         vt = obs.get("vte_ml") or (s.get("vt_ml") if s["mode"] == "volume" else None)
@@ -303,6 +308,7 @@ class MainWindow(ForecastPipeline, CaseFiles, TrialEditing, QtWidgets.QMainWindo
         self.settings_store.setValue("units", units)
         self.outlook.label_axes(self.units, self.oxygen_view)
         self.bedside.show_case(self.state.case, self.units)
+        self.show_forecast_check()
         if self.fit_result is not None:
             self._show_fit()
         self._redraw()

@@ -16,7 +16,8 @@ def build_menus(self) -> None:
     bar = self.menuBar()
     m = bar.addMenu("&File")
     self.recent_menu = QtWidgets.QMenu("Open recent", self)
-    for text, seq, slot in (("&Open...", QtGui.QKeySequence.Open, self.open_dialog),
+    for text, seq, slot in (("&New case...", QtGui.QKeySequence.New, self.new_case_dialog),
+                            ("&Open...", QtGui.QKeySequence.Open, self.open_dialog),
                             ("&Save", QtGui.QKeySequence.Save, self.save),
                             ("Save &as...", QtGui.QKeySequence("Ctrl+Shift+S"), self.save_as)):
         a = m.addAction(text)
@@ -43,6 +44,12 @@ def build_menus(self) -> None:
     r.setShortcut(QtGui.QKeySequence("Ctrl+Shift+Z"))
     e.addAction(u)
     e.addAction(r)
+    gas = e.addAction("Add blood gas...")
+    gas.setShortcut(QtGui.QKeySequence("Ctrl+G"))
+    gas.triggered.connect(self.add_gas_dialog)
+    apply_ = e.addAction("Apply the trial to the patient...")
+    apply_.setShortcut(QtGui.QKeySequence("Ctrl+Shift+A"))
+    apply_.triggered.connect(self.apply_trial_dialog)
     reset = e.addAction("Reset trial to current")
     reset.setShortcut(QtGui.QKeySequence("Ctrl+R"))
     reset.triggered.connect(self.reset_trial)

@@ -45,7 +45,7 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
     """Start the window (``ventcast open``). With ``screenshot``, render offscreen to a PNG and exit.
 
     ``sets`` (KEY=VALUE, as in ``predict --set``) make Trial A; ``tab`` picks the right-hand panel
-    ('limits', 'lung-fit', 'options' or 'step-down'; with a screenshot the last two are computed first).
+    ('limits', 'lung-fit', 'options', 'step-down' or 'forecast-check'; with a screenshot options and step-down are computed first).
     ``case`` is an already loaded case (the command line has read and checked it); ``walkthrough`` a
     (script, folder) pair opens the Walkthrough window instead.
     """
@@ -84,6 +84,8 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
         window.right_tabs.setCurrentIndex(3)
         if screenshot:
             window.plan_step_down()
+    elif tab == "forecast-check":
+        window.right_tabs.setCurrentIndex(4)
     if screenshot:
         window.resize(*size)
         window.show()

@@ -20,6 +20,7 @@ class TrialPanel(QtWidgets.QGroupBox):
     control_changed = QtCore.Signal(str)   # a control's key ('mode' for the mode)
     tab_changed = QtCore.Signal(int)
     reset_requested = QtCore.Signal()
+    apply_requested = QtCore.Signal()  # apply the trial to the patient (the ventilator was changed)
 
     COMPARE_ROWS = (("PaO2", "pao2_mmhg", "gas", 0), ("PaCO2", "paco2_mmhg", "gas", 1), ("pH", "ph", "", 2),
                     ("SaO2", "sao2", "%", 0), ("VD/VT", "vd_vt", "", 2), ("Pplat", "pplat_cmh2o", "cmH2O", 1),
@@ -80,7 +81,14 @@ class TrialPanel(QtWidgets.QGroupBox):
         self.vt_per_kg = QtWidgets.QLabel("")
         self.vt_per_kg.setWordWrap(True)
         lay.addWidget(self.vt_per_kg, 2 + len(CONTROLS), 1, 1, 2)
-        lay.addWidget(self.reset_button, 3 + len(CONTROLS), 0, 1, 2)
+        self.apply_button = QtWidgets.QPushButton("Apply to patient...")
+        self.apply_button.setToolTip("the ventilator was set to this trial: record it as the new current settings, "
+                                     "with the forecast on screen (Ctrl+Shift+A)")
+        self.apply_button.clicked.connect(self.apply_requested.emit)
+        buttons = QtWidgets.QHBoxLayout()
+        buttons.addWidget(self.reset_button)
+        buttons.addWidget(self.apply_button)
+        lay.addLayout(buttons, 3 + len(CONTROLS), 0, 1, 2)
         # Why no forecast is shown for this trial, in the words on screen, next to the controls.
         self.problem = QtWidgets.QLabel("")
         self.problem.setWordWrap(True)
