@@ -311,7 +311,9 @@ def _cmd_import_fhir(args) -> int:
     if args.into and out.resolve() == Path(args.into).resolve():
         raise CaseError("--out", "must differ from --into: the existing case is never overwritten")
     _check_output_path("--out", out, args.force)
-    case, report = import_bundle(text, into=into)
+    if args.ti_s is not None and not 0.2 <= args.ti_s <= 5.0:
+        raise CaseError("--ti-s", f"value {args.ti_s:g} is outside the accepted range 0.2 to 5 s")
+    case, report = import_bundle(text, into=into, mode=args.mode, ti_s=args.ti_s)
     write_atomic(out, dumps(case))
     if args.format == "json":
         print(json.dumps({"out": str(out), "observations": len(case["observations"]), **report, "caution": CAUTION}))
@@ -324,6 +326,8 @@ def _cmd_import_fhir(args) -> int:
     print("Skipped:")
     for it in report["skipped"]:
         print(f"  {('LOINC ' + it['code']) if it['code'] else '':<14} {it['what']}: {it['why']}")
+    for w in report.get("warnings", []):
+        print(f"Note: {w}")
     print()
     print(CAUTION)
     return EXIT_OK
@@ -635,6 +639,10 @@ def build_parser() -> argparse.ArgumentParser:
     fh.add_argument("--out", required=True, help="the case file to write (.ventcast.json)")
     fh.add_argument("--into", help="an existing case: its copy, with the imported observations, goes to --out")
     fh.add_argument("--force", action="store_true", help="replace --out if it exists")
+    fh.add_argument("--mode", choices=("volume", "pressure"), default=None,
+                    help="ventilation mode of a new case when the bundle has no coded mode (LOINC 20124-4)")
+    fh.add_argument("--ti-s", type=float, default=None,
+                    help="inspiratory time [s] (0.2-5) of a new case when the bundle has none (LOINC 76334-2)")
     fh.add_argument("--format", choices=("table", "json"), default="table")
     fh.set_defaults(run=_cmd_import_fhir)
     op = sub.add_parser("open", help="open the window on a case (the ards-moderate demo when none is given)")

@@ -81,6 +81,25 @@ def add_observation(case: dict, observation: dict) -> dict:
         raise CaseError(field, str(exc)[len(exc.field) + 2:]) from None
 
 
+def replace_observation(case: dict, index: int, observation: dict) -> dict:
+    """The case with observation ``index`` (in the case's time order) replaced (a typing error corrected);
+    refused like :func:`add_observation`. Stored forecasts are not touched."""
+    if not 0 <= index < len(case["observations"]):
+        raise CaseError("observation", f"number {index + 1} does not exist; the case has {len(case['observations'])}")
+    rest = copy.deepcopy(case)
+    del rest["observations"][index]
+    return add_observation(rest, observation)
+
+
+def delete_observation(case: dict, index: int) -> dict:
+    """The case without observation ``index`` (in the case's time order)."""
+    if not 0 <= index < len(case["observations"]):
+        raise CaseError("observation", f"number {index + 1} does not exist; the case has {len(case['observations'])}")
+    new = copy.deepcopy(case)
+    del new["observations"][index]
+    return validate(new)
+
+
 def stored_forecast(out: dict) -> dict:
     """What is kept of a forecast (``forecast_fitted`` with its band) when its change is applied:
     steady state, likely range and the course with its band, as they were shown."""

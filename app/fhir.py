@@ -122,7 +122,20 @@ def _number(resource, where, kind):
     if unit not in table:
         raise BundleError(_path(*where, "valueQuantity", "code"),
                           f"unit {unit!r} is not accepted here; accepted UCUM units: {', '.join(repr(u) for u in table)}")
-    return float(v) * table[unit]
+    factor = table[unit]
+    if factor == 1.0:
+        return float(v)
+    # A converted value keeps the precision it was reported with: the reported decimals, one more for
+    # each tenfold the unit shrinks (9.1 kPa -> 68.3 mmHg, never 68.2556; 112 g/L -> 11.2 g/dL).
+    return round(float(v) * factor, max(_decimals(v) + math.ceil(-math.log10(factor) - 1e-9), 0))
+
+
+def _decimals(v) -> int:
+    """Decimals of a reported number as written in the JSON (12 -> 0, 9.1 -> 1, 6.25 -> 2)."""
+    text = repr(float(v))
+    if "e" in text or text.endswith(".0"):
+        return 0
+    return len(text.split(".")[1])
 
 
 def _fraction(v, unit, where, kind):
@@ -240,7 +253,7 @@ def read_bundle(text: str) -> dict:
                 for m in _list(r, "hasMember", ("entry", i, "resource")):
                     if isinstance(m, dict) and isinstance(m.get("reference"), str):
                         panel_members.add(m["reference"])
-    items, skipped, gender, gender_path = [], [], None, None
+    items, skipped, gender, gender_path, birth = [], [], None, None, None
     for i, e in enumerate(entries):
         where = ("entry", i, "resource")
         if not isinstance(e, dict) or not isinstance(e.get("resource"), dict):
@@ -257,6 +270,12 @@ def read_bundle(text: str) -> dict:
                                                            f"the predicted body weight depends on it")
             if g is not None:
                 gender, gender_path = g, _path(*where, "gender")
+            b = r.get("birthDate")
+            if b is not None:
+                if not isinstance(b, str) or not re.fullmatch(r"\d{4}(-\d{2}(-\d{2})?)?", b):
+                    raise BundleError(_path(*where, "birthDate"), f"value {b!r} is not a FHIR date (YYYY, YYYY-MM or "
+                                                                  f"YYYY-MM-DD)")
+                birth = b
             continue
         if rtype != "Observation":
             skipped.append({"code": None, "what": f"{rtype} resource", "why": "only Observations are read"})
@@ -339,7 +358,7 @@ def read_bundle(text: str) -> dict:
         if status in STATUS_NOTED:
             item["note"] = f"status {status}: confirm the final result"
         items.append(item)
-    return {"items": items, "gender": gender, "skipped": skipped}
+    return {"items": items, "gender": gender, "skipped": skipped, "birth_date": birth}
 
 
 def _note(item) -> dict:
@@ -358,11 +377,16 @@ def _one_value_per_time(items):
         seen[slot] = it
 
 
-def import_bundle(text: str, into: dict | None = None) -> tuple[dict, dict]:
+def import_bundle(text: str, into: dict | None = None, mode: str | None = None,
+                  ti_s: float | None = None) -> tuple[dict, dict]:
     """A case from a Bundle, or ``into`` (a case) with the imported observations added.
 
-    Returns (case, report) with report = {"imported": [...], "skipped": [...]} listing codes. The case
-    is validated like a case file; nothing is written here.
+    Returns (case, report) with report = {"imported": [...], "skipped": [...], "warnings": [...]} listing
+    codes. ``mode`` and ``ti_s`` give a new case the ventilation mode and inspiratory time when the bundle
+    has no coded ones. Into a case, the latest settings in force become its current settings, and patient
+    facts that differ from the case's are named in a warning (sex, height and weight are kept from the
+    case; Hb and temperature are taken from the bundle). The case is validated like a case file; nothing
+    is written here.
     """
     parsed = read_bundle(text)
     items = sorted(parsed["items"], key=lambda it: it["time"])
@@ -420,8 +444,18 @@ def import_bundle(text: str, into: dict | None = None) -> tuple[dict, dict]:
     origin["settings"] = dict(settings_origin)
     if not observations:
         raise BundleError("bundle.entry", "no arterial blood gas (PaO2, PaCO2 and pH at one time) was found")
+    warnings = []
     if case is None:
+        for key, value in (("mode", mode), ("inspiratory_time_s", ti_s)):
+            if value is not None:
+                last = observations[-1].setdefault("settings", {})
+                if key in last and last[key] != value:
+                    warnings.append(f"the bundle's {key} {last[key]} is kept; the {value} given was not needed")
+                for o in observations:
+                    o.setdefault("settings", {}).setdefault(key, value)
         case = _new_case(parsed["gender"], patient, observations)
+        if parsed.get("birth_date"):
+            case["patient"]["age_years"] = _age(parsed["birth_date"], observations[-1]["taken_at"])
     else:
         case.setdefault("observations", [])
         base = case["settings"]
@@ -432,6 +466,15 @@ def import_bundle(text: str, into: dict | None = None) -> tuple[dict, dict]:
         for k in ("hb_g_dl", "temperature_c"):
             if k in patient:
                 case["patient"][k] = patient[k]
+        facts = {"sex": parsed["gender"], "height_cm": patient.get("height_cm"), "weight_kg": patient.get("weight_kg")}
+        for k, v in facts.items():
+            if v is not None and v != case["patient"].get(k):
+                warnings.append(f"the bundle's {k.split('_')[0]} {v} differs from the case's {case['patient'].get(k)}; "
+                                f"the case's is kept (edit the case if the bundle is right)")
+        latest = observations[-1].get("settings")
+        if latest and latest != base:
+            case["settings"] = dict(latest)
+            warnings.append("the current settings are now the latest settings in force in the bundle")
     for o in case["observations"]:
         if "settings" in o and o["settings"].get("mode") == "volume" and o["settings"].get("vt_ml") is None:
             raise BundleError("bundle.entry", f"the settings in force at {o['taken_at']} are volume control without a "
@@ -444,7 +487,15 @@ def import_bundle(text: str, into: dict | None = None) -> tuple[dict, dict]:
         if where is None:
             raise
         raise BundleError(where, f"{str(exc).split(': ', 1)[-1]} (becomes the case's {exc.field})") from None
-    return case, {"imported": imported, "skipped": parsed["skipped"]}
+    return case, {"imported": imported, "skipped": parsed["skipped"], "warnings": warnings}
+
+
+def _age(birth: str, at: str) -> int:
+    """Age in whole years at the time ``at`` (ISO) of a FHIR birthDate (a year alone counts from 1 July)."""
+    parts = [int(x) for x in birth.split("-")] + [7, 1][len(birth.split("-")) - 1:]
+    y, m, d = parts[:3]
+    when = datetime.fromisoformat(at.replace("Z", "+00:00"))
+    return when.year - y - ((when.month, when.day) < (m, d))
 
 
 def _bundle_origin(field: str, origin: dict, first_new: int) -> str | None:

@@ -31,8 +31,8 @@ def test_bundle_imports_to_the_expected_case():
                                 "condition": "other"}
     first, second = case["observations"]
     assert first["taken_at"] == "2026-04-02T06:10:00Z"
-    assert first["pao2_mmhg"] == pytest.approx(9.2 * 7.50062, abs=1e-3)   # kPa -> mmHg
-    assert first["paco2_mmhg"] == pytest.approx(6.1 * 7.50062, abs=1e-3)
+    # kPa -> mmHg, at the precision the value was reported with (one decimal): 69.0 and 45.8, not 69.0057
+    assert first["pao2_mmhg"] == round(9.2 * 7.50062, 1) and first["paco2_mmhg"] == round(6.1 * 7.50062, 1)
     assert first["ph"] == 7.36 and first["sao2"] == 0.93 and first["hco3_mmol_l"] == 25.1
     assert first["pplat_cmh2o"] == 24.0
     assert first["settings"]["fio2"] == 0.55  # 55 % -> fraction; in force at 05:30
@@ -184,6 +184,9 @@ def test_into_adds_to_a_copy_and_leaves_the_existing_case_untouched(tmp_path, ca
     assert len(merged["observations"]) == 4
     assert merged["patient"]["height_cm"] == 165  # the existing patient is kept
     assert merged["patient"]["hb_g_dl"] == 11.2   # the newer haemoglobin is taken
+    # The bundle's differing patient facts are named, with what was done; its latest settings are current.
+    assert "the bundle's height 180.0 differs from the case's 165" in text and "the case's is kept" in text
+    assert merged["settings"] == merged["observations"][-1]["settings"]
     assert main(["import-fhir", str(DATA), "--into", str(existing), "--out", str(existing)]) == 2
     assert "never overwritten" in capsys.readouterr().err
 
@@ -267,3 +270,41 @@ def test_entered_in_error_is_skipped():
     case, report = import_bundle(json.dumps(b))
     assert "sao2" not in case["observations"][0]
     assert any(s["why"] == "status entered-in-error" for s in report["skipped"])
+
+
+def _without(codes):
+    def fn(b):
+        b["entry"] = [e for e in b["entry"] if e["resource"].get("code", {}).get("coding", [{}])[0].get("code")
+                      not in codes]
+    return fn
+
+
+def test_a_new_case_without_a_coded_mode_or_ti_takes_them_from_the_command(tmp_path, capsys):
+    """Issue 15: a bundle written by a general-purpose FHIR library often lacks the mode (20124-4) and Ti
+    (76334-2); a new case from it is refused, naming them, unless --mode and --ti-s are given."""
+    bundle = tmp_path / "b.json"
+    bundle.write_text(_mutate(_without({"20124-4", "76334-2"})))
+    out = tmp_path / "new.ventcast.json"
+    assert main(["import-fhir", str(bundle), "--out", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "settings.inspiratory_time_s (LOINC 76334-2)" in err and "settings.mode (LOINC 20124-4)" in err
+    assert not out.exists()
+    assert main(["import-fhir", str(bundle), "--out", str(out), "--mode", "volume", "--ti-s", "9"]) == 2
+    assert "--ti-s: value 9 is outside the accepted range 0.2 to 5 s" in capsys.readouterr().err
+    assert main(["import-fhir", str(bundle), "--out", str(out), "--mode", "volume", "--ti-s", "0.9"]) == 0
+    case = casefile.load(out)
+    assert case["settings"]["mode"] == "volume" and case["settings"]["inspiratory_time_s"] == 0.9
+
+
+def test_age_comes_from_the_birth_date():
+    def born(b):
+        patient = next(e["resource"] for e in b["entry"] if e["resource"]["resourceType"] == "Patient")
+        patient["birthDate"] = "1961-05-20"
+    case, _report = import_bundle(_mutate(born))
+    assert case["patient"]["age_years"] == 64  # on 2026-04-02, before the birthday in May
+
+    def bad(b):
+        next(e["resource"] for e in b["entry"] if e["resource"]["resourceType"] == "Patient")["birthDate"] = "20/05/61"
+    with pytest.raises(BundleError) as err:
+        import_bundle(_mutate(bad))
+    assert "birthDate" in err.value.field and "not a FHIR date" in str(err.value)

@@ -970,3 +970,32 @@ def test_bedside_loop_in_the_window(qtbot, qapp, tmp_path):
         assert forecast_check(reopened) == check
     finally:
         _close(w, qapp)
+
+
+def test_edit_and_delete_a_blood_gas_are_undoable(qtbot, qapp):
+    """Issue 15: Edit corrects an observation and Delete removes it, each one undoable step; the form shows
+    the observation in the window's unit and refuses a bad correction without changing the case."""
+    w = win.MainWindow(load_demo("ards-moderate"), synchronous=True)
+    w.ask_unsaved = lambda doing: "discard"
+    try:
+        before = copy.deepcopy(w.state.case)
+        w.kpa_action.setChecked(True)
+        newest = len(before["observations"]) - 1
+        assert w.bedside.observation_index(0) == newest  # the newest gas is on top
+        dialog = w.edit_gas_dialog(newest)
+        assert dialog.fields["pao2_mmhg"].text() == f"{round(68 / win.MMHG_PER_KPA, 2):g}"
+        dialog.fields["ph"].setText("9.5")
+        assert "pH" in dialog.error.text() and not dialog.buttons.button(QtWidgets.QDialogButtonBox.Ok).isEnabled()
+        dialog.fields["ph"].setText("7.29")
+        with qtbot.waitSignal(w.fit_shown, timeout=WAIT_MS):
+            dialog.buttons.button(QtWidgets.QDialogButtonBox.Ok).click()
+        assert w.state.case["observations"][newest]["ph"] == 7.29
+        assert w.state.case["observations"][newest]["pao2_mmhg"] == pytest.approx(68, abs=0.05)
+        w.delete_gas(0)
+        assert len(w.state.case["observations"]) == len(before["observations"]) - 1
+        w.undo_stack.undo()
+        w.undo_stack.undo()
+        assert w.state.case == before
+    finally:
+        w.kpa_action.setChecked(False)
+        _close(w, qapp)

@@ -16,6 +16,8 @@ class BedsidePanel(QtWidgets.QGroupBox):
     """Measured values of the case, shown in the window's unit."""
 
     gas_requested = QtCore.Signal()  # Add blood gas
+    edit_requested = QtCore.Signal(int)    # observation index (the case's time order)
+    delete_requested = QtCore.Signal(int)
 
     ROWS = (("pao2", "PaO2"), ("paco2", "PaCO2"), ("ph", "pH"), ("sao2", "SaO2"),
             ("settings", "Settings"), ("pf_ratio_mmhg", "P/F ratio"),
@@ -62,7 +64,25 @@ class BedsidePanel(QtWidgets.QGroupBox):
         self.history.verticalHeader().hide()
         self.history.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
         self.history.horizontalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeToContents)
+        self.history.setSelectionBehavior(QtWidgets.QAbstractItemView.SelectRows)
+        self.history.setSelectionMode(QtWidgets.QAbstractItemView.SingleSelection)
+        self.history.cellDoubleClicked.connect(lambda row, _c: self.edit_requested.emit(self.observation_index(row)))
         lay.addWidget(self.history, 1)
+        row = QtWidgets.QHBoxLayout()
+        for text, signal in (("Edit...", self.edit_requested), ("Delete", self.delete_requested)):
+            b = QtWidgets.QPushButton(text)
+            b.clicked.connect(lambda _c=False, sig=signal: self._emit_selected(sig))
+            row.addWidget(b)
+        lay.addLayout(row)
+
+    def observation_index(self, row: int) -> int:
+        """The case's observation shown in table row ``row`` (the newest is on top)."""
+        return self.history.rowCount() - 1 - row
+
+    def _emit_selected(self, signal):
+        row = self.history.currentRow()
+        if row >= 0:
+            signal.emit(self.observation_index(row))
         self.setMinimumWidth(220)
 
     def show_case(self, case: dict, units: str):

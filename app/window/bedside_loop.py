@@ -12,7 +12,7 @@ import copy
 from PySide6 import QtGui
 
 from ..casefile import CaseError, check_settings
-from ..entry import apply_change, forecast_check, stored_forecast
+from ..entry import apply_change, delete_observation, forecast_check, stored_forecast
 from .entry_forms import ApplyDialog, GasDialog, NewCaseDialog
 
 
@@ -53,6 +53,22 @@ class BedsideLoop:
         dialog.accepted.connect(lambda: self.change_case_data(dialog.result_value, "add blood gas"))
         dialog.open()
         return dialog
+
+    def edit_gas_dialog(self, index: int):
+        """Correct an observation (a typing error); one undoable step, the stored forecasts untouched."""
+        dialog = GasDialog(self.state.case, self.units, self, index=index)
+        dialog.accepted.connect(lambda: self.change_case_data(dialog.result_value, "edit blood gas"))
+        dialog.open()
+        return dialog
+
+    def delete_gas(self, index: int):
+        try:
+            new = delete_observation(self.state.case, index)
+        except CaseError as exc:
+            self.status.setText(f"\u2716 not deleted: {exc}")
+            return
+        self.change_case_data(new, "delete blood gas")
+        self.status.setText("blood gas deleted (Ctrl+Z brings it back)")
 
     def apply_trial_dialog(self):
         """Apply the trial being edited as the patient's new settings, once its likely range is on screen."""

@@ -15,7 +15,7 @@ from PySide6 import QtCore, QtWidgets
 from .. import MMHG_PER_KPA
 from ..casefile import CaseError, setting_words
 from ..engine import settings_text
-from ..entry import add_observation, new_case, settings_from_sets
+from ..entry import add_observation, new_case, replace_observation, settings_from_sets
 from ..paste import read_pasted
 from .common import CONTROLS, field_in_words, mmhg_text_in
 
@@ -168,9 +168,9 @@ class GasDialog(_Form):
            ("pplat_cmh2o", "Pplat [cmH2O]", ""), ("ppeak_cmh2o", "Ppeak [cmH2O]", ""), ("vte_ml", "Exhaled VT [mL]", ""),
            ("ve_l_min", "Minute ventilation [L/min]", ""), ("hb_g_dl", "Hb [g/dL]", ""))
 
-    def __init__(self, case: dict, units: str, parent=None):
-        super().__init__("Add blood gas", parent)
-        self.case, self.units = case, units
+    def __init__(self, case: dict, units: str, parent=None, index: int | None = None):
+        super().__init__("Add blood gas" if index is None else "Edit blood gas", parent)
+        self.case, self.units, self.index = case, units, index
         body = QtWidgets.QHBoxLayout()
         form = QtWidgets.QFormLayout()
         self.taken = QtWidgets.QDateTimeEdit(QtCore.QDateTime.currentDateTime())
@@ -212,7 +212,28 @@ class GasDialog(_Form):
         body.addLayout(paste, 1)
         self.layout_.addLayout(body)
         self._finish_layout()
+        if index is not None:
+            self._fill(case["observations"][index])
         self.revalidate()
+
+    def _fill(self, obs: dict):
+        """Show an observation for editing (in the window's unit; SaO2 in %)."""
+        taken = QtCore.QDateTime.fromString(obs["taken_at"].replace("Z", "+00:00"), QtCore.Qt.ISODate)
+        self.taken.setDateTime(taken.toLocalTime())
+        s = obs.get("settings") or self.case["settings"]
+        if not any(s == c for _t, c in self.choices):
+            self.choices.append(("as entered", s))
+            self.in_force.addItem(f"as entered: {settings_text(s)}")
+        self.in_force.setCurrentIndex(next(i for i, (_t, c) in enumerate(self.choices) if c == s))
+        for key, _label, kind in self.GAS:
+            v = obs.get(key)
+            if v is None:
+                continue
+            if kind == "gas" and self.units == "kPa":
+                v = round(v / MMHG_PER_KPA, 2)
+            elif key == "sao2":
+                v = round(100.0 * v, 2)
+            self.fields[key].setText(f"{v:g}")
 
     def read_paste(self):
         """Fill the form from the pasted text, after saying what was read (nothing is guessed)."""
@@ -253,6 +274,8 @@ class GasDialog(_Form):
         return obs
 
     def build(self) -> dict:
+        if self.index is not None:
+            return replace_observation(self.case, self.index, self.observation())
         return add_observation(self.case, self.observation())
 
 

@@ -278,6 +278,7 @@ class CaseFiles:
                 lines = [f"imported LOINC {i['code']} -> {i['into']}" for i in report["imported"]]
                 lines += [f"skipped {('LOINC ' + s['code']) if s['code'] else ''} {s['what']}: {s['why']}"
                           for s in report["skipped"]]
+                lines += [f"note: {w}" for w in report.get("warnings", [])]
                 QtWidgets.QMessageBox.information(self, "FHIR import", "\n".join(lines))
 
     # --- recovery -----------------------------------------------------------------------------------

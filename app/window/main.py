@@ -117,6 +117,8 @@ class MainWindow(BedsideLoop, ForecastPipeline, CaseFiles, TrialEditing, QtWidge
         self.step_down.step_chosen.connect(self.use_step)
         self.check_panel = ForecastCheckPanel()
         self.bedside.gas_requested.connect(self.add_gas_dialog)
+        self.bedside.edit_requested.connect(self.edit_gas_dialog)
+        self.bedside.delete_requested.connect(self.delete_gas)
         self.trial_panel.apply_requested.connect(self.apply_trial_dialog)
         self.right_tabs = QtWidgets.QTabWidget()
         for panel, title in ((self.limits_panel, "Limits"), (self.lung_fit, "Lung fit"), (self.options, "Options"),
