@@ -121,7 +121,8 @@ def read_pasted(text: str, gas_unit: str | None = None, hb_unit: str | None = No
             continue
         written = f"{m['value']} {unit}".strip() + (f" (no unit written: {inferred})" if inferred else "")
         out.values[FIELD[q]] = used
-        out.read.append({"line": n, "text": line, "quantity": q, "written": written, "used": _used_text(q, used)})
+        out.read.append({"line": n, "text": line, "quantity": q, "written": written, "used": _used_text(q, used),
+                         "value": value, "unit": unit or None})
     return out
 
 

@@ -919,6 +919,8 @@ def test_bedside_loop_in_the_window(qtbot, qapp, tmp_path):
         assert new.buttons.button(QtWidgets.QDialogButtonBox.Ok).isEnabled(), new.error.text()
         new.buttons.button(QtWidgets.QDialogButtonBox.Ok).click()
         assert w.state.case["observations"] == [] and w.fit_result is None and w.has_unsaved_work()
+        # No empty axes: the Outlook says why there is nothing to draw.
+        assert not w.outlook.graphics.isVisible() and "No blood gas yet" in w.outlook.placeholder.text()
         now = QtCore.QDateTime.currentDateTime()
         gas = w.add_gas_dialog()
         gas.taken.setDateTime(now.addSecs(-3600))

@@ -36,7 +36,7 @@ class BedsideLoop:
     def new_case_dialog(self):
         if not self.may_leave_case("start a new case"):
             return None
-        dialog = NewCaseDialog(self.state.case["settings"], self)
+        dialog = NewCaseDialog(self)
         dialog.accepted.connect(lambda: self._new_case_made(dialog))
         dialog.open()
         return dialog
@@ -121,9 +121,12 @@ class BedsideLoop:
             self.status.setText("no blood gas yet: add one (Ctrl+G) to fit the lung model")
             self.fit_message.setText("No blood gas yet: nothing is fitted or forecast. Add one with Add blood gas "
                                      "(Ctrl+G).")
+            self.outlook.show_placeholder("No blood gas yet: add one (Add blood gas, Ctrl+G) and the lung model is "
+                                          "fitted to it.")
             self._stop_busy()
             return
         self.status.setText("fitting the lung model to the observations...")
+        self.outlook.show_placeholder("No forecast yet: fitting the lung model...")
         self._start_busy(cancellable=True)
         case_copy = copy.deepcopy(self.state.case)
         self.runner.submit("fit", lambda: self._fit_work(case_copy))

@@ -16,7 +16,7 @@ from .. import MMHG_PER_KPA
 from ..casefile import CaseError, setting_words
 from ..engine import settings_text
 from ..entry import add_observation, new_case, replace_observation, settings_from_sets
-from ..paste import read_pasted
+from ..paste import FIELD, read_pasted
 from .common import CONTROLS, field_in_words, mmhg_text_in
 
 _BAD = "border: 2px solid #b00020;"
@@ -99,7 +99,7 @@ class NewCaseDialog(_Form):
                ("age_years", "Age [years]", "optional"), ("temperature_c", "Temperature [\u00b0C]", "37.0"),
                ("hb_g_dl", "Hb [g/dL]", "12.0"), ("barometric_mmhg", "Barometric pressure [mmHg]", "760"))
 
-    def __init__(self, current: dict, parent=None):
+    def __init__(self, parent=None):
         super().__init__("New case", parent)
         top = QtWidgets.QHBoxLayout()
         patient = QtWidgets.QFormLayout()
@@ -122,11 +122,10 @@ class NewCaseDialog(_Form):
         self.mode.currentIndexChanged.connect(self.revalidate)
         self.fields["mode"] = self.mode
         settings.addRow("Mode *", self.mode)
+        # Empty, never the previous patient's settings: nothing is carried over from one patient to the next.
         for key, label, unit, *_ in CONTROLS:
-            defaults = {k: str(v) for k, v in current.items() if v is not None and k != "mode"}
             w = self._line(key, "required" if key != "inspiratory_pressure_cmh2o" and key != "vt_ml" else
                            "required in its mode")
-            w.setText(defaults.get(key, ""))
             settings.addRow(f"{label} [{unit}]" if unit else label, w)
         settings.addRow("Apparatus dead space [mL]", self._line("apparatus_dead_space_ml", "0"))
         for title, form in (("Patient", patient), ("Current settings", settings)):
@@ -247,9 +246,13 @@ class GasDialog(_Form):
         if got.questions:
             text += "\nChoose the unit above and press Read again."
         self.paste_report.setText(text)
+        written = {FIELD[r["quantity"]]: r for r in got.read}
         for key, value in got.values.items():
             if key in self.fields:
-                if key.endswith("_mmhg") and self.units == "kPa":
+                r = written.get(key, {})
+                if key.endswith("_mmhg") and r.get("unit") == ("kPa" if self.units == "kPa" else "mmHg"):
+                    value = r["value"]  # written in the window's unit: shown exactly as pasted
+                elif key.endswith("_mmhg") and self.units == "kPa":
                     value = round(value / MMHG_PER_KPA, 2)
                 elif key == "sao2":
                     value = round(100.0 * value, 1)

@@ -200,6 +200,7 @@ class ForecastPipeline:
             self.wean_message.setText(f"\u2716 {escape(message)}")
         if request is not None and request.kind == "fit":
             self.fit_message.setText(f"<b>The model could not be fitted:</b> {escape(message)}")
+            self.outlook.show_placeholder(f"No forecast: the model could not be fitted ({message}).")
         if request is not None and request.kind == "draws":
             self.fit_message.setText(f"<b>No likely ranges:</b> {escape(message)}. The forecast shown is the fitted "
                                      f"estimate alone; do not act on it without a range.")

@@ -164,6 +164,14 @@ class OutlookPanel(QtWidgets.QGroupBox):
             band.hide()
             self.goal_bands[key] = band
         lay.addWidget(self.graphics, 1)
+        # Until a forecast is drawn the charts are hidden (empty axes read as a flat line at zero) and this
+        # says why.
+        self.placeholder = QtWidgets.QLabel("No forecast yet: fitting the lung model...")
+        self.placeholder.setAlignment(QtCore.Qt.AlignCenter)
+        self.placeholder.setWordWrap(True)
+        self.placeholder.setStyleSheet("QLabel { color: #555555; font-size: 14px; }")
+        lay.addWidget(self.placeholder, 1)
+        self.graphics.hide()
         self.oxygen_view = "pao2"
 
     def clear(self):
@@ -171,7 +179,14 @@ class OutlookPanel(QtWidgets.QGroupBox):
         for chart in self.charts.values():
             chart.set([], {})
         self.key.setText("")
-        self.setTitle("Outlook: no forecast for this trial (see the message by the controls)")
+        self.show_placeholder("No forecast for this trial: see the message by the controls.")
+
+    def show_placeholder(self, text: str):
+        """Hide the charts and say why there is nothing to draw."""
+        self.setTitle("Outlook: no forecast")
+        self.graphics.hide()
+        self.placeholder.setText(text)
+        self.placeholder.show()
 
     def label_axes(self, units: str, oxygen_view: str):
         """Axis titles in the unit of the window; the oxygen chart shows PaO2 or SpO2 (as SaO2, in %)."""
@@ -251,6 +266,8 @@ class OutlookPanel(QtWidgets.QGroupBox):
             self.charts[chart].set(m, values, active, flat * now_p, limit=ceiling)
         self._show_key(active, courses, missing, band is not None, units, oxygen_view)
         self.setTitle(self.TITLE)
+        self.placeholder.hide()
+        self.graphics.show()
 
     def _show_key(self, active, courses, missing, with_band, units, oxygen_view):
         def item(colour, style, text, bold=False):
