@@ -360,7 +360,7 @@ def _cmd_report(args) -> int:
 
 
 def _cmd_walkthrough(args) -> int:
-    from .walkthrough import Run, apply_actions_file, event_words, load_script
+    from .walkthrough import Run, apply_actions_file, load_script
     script, folder = load_script(args.script)
     if not args.headless:
         from .window import run as run_window
@@ -379,13 +379,8 @@ def _cmd_walkthrough(args) -> int:
         print(json.dumps(out))
         return EXIT_OK
     print(f"Walkthrough: {out['title']} (to minute {until:g})")
-    for e in out["events"]:
-        print(f"  {e['minute']:5.1f} min  event: {event_words(e['kind'], e['value'])}: {e['note']}")
-    for a in out["actions"]:
-        print(f"  {a['minute']:5.1f} min  learner: {', '.join(a['changed'])}")
-    for d in out["draws"]:
-        print(f"  {d['minute']:5.1f} min  blood gas (result at {d['ready_at']:.1f} min): PaO2 {d['pao2']:.0f} mmHg, "
-              f"PaCO2 {d['paco2']:.1f} mmHg, pH {d['ph']:.2f}, SaO2 {sao2_text(d['sao2'])}")
+    for t in out["timeline"]:  # in time order
+        print(f"  {t['minute']:5.1f} min  {t['what']}: {t['detail']}")
     c = out["course"]
     print(f"  end: PaO2 {c['pao2_mmhg'][-1]:.0f} mmHg, PaCO2 {c['paco2_mmhg'][-1]:.1f} mmHg, pH {c['ph'][-1]:.2f}")
     print(f"Score: {out['score']['met']} of {out['score']['of']}")

@@ -144,7 +144,7 @@ class Run:
     """One run of a script: the clock is the caller's; everything else is here."""
 
     def __init__(self, script: dict, folder: Path | None = None, seed: int = 0):
-        self.script = script
+        self.script, self.folder, self.seed = script, folder, seed
         self.case = resolve_case(script, folder)
         if script.get("start_settings"):
             self.case["settings"] = apply_sets(self.case, [f"{k}={v}" for k, v in script["start_settings"].items()],
@@ -234,12 +234,30 @@ class Run:
         def r(a, d):
             return [round(float(x), d) for x in np.asarray(a)[keep]]
 
-        return {"title": self.script["title"], "until_min": until,
+        events = [e for e in self.timeline.events if e.minute <= until]
+        draws = [d for d in self.timeline.draws if d.minute <= until]
+        timeline = [{"minute": e.minute, "what": f"event ({e.source})",
+                     "detail": f"{event_words(e.kind, e.value)}: {e.note}".rstrip(": ")} for e in events]
+        timeline += [{"minute": float(c["minute"]), "what": "prompt", "detail": c["prompt"]}
+                     for c in self.script.get("checkpoints", []) if c["minute"] <= until]
+        timeline += [{"minute": a["minute"], "what": "learner", "detail": ", ".join(a["changed"])}
+                     for a in self.action_log if a["minute"] <= until]
+        timeline += [{"minute": d.minute, "what": "blood gas drawn", "detail": f"result at {d.ready_at:g} min"}
+                     for d in draws]
+        timeline += [{"minute": d.ready_at, "what": "blood gas result",
+                      "detail": f"drawn at {d.minute:g} min: PaO2 {d.values['pao2']:.0f} mmHg, PaCO2 "
+                                f"{d.values['paco2']:.1f} mmHg, pH {d.values['ph']:.2f}, SaO2 "
+                                f"{100 * d.values['sao2']:.0f} %"} for d in draws if d.ready_at <= until]
+        order = {"event (script)": 0, "event (instructor)": 0, "prompt": 1, "blood gas result": 2,
+                 "blood gas drawn": 3, "learner": 4}
+        timeline.sort(key=lambda t: (t["minute"], order.get(t["what"], 5)))
+        return {"title": self.script["title"], "until_min": until, "summary": self.script.get("summary", ""),
+                "timeline": timeline,
                 "events": [{"minute": e.minute, "kind": e.kind, "value": e.value, "note": e.note, "source": e.source}
-                           for e in self.timeline.events if e.minute <= until],
+                           for e in events],
                 "actions": [a for a in self.action_log if a["minute"] <= until],
                 "draws": [{"minute": d.minute, "ready_at": d.ready_at, **{k: round(v, 4) for k, v in d.values.items()}}
-                          for d in self.timeline.draws if d.minute <= until],
+                          for d in draws],
                 "course": {"minutes": r(c.minutes, 3), "pao2_mmhg": r(c.pao2, 2), "paco2_mmhg": r(c.paco2, 2),
                            "ph": r(c.ph, 4), "sao2": r(c.sao2, 4)},
                 "score": {"items": self.score(), "met": sum(s["met"] for s in self.score()),

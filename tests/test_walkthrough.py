@@ -187,3 +187,19 @@ def test_score_and_timeline_speak_the_words_on_screen(capsys):
     text = capsys.readouterr().out
     assert "Ti at most 0.8 s by minute 15" in text and "airway resistance rises to 130 %" in text
     assert not re.search(r"\b[a-z0-9]+_[a-z0-9_]+\b", text), re.findall(r"\b[a-z0-9]+_[a-z0-9_]+\b", text)
+
+
+def test_headless_timeline_is_in_time_order_and_in_words(capsys):
+    """Issue 18: the debrief's timeline merges events, prompts, learner actions, draws and results in
+    time order (a result at 7 min before an 8-min prompt), in the words on screen."""
+    actions = [{"minute": 5, "draw": True}, {"minute": 9, "set": {"peep_cmh2o": 12}}]
+    run = Run(json.loads(built_in_text("hypoxaemia-needs-peep")))
+    from ventcast.app.walkthrough import apply_actions_file
+    apply_actions_file(run, json.dumps(actions))
+    out = run.debrief()
+    minutes = [t["minute"] for t in out["timeline"]]
+    assert minutes == sorted(minutes)
+    whats = [t["what"] for t in out["timeline"]]
+    assert whats.index("blood gas result") < whats.index("prompt", whats.index("blood gas drawn"))
+    assert any(t["detail"] == "PEEP 12 cmH2O" for t in out["timeline"] if t["what"] == "learner")
+    assert out["summary"] and "story" not in out

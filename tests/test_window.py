@@ -582,8 +582,10 @@ def test_walkthrough_mode_start_inject_draw_finish_export(qtbot, qapp, tmp_path)
     qtbot.wait(300)
     assert w.minute == paused_at
     w.advance(5.0)  # jump past the scripted event at minute 4
-    assert any("event: " in w.log.item(i).text() and "of the lung collapses" in w.log.item(i).text()
-               for i in range(w.log.count()))
+    # The script's event is the instructor's to see; the learner's log never shows it.
+    ilog = [w.instructor.log.item(i).text() for i in range(w.instructor.log.count())]
+    assert any("event: " in t and "of the lung collapses" in t for t in ilog)
+    assert not any("event" in w.log.item(i).text() for i in range(w.log.count()))
     with qtbot.waitSignal(w.course_ready, timeout=WAIT_MS):
         w.inject("metabolism_up", 1.2)
     w.draw()
@@ -1001,3 +1003,42 @@ def test_edit_and_delete_a_blood_gas_are_undoable(qtbot, qapp):
     finally:
         w.kpa_action.setChecked(False)
         _close(w, qapp)
+
+
+def test_walkthrough_learner_and_instructor_views(qtbot, qapp):
+    """Issue 18: the learner sees the opening story (not the teaching summary), monitored SpO2 and EtCO2
+    with monitor noise (never the true course: that is in the instructor's dock, with the summary and
+    upcoming events); both logs are in time order; Restart resets the clock, the logs and the score."""
+    from ventcast.app.walkthrough import built_in_text
+    script = json.loads(built_in_text("hypoxaemia-needs-peep"))
+    w = win.WalkthroughWindow(script, synchronous=True)
+    try:
+        w.show()
+        assert w.prompt.text() == script["story"] and script["summary"] not in w.prompt.text()
+        assert w.instructor_dock.isAncestorOf(w.instructor.chart)
+        assert not w.centralWidget().isAncestorOf(w.instructor.chart)
+        assert w.centralWidget().isAncestorOf(w.monitor)
+        for _ in range(12):
+            w.advance(1.0)
+        c = w.run._course
+        m = np.asarray(w.monitor.samples["minute"])
+        spo2 = np.asarray(w.monitor.samples["spo2"])
+        truth = 100 * np.interp(m, c.minutes, c.sao2)
+        assert np.all(np.abs(spo2 - np.minimum(truth, 100)) <= 4 * 2.0 + 0.5)  # monitor noise, SD 2 %
+        assert np.all(spo2 == np.round(spo2))  # a monitor shows whole per cent
+        w.draw()
+        w.advance(3.0)
+
+        def minutes(widget):
+            return [float(widget.item(i).text().split("min")[0]) for i in range(widget.count())]
+        assert minutes(w.log) == sorted(minutes(w.log)) and minutes(w.instructor.log) == sorted(minutes(w.instructor.log))
+        assert any("blood gas drawn at" in w.log.item(i).text() for i in range(w.log.count()))
+        w.finish()
+        w.restart()
+        assert w.minute == 0.0 and w.log.count() == 0 and w.instructor.log.count() == 0 and w.debrief is None
+        assert w.run.timeline.draws == [] and w.run.action_log == []
+    finally:
+        w.close()
+        w.deleteLater()
+        QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
+        qapp.processEvents()

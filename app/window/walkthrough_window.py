@@ -13,7 +13,8 @@ from ..casefile import CaseError, setting_words, write_atomic
 from ..engine import settings_dict
 from ..precision import sao2_text
 from ..worker import EngineRunner
-from .common import APP_NAME, COLOUR, CONTROLS, _axis
+from .common import APP_NAME, CONTROLS
+from .walkthrough_panels import InstructorPanel, MonitorPanel
 
 
 class WalkthroughWindow(QtWidgets.QMainWindow):
@@ -67,10 +68,15 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         self.draw_button.clicked.connect(self.draw)
         self.finish_button = QtWidgets.QPushButton("Finish and debrief")
         self.finish_button.clicked.connect(self.finish)
-        for w in (self.start_button, self.speed, self.jump_button, self.draw_button, self.finish_button):
+        self.restart_button = QtWidgets.QPushButton("Restart")
+        self.restart_button.clicked.connect(self.restart)
+        self.export_button = QtWidgets.QPushButton("Export debrief...")
+        self.export_button.clicked.connect(self.export_debrief_dialog)
+        for w in (self.start_button, self.speed, self.jump_button, self.draw_button, self.finish_button,
+                  self.restart_button, self.export_button):
             controls.addWidget(w)
         lay.addLayout(controls, 1, 0, 1, 2)
-        learner = QtWidgets.QGroupBox("Learner: settings")
+        learner = QtWidgets.QGroupBox("Ventilator settings")
         form = QtWidgets.QFormLayout(learner)
         self.learner_spins = {}
         now = settings_dict(self.run.timeline.settings)
@@ -89,49 +95,35 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         apply_button.clicked.connect(self.apply_settings)
         form.addRow(apply_button)
         lay.addWidget(learner, 2, 0)
-        instructor = QtWidgets.QGroupBox("Instructor: inject an event")
-        iform = QtWidgets.QFormLayout(instructor)
-        self.event_kind = QtWidgets.QComboBox()
-        from ventcast.physiology.scenario import EVENT_KINDS
-        for kind, (name, (lo, hi), what) in EVENT_KINDS.items():
-            self.event_kind.addItem(f"{kind} ({name} {lo:g}-{hi:g}): {what}", kind)
-        self.event_value = QtWidgets.QDoubleSpinBox()
-        self.event_value.setRange(0, 50)
-        self.event_value.setDecimals(2)
-        self.event_value.setValue(0.1)
-        inject = QtWidgets.QPushButton("Inject now")
-        inject.clicked.connect(self.inject)
-        iform.addRow("Event", self.event_kind)
-        iform.addRow("Value", self.event_value)
-        iform.addRow(inject)
-        lay.addWidget(instructor, 3, 0)
-        self.chart = pg.GraphicsLayoutWidget()
-        self.plots = {}
-        self.curves = {}
-        for i, (key, label, colour) in enumerate((("pao2", "PaO2 [mmHg]", COLOUR["pao2"]),
-                                                   ("paco2", "PaCO2 [mmHg]", COLOUR["paco2"]))):
-            p = self.chart.addPlot(row=i, col=0)
-            _axis(p, label, "minutes of the walkthrough [min]")
-            self.plots[key] = p
-            self.curves[key] = p.plot(pen=pg.mkPen(colour, width=1))
-            self.plots[key].setXRange(0, self.run.duration, padding=0.01)
-        lay.addWidget(self.chart, 2, 1, 3, 1)
+        # The learner's log: prompts, their own actions, draws and results; never the script's events.
         self.log = QtWidgets.QListWidget()
-        lay.addWidget(self.log, 4, 0)
-        self.prompt = QtWidgets.QLabel(self.run.script.get("summary", ""))
+        self.log.setWordWrap(True)  # whole lines in a narrow column
+        lay.addWidget(self.log, 3, 0)
+        self.monitor = MonitorPanel(self.run.duration, seed=int(self.run.script.get("seed", 0) or 0))
+        lay.addWidget(self.monitor, 2, 1, 2, 1)
+        # The learner reads the opening story only; the teaching summary is the instructor's.
+        self.prompt = QtWidgets.QLabel(self.run.script.get("story") or self.run.script["title"])
         self.prompt.setTextFormat(QtCore.Qt.PlainText)  # script text is shown as written, never as HTML
         self.prompt.setWordWrap(True)
-        lay.addWidget(self.prompt, 5, 0, 1, 2)
+        lay.addWidget(self.prompt, 4, 0, 1, 2)
         caution = QtWidgets.QLabel(CAUTION)
         caution.setWordWrap(True)
         caution.setStyleSheet("background: #fff4dc; border: 1px solid #b07d00; padding: 4px; font-weight: bold;")
-        lay.addWidget(caution, 6, 0, 1, 2)
+        lay.addWidget(caution, 5, 0, 1, 2)
         lay.setColumnStretch(1, 1)
         self.setCentralWidget(central)
+        self.instructor = InstructorPanel(self.run.script, self.run.duration)
+        self.instructor.inject_requested.connect(self.inject)
+        self.instructor_dock = QtWidgets.QDockWidget("Instructor (drag onto a second screen)", self)
+        self.instructor_dock.setObjectName("instructor")
+        self.instructor_dock.setWidget(self.instructor)
+        self.instructor_dock.setFeatures(QtWidgets.QDockWidget.DockWidgetMovable | QtWidgets.QDockWidget.DockWidgetFloatable)
+        self.addDockWidget(QtCore.Qt.RightDockWidgetArea, self.instructor_dock)
+        self.curves, self.plots = self.instructor.curves, self.instructor.plots  # the true course
         self.status = QtWidgets.QLabel("")
         self.status.setTextFormat(QtCore.Qt.PlainText)  # messages quote file text: never rich text
         self.statusBar().addWidget(self.status, 1)
-        self.resize(1300, 850)
+        self.resize(1500, 900)
         self._show_clock()
 
     # -- clock ----------------------------------------------------------------------------------------
@@ -154,15 +146,22 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
 
         start, end = self.minute, min(self.minute + minutes, self.run.duration)
         due = self.run.due(start, end)
-        for e in due["events"]:
-            self.log.addItem(f"{e.minute:5.1f} min  \u26a0 event: {event_words(e.kind, e.value)} \u2014 {e.note}")
-        for c in due["checkpoints"]:
-            self.log.addItem(f"{c['minute']:5.1f} min  ? {c['prompt']}")
-            self.prompt.setText(c["prompt"])
+        # Everything that fell due, in time order: (minute, for the learner too, text).
+        items = [(e.minute, False, f"{e.minute:5.1f} min  \u26a0 event: {event_words(e.kind, e.value)} \u2014 {e.note}")
+                 for e in due["events"]]
+        items += [(c["minute"], True, f"{c['minute']:5.1f} min  ? {c['prompt']}") for c in due["checkpoints"]]
         for d in due["results"]:
             v = d.values
-            self.log.addItem(f"{d.ready_at:5.1f} min  blood gas drawn at {d.minute:.1f} min: PaO2 {v['pao2']:.0f} mmHg, "
-                             f"PaCO2 {v['paco2']:.1f} mmHg, pH {v['ph']:.2f}, SaO2 {sao2_text(v['sao2'])}")
+            items.append((d.ready_at, True, f"{d.ready_at:5.1f} min  blood gas drawn at {d.minute:.1f} min: PaO2 "
+                                            f"{v['pao2']:.0f} mmHg, PaCO2 {v['paco2']:.1f} mmHg, pH {v['ph']:.2f}, "
+                                            f"SaO2 {sao2_text(v['sao2'])}"))
+        for _m, learner, text in sorted(items, key=lambda it: it[0]):
+            self.instructor.log.addItem(text)
+            if learner:
+                self.log.addItem(text)
+        if due["checkpoints"]:
+            self.prompt.setText(sorted(due["checkpoints"], key=lambda c: c["minute"])[-1]["prompt"])
+        for d in sorted(due["results"], key=lambda d: d.ready_at):
             self.result_shown.emit(d)
         self.minute = end
         self._show_clock()
@@ -173,10 +172,44 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
     def _show_clock(self):
         c = self.run._course
         if c is not None:
-            keep = c.minutes <= self.minute + 1e-9
-            for key, curve in self.curves.items():
-                curve.setData(c.minutes[keep], getattr(c, key)[keep])
+            from ..engine import settings_text
+            self.instructor.show_course(c, self.minute)
+            self.monitor.sample(self.minute, c, settings_text(settings_dict(self.run.timeline.settings_at(self.minute))))
+            self.instructor.show_upcoming(self._upcoming())
         self.clock.setText(f"Minute {self.minute:5.1f} of {self.run.duration:g}")
+
+    def _upcoming(self) -> list:
+        """The script's events and prompts still to come, for the instructor."""
+        from ..walkthrough import event_words
+        later = [(e.minute, f"{e.minute:g} min: {event_words(e.kind, e.value)}") for e in self.run.timeline.events
+                 if e.minute > self.minute]
+        later += [(c["minute"], f"{c['minute']:g} min: prompt") for c in self.run.script.get("checkpoints", [])
+                  if c["minute"] > self.minute]
+        return [t for _m, t in sorted(later)]
+
+    def restart(self):
+        """The run from minute 0: a new patient course, empty logs and score (the script is the same)."""
+        from ..walkthrough import Run
+        if self.running:
+            self.toggle()
+        self.run = Run(self.run.script, self.run.folder, seed=self.run.seed)
+        self.minute = 0.0
+        self.debrief = None
+        self.log.clear()
+        self.instructor.log.clear()
+        self.monitor.reset()
+        self.prompt.setText(self.run.script.get("story") or self.run.script["title"])
+        self.start_button.setText("Start")
+        now = settings_dict(self.run.timeline.settings)
+        for key, sp in self.learner_spins.items():
+            sp.setValue(float(now[key]))
+        self._recompute()
+        self.status.setText("restarted at minute 0")
+
+    def export_debrief_dialog(self):
+        folder = QtWidgets.QFileDialog.getExistingDirectory(self, "Export the debrief into folder")
+        if folder:
+            self.export_debrief(folder)
 
     # -- learner and instructor -----------------------------------------------------------------------
     def apply_settings(self):
@@ -191,12 +224,14 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         except (CaseError, ValueError) as exc:
             self.status.setText(f"\u2716 {exc}")
             return
-        self.log.addItem(f"{self.minute:5.1f} min  learner: " + ", ".join(setting_words(k, v) for k, v in sets.items()))
+        text = f"{self.minute:5.1f} min  learner: " + ", ".join(setting_words(k, v) for k, v in sets.items())
+        self.log.addItem(text)
+        self.instructor.log.addItem(text)
         self._recompute()
 
     def inject(self, kind: str | None = None, value: float | None = None):
-        kind = kind or self.event_kind.currentData()
-        value = float(self.event_value.value()) if value is None else float(value)
+        kind = kind or self.instructor.event_kind.currentData()
+        value = float(self.instructor.event_value.value()) if value is None else float(value)
         try:
             self.run.inject(self.minute, kind, value)
         except (CaseError, ValueError) as exc:
@@ -208,7 +243,9 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         if self.run._course is None:
             return
         d = self.run.draw(self.minute)
-        self.log.addItem(f"{self.minute:5.1f} min  blood gas drawn; result at {d['ready_at']:.1f} min")
+        text = f"{self.minute:5.1f} min  blood gas drawn; result at {d['ready_at']:.1f} min"
+        self.log.addItem(text)
+        self.instructor.log.addItem(text)
 
     def _recompute(self):
         """Recompute the course on the worker from a frozen copy of the timeline (the window may add events
@@ -267,13 +304,8 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         timeline = io.StringIO()
         w = csv.writer(timeline, lineterminator="\n")
         w.writerow(["minute [min]", "what", "detail"])
-        from ..walkthrough import event_words
-        rows = [(e["minute"], f"event ({e['source']})", f"{event_words(e['kind'], e['value'])}: {e['note']}")
-                for e in out["events"]]
-        rows += [(a["minute"], "learner", ", ".join(a["changed"])) for a in out["actions"]]
-        rows += [(d["minute"], "blood gas", f"PaO2 {d['pao2']:.1f} mmHg, PaCO2 {d['paco2']:.1f} mmHg, pH {d['ph']:.3f}, "
-                                           f"SaO2 {sao2_text(d['sao2'])}; result at {d['ready_at']:g} min") for d in out["draws"]]
-        for r in sorted(rows, key=lambda r: r[0]):
+        rows = [(t["minute"], t["what"], t["detail"]) for t in out["timeline"]]  # in time order
+        for r in rows:
             w.writerow(r)
         course = io.StringIO()
         w = csv.writer(course, lineterminator="\n")
@@ -284,11 +316,12 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         write_atomic(folder / "debrief-timeline.csv", timeline.getvalue())
         write_atomic(folder / "debrief-course.csv", course.getvalue())
         html = [f"<h1>Walkthrough debrief: {escape(out['title'])}</h1><p><b>{escape(CAUTION)}</b></p>",
+                f"<h2>Teaching summary</h2><p>{escape(out['summary'])}</p>",
                 f"<p>Score {out['score']['met']} of {out['score']['of']}</p><ul>"]
         html += [f"<li>{'(ok)' if s['met'] else '(missed)'} {escape(s['expected'])} \u2014 {escape(s['why'])}</li>"
                  for s in out["score"]["items"]]
         html.append("</ul><h2>Timeline</h2><ul>")
-        html += [f"<li>{m:.1f} min: {escape(what)} \u2014 {escape(detail)}</li>" for m, what, detail in sorted(rows)]
+        html += [f"<li>{m:.1f} min: {escape(what)} \u2014 {escape(detail)}</li>" for m, what, detail in rows]
         html.append("</ul><h2>Course</h2><p><img src='chart://pao2_mmhg' width='640'></p>"
                     "<p><img src='chart://paco2_mmhg' width='640'></p>"
                     f"<p><b>{escape(CAUTION)}</b></p>")
