@@ -26,7 +26,7 @@ from .engine import apply_sets, fit_case, settings_dict, to_settings
 
 FORMAT = "ventcast.walkthrough"
 VERSION = 1
-BUILT_IN = ("hypoxaemia-needs-peep", "hypercapnia-gas-trapping", "sudden-deterioration")
+BUILT_IN = ("hypoxaemia-needs-peep", "hypercapnia-gas-trapping", "sudden-deterioration", "slow-desaturation")
 
 
 #: Each event kind in the words on screen ({v}: its value).

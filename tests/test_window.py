@@ -1042,3 +1042,32 @@ def test_walkthrough_learner_and_instructor_views(qtbot, qapp):
         w.deleteLater()
         QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
         qapp.processEvents()
+
+
+def test_an_injected_event_reaches_the_learners_monitor(qtbot, qapp):
+    """Issue 18: the instructor injects an event (shunt up by 0.3 of cardiac output) and the learner's
+    monitored SpO2 falls within minutes, by far more than the monitor noise (SD 2 %), while the learner
+    never sees the event itself."""
+    from ventcast.app.walkthrough import built_in_text
+    w = win.WalkthroughWindow(json.loads(built_in_text("slow-desaturation")), synchronous=True)
+    try:
+        w.show()
+        for _ in range(6):
+            w.advance(0.5)  # minutes 0.5-3: before the script's first event at minute 4
+        before = np.mean(w.monitor.samples["spo2"])
+        with qtbot.waitSignal(w.course_ready, timeout=WAIT_MS):
+            w.instructor.event_kind.setCurrentIndex(w.instructor.event_kind.findData("shunt_up"))
+            w.instructor.event_value.setValue(0.3)
+            w.instructor.inject_requested.emit("shunt_up", 0.3)
+        w.advance(0.5)  # minute 3.5, still before the script's event
+        for _ in range(3):
+            w.advance(0.1)
+        after = np.mean(w.monitor.samples["spo2"][-3:])
+        assert before - after > 3 * 2.0, (before, after)
+        assert any("shunt up by 30 %" in w.instructor.log.item(i).text() for i in range(w.instructor.log.count()))
+        assert not any("shunt" in w.log.item(i).text() for i in range(w.log.count()))
+    finally:
+        w.close()
+        w.deleteLater()
+        QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
+        qapp.processEvents()

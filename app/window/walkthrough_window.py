@@ -237,6 +237,9 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         except (CaseError, ValueError) as exc:
             self.status.setText(f"\u2716 {exc}")
             return
+        from ..walkthrough import event_words
+        # Logged now: an event at the current minute is not "due" on the next tick (that starts after it).
+        self.instructor.log.addItem(f"{self.minute:5.1f} min  \u26a0 event (instructor): {event_words(kind, value)}")
         self._recompute()
 
     def draw(self):
