@@ -1037,6 +1037,8 @@ def test_walkthrough_learner_and_instructor_views(qtbot, qapp):
         w.restart()
         assert w.minute == 0.0 and w.log.count() == 0 and w.instructor.log.count() == 0 and w.debrief is None
         assert w.run.timeline.draws == [] and w.run.action_log == []
+        w.instructor.jump_requested.emit(2.0)  # the clock from the instructor's dock
+        assert w.minute == 2.0
     finally:
         w.close()
         w.deleteLater()

@@ -95,6 +95,9 @@ class InstructorPanel(QtWidgets.QWidget):
     and the full log (events included)."""
 
     inject_requested = QtCore.Signal(str, float)
+    pause_requested = QtCore.Signal()
+    jump_requested = QtCore.Signal(float)
+    restart_requested = QtCore.Signal()
 
     def __init__(self, script: dict, duration: float, parent=None):
         super().__init__(parent)
@@ -103,6 +106,14 @@ class InstructorPanel(QtWidgets.QWidget):
         summary = QtWidgets.QLabel(script.get("summary", ""))
         summary.setTextFormat(QtCore.Qt.PlainText)  # script text is shown as written, never as HTML
         summary.setWordWrap(True)
+        # The clock from the instructor's screen too (the dock may float on a second screen).
+        clock = QtWidgets.QHBoxLayout()
+        for text, slot in (("Start / pause", self.pause_requested.emit), ("Jump 5 min", lambda: self.jump_requested.emit(5.0)),
+                           ("Restart", self.restart_requested.emit)):
+            b = QtWidgets.QPushButton(text)
+            b.clicked.connect(slot)
+            clock.addWidget(b)
+        lay.addLayout(clock)
         lay.addWidget(QtWidgets.QLabel("<b>Teaching summary</b> (not shown to the learner)"))
         lay.addWidget(summary)
         self.chart = pg.GraphicsLayoutWidget()
