@@ -361,6 +361,16 @@ def _cmd_report(args) -> int:
 
 def _cmd_walkthrough(args) -> int:
     from .walkthrough import Run, apply_actions_file, load_script
+    if args.new:
+        if args.script or args.headless:
+            raise CaseError("--new", "opens the script editor on a new file: give no SCRIPT and no --headless")
+        if not args.new.endswith(".walkthrough.json"):
+            raise CaseError("--new", f"value {args.new!r} must name a .walkthrough.json file")
+        target = check_output_file("--new", args.new)
+        from .window import run as run_window
+        return run_window(editor=str(target), quit_after_ms=None if args.quit_after is None else int(args.quit_after * 1000))
+    if not args.script:
+        raise CaseError("SCRIPT", "a walkthrough script is required (a file or a built-in name), or --new FILE")
     script, folder = load_script(args.script)
     if not args.headless:
         from .window import run as run_window
@@ -612,7 +622,9 @@ def build_parser() -> argparse.ArgumentParser:
     ck.add_argument("--format", choices=("table", "json"), default="table")
     ck.set_defaults(run=_cmd_check)
     wk = sub.add_parser("walkthrough", help="a scripted teaching case: the window's Walkthrough, or --headless")
-    wk.add_argument("script", help="walkthrough script (.walkthrough.json) or a built-in name")
+    wk.add_argument("script", nargs="?", help="walkthrough script (.walkthrough.json) or a built-in name")
+    wk.add_argument("--new", metavar="FILE", help="open the script editor to write a new .walkthrough.json file")
+    wk.add_argument("--quit-after", type=float, default=None, metavar="SECONDS", help=argparse.SUPPRESS)
     wk.add_argument("--headless", action="store_true", help="run without the window and print the debrief")
     wk.add_argument("--until", type=float, default=None, help="minute the headless run stops at")
     wk.add_argument("--actions", help="learner actions for a headless run (JSON list)")

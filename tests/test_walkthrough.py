@@ -203,3 +203,16 @@ def test_headless_timeline_is_in_time_order_and_in_words(capsys):
     assert whats.index("blood gas result") < whats.index("prompt", whats.index("blood gas drawn"))
     assert any(t["detail"] == "PEEP 12 cmH2O" for t in out["timeline"] if t["what"] == "learner")
     assert out["summary"] and "story" not in out
+
+
+def test_new_script_command_opens_the_editor_and_refuses_bad_paths(tmp_path, capsys):
+    """`ventcast walkthrough --new FILE` opens the editor (offscreen here, closed after half a second);
+    a path that is not a .walkthrough.json file, or SCRIPT with --new, is refused with exit 2."""
+    import os
+    os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+    assert main(["walkthrough", "--new", str(tmp_path / "a.walkthrough.json"), "--quit-after", "0.5"]) == 0
+    assert not (tmp_path / "a.walkthrough.json").exists()  # nothing saved until Save
+    assert main(["walkthrough", "--new", str(tmp_path / "a.json")]) == 2
+    assert "--new" in capsys.readouterr().err
+    assert main(["walkthrough", "hypoxaemia-needs-peep", "--new", str(tmp_path / "b.walkthrough.json")]) == 2
+    assert main(["walkthrough"]) == 2

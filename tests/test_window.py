@@ -1073,3 +1073,39 @@ def test_an_injected_event_reaches_the_learners_monitor(qtbot, qapp):
         w.deleteLater()
         QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
         qapp.processEvents()
+
+
+def test_script_editor_builds_a_script_that_loads_and_runs_to_the_same_course(qtbot, qapp, tmp_path):
+    """Issue 18: the editor validates as it is typed with the loader's rules (a bad row is named and Save is
+    disabled), previews headless, and saves a script that `load_script` reads and that runs headless to
+    exactly the course of the built-in it was copied from."""
+    from ventcast.app.walkthrough import Run, built_in_text, load_script
+    from ventcast.app.window.script_editor import ScriptEditor
+
+    source = json.loads(built_in_text("slow-desaturation"))
+    ed = ScriptEditor(source, path=str(tmp_path / "copy.walkthrough.json"))
+    try:
+        assert ed.save_button.isEnabled(), ed.error.text()
+        ed.add_row("events", ["44", "shunt_up", "0.9", "too much"])  # 0.9 is outside 0-0.5
+        assert "events[3].value" in ed.error.text() and not ed.save_button.isEnabled()
+        ed.tables["events"].item(3, 2).setText("0.2")
+        ed.add_row("expected_actions", ["20", "setting_at_least", "colour", "3", ""])
+        assert "setting" in ed.error.text() and not ed.save_button.isEnabled()
+        t = ed.tables["expected_actions"]
+        t.setCurrentCell(t.rowCount() - 1, 0)
+        ed._remove("expected_actions")
+        t = ed.tables["events"]
+        t.setCurrentCell(3, 0)
+        ed._remove("events")
+        assert ed.save_button.isEnabled(), ed.error.text()
+        preview = ed.preview()
+        assert preview is not None and "score 0 of 2" in ed.preview_text.text()
+        assert ed.save()
+        script, folder = load_script(str(tmp_path / "copy.walkthrough.json"))
+        a, b = Run(script, folder).debrief(), Run(source).debrief()
+        assert a["course"] == b["course"] and a["timeline"] == b["timeline"]
+    finally:
+        ed.close()
+        ed.deleteLater()
+        QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
+        qapp.processEvents()

@@ -41,13 +41,14 @@ def offer_recovery(window: MainWindow, ask=None) -> bool:
 
 def run(case_path: str | None = None, demo: str | None = None, screenshot: str | None = None,
         size: tuple[int, int] = (1600, 1000), quit_after_ms: int | None = None, ask_recovery: bool = True,
-        sets=(), tab: str | None = None, walkthrough=None, case: dict | None = None) -> int:
+        sets=(), tab: str | None = None, walkthrough=None, case: dict | None = None, editor: str | None = None) -> int:
     """Start the window (``ventcast open``). With ``screenshot``, render offscreen to a PNG and exit.
 
     ``sets`` (KEY=VALUE, as in ``predict --set``) make Trial A; ``tab`` picks the right-hand panel
     ('limits', 'lung-fit', 'options', 'step-down' or 'forecast-check'; with a screenshot options and step-down are computed first).
     ``case`` is an already loaded case (the command line has read and checked it); ``walkthrough`` a
-    (script, folder) pair opens the Walkthrough window instead.
+    (script, folder) pair opens the Walkthrough window instead; ``editor`` (a new script's path) the
+    walkthrough script editor.
     """
     if screenshot:
         os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
@@ -61,6 +62,15 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
     app.setApplicationName(APP_NAME)
     app.setDesktopFileName("ventcast")  # matches the menu entry of `ventcast desktop-entry`
     app.setWindowIcon(_icon())
+    if editor is not None:
+        from .script_editor import ScriptEditor
+        ed = ScriptEditor(path=editor)
+        ed.show()
+        if quit_after_ms is not None:
+            QtCore.QTimer.singleShot(quit_after_ms, ed.close)
+        code = app.exec()
+        _dispose(ed, app)
+        return code
     if walkthrough is not None:
         script, folder = walkthrough
         wk = WalkthroughWindow(script, folder)
