@@ -143,6 +143,13 @@ class Timeline:
             changes.append(Change(minute=float(t), settings=delivered, patient=_patient_fields(p)))
         return changes
 
+    def state_at(self, minute: float):
+        """(patient model, delivered settings) in force at ``minute``: every event and action up to it."""
+        changes = self.schedule(float(minute) + 1e-9)
+        if not changes:
+            return self.patient, self.settings
+        return self.patient.replace(**changes[-1].patient), changes[-1].settings
+
     def course(self, until: float, step_s: float = 15.0) -> Course:
         """The course from minute 0 to ``until`` with every event and action so far."""
         return simulate(self.patient, self.settings, self.schedule(until), minutes=float(until), step_s=step_s)

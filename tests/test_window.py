@@ -1109,3 +1109,26 @@ def test_script_editor_builds_a_script_that_loads_and_runs_to_the_same_course(qt
         ed.deleteLater()
         QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
         qapp.processEvents()
+
+
+def test_monitor_shows_the_ventilator_readings_an_event_changes(qtbot, qapp):
+    """Issue 18: the learner's monitor shows peak pressure, total PEEP and exhaled VT as the ventilator
+    would; after the scripted bronchospasm (airway resistance x1.3 at minute 3 in the COPD script) the
+    peak pressure and total PEEP rise (more resistance: more flow-resistive pressure and a longer
+    expiratory time constant; Pepe & Marini 1982, from memory) and VT is still the set VT."""
+    from ventcast.app.walkthrough import built_in_text
+    w = win.WalkthroughWindow(json.loads(built_in_text("hypercapnia-gas-trapping")), synchronous=True)
+    try:
+        w.show()
+        w.advance(2.0)
+        before = {k: float(v.text()) for k, v in w.monitor.vent.items()}
+        w.advance(3.0)
+        after = {k: float(v.text()) for k, v in w.monitor.vent.items()}
+        assert after["ppeak"] > before["ppeak"] + 1 and after["peep_total"] > before["peep_total"]
+        vt = w.run.timeline.settings_at(5.0).vt_ml
+        assert before["vte"] == after["vte"] == round(vt)
+    finally:
+        w.close()
+        w.deleteLater()
+        QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
+        qapp.processEvents()

@@ -49,7 +49,23 @@ class MonitorPanel(QtWidgets.QGroupBox):
             grid.addWidget(name, 0, i)
             grid.addWidget(value, 1, i)
             self.values[key] = value
+        # Ventilator readings: peak pressure, total PEEP and exhaled VT (from the lung's mechanics, with the
+        # events so far), each as the ventilator displays it.
+        self.vent = {}
+        for i, (key, label) in enumerate((("ppeak", "Ppeak [cmH2O]"), ("peep_total", "total PEEP [cmH2O]"),
+                                          ("vte", "exhaled VT [mL]"), ("rr", "RR [/min]"))):
+            name = QtWidgets.QLabel(label)
+            value = QtWidgets.QLabel("-")
+            value.setStyleSheet("font-size: 16px; font-weight: bold;")
+            row, col = 2 + 2 * (i // 2), i % 2
+            grid.addWidget(name, row, col)
+            grid.addWidget(value, row + 1, col)
+            self.vent[key] = value
         lay.addLayout(grid)
+        note = QtWidgets.QLabel(f"SpO2 reads within about \u00b1{2 * SPO2_NOISE_SD:.0f} % of the arterial "
+                                f"saturation (2 SD of pulse oximetry).")
+        note.setWordWrap(True)
+        lay.addWidget(note)
         self.set_label = QtWidgets.QLabel("")
         self.set_label.setWordWrap(True)
         lay.addWidget(self.set_label)
@@ -72,8 +88,17 @@ class MonitorPanel(QtWidgets.QGroupBox):
             curve.setData([], [])
             self.values[key].setText("-")
 
-    def sample(self, minute: float, course, settings_text: str):
+    def show_ventilator(self, breathing):
+        """Ventilator readings (a Breathing of one breath): whole cmH2O and mL, as displayed."""
+        ok = bool(np.all(breathing.success))
+        for key, value in (("ppeak", breathing.ppeak), ("peep_total", breathing.peep_total),
+                           ("vte", breathing.vt_ml)):
+            self.vent[key].setText(f"{float(value):.0f}" if ok else "-")
+
+    def sample(self, minute: float, course, settings_text: str, rr: float | None = None):
         """One monitor reading at ``minute`` from the true course (plus monitor noise)."""
+        if rr is not None:
+            self.vent["rr"].setText(f"{rr:g}")
         sao2 = float(np.interp(minute, course.minutes, course.sao2))
         petco2 = float(np.interp(minute, course.minutes, course.petco2))
         spo2 = float(np.clip(round(100.0 * sao2 + self.rng.normal(0.0, SPO2_NOISE_SD)), 0, 100))

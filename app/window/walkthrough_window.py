@@ -175,9 +175,14 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
     def _show_clock(self):
         c = self.run._course
         if c is not None:
+            from ventcast.physiology.mechanics.ventilator import breathe
+
             from ..engine import settings_text
             self.instructor.show_course(c, self.minute)
-            self.monitor.sample(self.minute, c, settings_text(settings_dict(self.run.timeline.settings_at(self.minute))))
+            learner = self.run.timeline.settings_at(self.minute)
+            self.monitor.sample(self.minute, c, settings_text(settings_dict(learner)), rr=float(learner.rr))
+            patient, delivered = self.run.timeline.state_at(self.minute)
+            self.monitor.show_ventilator(breathe(delivered, patient.mechanics, pbw_kg=patient.pbw_kg))
             self.instructor.show_upcoming(self._upcoming())
         self.clock.setText(f"Minute {self.minute:5.1f} of {self.run.duration:g}")
 
