@@ -90,8 +90,10 @@ def read_csv(text: str) -> tuple[list, list]:
     return rows[0], [[num(x) for x in r] for r in rows[1:]]
 
 
-def chart_images(forecasts: dict, width: int = 900, height: int = 300) -> dict:
-    """PNG images (QImage) of the PaO2, PaCO2 and pH courses of every trial, drawn offscreen."""
+def chart_images(forecasts: dict, width: int = 900, height: int = 300, marks=(),
+                 xlabel: str = "minutes after the change [min]") -> dict:
+    """PNG images (QImage) of the PaO2, PaCO2 and pH courses of every trial, drawn offscreen; ``marks``
+    ((minute, label) pairs, e.g. a walkthrough learner's actions) are drawn as labelled vertical lines."""
     import numpy as np
     import pyqtgraph as pg
     from PySide6 import QtCore, QtGui
@@ -105,7 +107,7 @@ def chart_images(forecasts: dict, width: int = 900, height: int = 300) -> dict:
         p = w.getPlotItem()
         p.addLegend(offset=(10, 10))
         p.setLabel("left", label)
-        p.setLabel("bottom", "minutes after the change [min]")
+        p.setLabel("bottom", xlabel)
         for axis in ("left", "bottom"):
             p.getAxis(axis).enableAutoSIPrefix(False)
             p.getAxis(axis).setPen("k")
@@ -120,7 +122,11 @@ def chart_images(forecasts: dict, width: int = 900, height: int = 300) -> dict:
                 fill = QtGui.QColor(colour)
                 fill.setAlpha(45)
                 p.addItem(pg.FillBetweenItem(lo, hi, brush=pg.mkBrush(fill)))
-            p.plot(x, y, pen=pg.mkPen(colour, width=2), name=f"Trial {trial}")
+            p.plot(x, y, pen=pg.mkPen(colour, width=2), name=f"Trial {trial}" if len(trial) == 1 else trial)
+        for i, (minute, text) in enumerate(marks):
+            line = pg.InfiniteLine(pos=float(minute), angle=90, pen=pg.mkPen("#444444", style=QtCore.Qt.DashLine),
+                                   label=text, labelOpts={"position": 0.95 - 0.12 * (i % 4), "color": "#222222"})
+            p.addItem(line)
         images[key] = w.grab().toImage().copy()
         w.deleteLater()
     QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)

@@ -1132,3 +1132,38 @@ def test_monitor_shows_the_ventilator_readings_an_event_changes(qtbot, qapp):
         w.deleteLater()
         QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
         qapp.processEvents()
+
+
+def test_debrief_export_marks_the_learners_actions_on_the_true_course(qtbot, qapp, tmp_path, monkeypatch):
+    """Issue 18: the exported debrief's charts are the true course with the learner's actions and draws
+    marked at their minutes; the timeline CSV is in time order."""
+    from ventcast.app import report
+    from ventcast.app.walkthrough import built_in_text
+    seen = {}
+    real = report.chart_images
+
+    def spy(forecasts, **kwargs):
+        seen.update(kwargs)
+        return real(forecasts, **kwargs)
+
+    monkeypatch.setattr(report, "chart_images", spy)
+    w = win.WalkthroughWindow(json.loads(built_in_text("slow-desaturation")), synchronous=True)
+    try:
+        w.advance(16.0)
+        w.draw()
+        w.advance(2.0)
+        w.learner_spins["peep_cmh2o"].setValue(10)
+        with qtbot.waitSignal(w.course_ready, timeout=WAIT_MS):
+            w.apply_settings()
+        w.advance(5.0)
+        files = w.export_debrief(str(tmp_path))
+        assert len(files) == 3
+        assert seen["marks"] == [(16.0, "gas drawn"), (18.0, "PEEP 10 cmH2O")]
+        rows = (tmp_path / "debrief-timeline.csv").read_text().splitlines()[1:]
+        minutes = [float(r.split(",")[0]) for r in rows]
+        assert minutes == sorted(minutes)
+    finally:
+        w.close()
+        w.deleteLater()
+        QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
+        qapp.processEvents()

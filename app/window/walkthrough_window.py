@@ -338,7 +338,10 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
                     f"<p><b>{escape(CAUTION)}</b></p>")
         course_for_chart = {"course": {"minutes": c["minutes"], "pao2_mmhg": c["pao2_mmhg"], "paco2_mmhg": c["paco2_mmhg"],
                                        "ph": c["ph"]}}
-        images = chart_images({"run": course_for_chart})
+        # The learner's actions (and draws) marked on the true course.
+        marks = [(t["minute"], t["detail"] if t["what"] == "learner" else "gas drawn") for t in out["timeline"]
+                 if t["what"] in ("learner", "blood gas drawn")]
+        images = chart_images({"true course": course_for_chart}, marks=marks, xlabel="minutes of the walkthrough [min]")
         write_pdf(folder / "debrief.pdf", "\n".join(html), images)
         files = [str(folder / n) for n in ("debrief-timeline.csv", "debrief-course.csv", "debrief.pdf")]
         self.status.setText("exported " + ", ".join(files))
