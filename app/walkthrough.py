@@ -213,8 +213,10 @@ class Run:
         for ex in self.script.get("expected_actions", []):
             t = float(ex["by_minute"])
             if ex["what"] == "draw":
-                met = any(d.minute <= t for d in self.timeline.draws)
-                text = f"a blood gas drawn by minute {t:g}"
+                first = min((d.minute for d in self.timeline.draws), default=None)
+                met = first is not None and first <= t
+                when = "none drawn" if first is None else f"first drawn at minute {first:g}"
+                text = f"a blood gas drawn by minute {t:g} ({when})"
             else:
                 value = settings_dict(self.timeline.settings_at(t)).get(ex["setting"])
                 met = value is not None and (value >= ex["value"] if ex["what"] == "setting_at_least" else value <= ex["value"])

@@ -1033,7 +1033,11 @@ def test_walkthrough_learner_and_instructor_views(qtbot, qapp):
             return [float(widget.item(i).text().split("min")[0]) for i in range(widget.count())]
         assert minutes(w.log) == sorted(minutes(w.log)) and minutes(w.instructor.log) == sorted(minutes(w.instructor.log))
         assert any("blood gas drawn at" in w.log.item(i).text() for i in range(w.log.count()))
-        w.finish()
+        out = w.finish()
+        learner_log = [w.log.item(i).text() for i in range(w.log.count())]
+        assert any(t.startswith("Teaching summary: ") for t in learner_log)  # in the debrief, not before
+        assert any("a blood gas drawn by minute 10 (first drawn at minute 12)" in t for t in learner_log), learner_log
+        assert out["score"]["of"] == 2
         w.restart()
         assert w.minute == 0.0 and w.log.count() == 0 and w.instructor.log.count() == 0 and w.debrief is None
         assert w.run.timeline.draws == [] and w.run.action_log == []

@@ -290,10 +290,17 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         if self.run._course is None:
             return None
         out = self.run.debrief(self.minute if self.minute > 0 else None)
-        self.log.addItem(f"Debrief: score {out['score']['met']} of {out['score']['of']}")
+        # The debrief is for both: the score, why each expected action was met or missed, and now the
+        # teaching summary the learner did not see during the run.
+        lines = [f"Debrief: score {out['score']['met']} of {out['score']['of']}"]
         for s in out["score"]["items"]:
             mark = "\u2713" if s["met"] else "\u2716"
-            self.log.addItem(f"   [{mark}] {s['expected']} \u2014 {s['why']}")
+            lines.append(f"   [{mark}] {s['expected']} \u2014 {s['why']}")
+        if out.get("summary"):
+            lines.append(f"Teaching summary: {out['summary']}")
+        for text in lines:
+            self.log.addItem(text)
+            self.instructor.log.addItem(text)
         self.debrief = out
         self.finished.emit(out)
         return out
