@@ -533,6 +533,13 @@ SET_HELP = ("change one setting for the trial: KEY=VALUE, repeatable. Keys: mode
             + "; inspiratory_time_s shorter than the breath")
 
 
+def _in_place_options(p) -> None:
+    """--out, --force and --format of a command that changes a case file in place unless --out is given."""
+    p.add_argument("--out", default=None, help="write the new case here instead of changing CASE")
+    p.add_argument("--force", action="store_true", help="replace --out if it exists")
+    p.add_argument("--format", choices=("table", "json"), default="table")
+
+
 def build_parser() -> argparse.ArgumentParser:
     from . import version
     parser = _Parser(prog="ventcast", description="Forecast blood gases after a ventilator setting change. "
@@ -605,17 +612,13 @@ def build_parser() -> argparse.ArgumentParser:
                     help="unit of pasted gas pressures written without one")
     ag.add_argument("--paste-hb-unit", choices=("g/dL", "g/L", "mmol/L"), default=None,
                     help="unit of a pasted Hb written without one")
-    ag.add_argument("--out", default=None, help="write the new case here instead of changing CASE")
-    ag.add_argument("--force", action="store_true", help="replace --out if it exists")
-    ag.add_argument("--format", choices=("table", "json"), default="table")
+    _in_place_options(ag)
     ag.set_defaults(run=_cmd_add_gas)
     ap = sub.add_parser("apply", help="record that the ventilator was changed, with the forecast made for the change")
     ap.add_argument("case", help="case file (.ventcast.json); changed in place unless --out is given")
     ap.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", help="the new settings. " + SET_HELP.split(": ", 1)[1])
     ap.add_argument("--at", default=None, help="time of the change, ISO 8601 with its zone (default: now)")
-    ap.add_argument("--out", default=None, help="write the new case here instead of changing CASE")
-    ap.add_argument("--force", action="store_true", help="replace --out if it exists")
-    ap.add_argument("--format", choices=("table", "json"), default="table")
+    _in_place_options(ap)
     ap.set_defaults(run=_cmd_apply)
     ck = sub.add_parser("check", help="each stored forecast against the blood gas measured after its change")
     ck.add_argument("case", help="case file (.ventcast.json)")

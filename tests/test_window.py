@@ -1044,10 +1044,7 @@ def test_walkthrough_learner_and_instructor_views(qtbot, qapp):
         w.instructor.jump_requested.emit(2.0)  # the clock from the instructor's dock
         assert w.minute == 2.0
     finally:
-        w.close()
-        w.deleteLater()
-        QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
-        qapp.processEvents()
+        _dispose_walkthrough(w, qapp)
 
 
 def test_an_injected_event_reaches_the_learners_monitor(qtbot, qapp):
@@ -1073,10 +1070,7 @@ def test_an_injected_event_reaches_the_learners_monitor(qtbot, qapp):
         assert any("shunt up by 30 %" in w.instructor.log.item(i).text() for i in range(w.instructor.log.count()))
         assert not any("shunt" in w.log.item(i).text() for i in range(w.log.count()))
     finally:
-        w.close()
-        w.deleteLater()
-        QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
-        qapp.processEvents()
+        _dispose_walkthrough(w, qapp)
 
 
 def test_script_editor_builds_a_script_that_loads_and_runs_to_the_same_course(qtbot, qapp, tmp_path):
@@ -1132,10 +1126,7 @@ def test_monitor_shows_the_ventilator_readings_an_event_changes(qtbot, qapp):
         vt = w.run.timeline.settings_at(5.0).vt_ml
         assert before["vte"] == after["vte"] == round(vt)
     finally:
-        w.close()
-        w.deleteLater()
-        QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
-        qapp.processEvents()
+        _dispose_walkthrough(w, qapp)
 
 
 def test_debrief_export_marks_the_learners_actions_on_the_true_course(qtbot, qapp, tmp_path, monkeypatch):
@@ -1167,7 +1158,11 @@ def test_debrief_export_marks_the_learners_actions_on_the_true_course(qtbot, qap
         minutes = [float(r.split(",")[0]) for r in rows]
         assert minutes == sorted(minutes)
     finally:
-        w.close()
-        w.deleteLater()
-        QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
-        qapp.processEvents()
+        _dispose_walkthrough(w, qapp)
+
+
+def _dispose_walkthrough(w, qapp):
+    w.close()
+    w.deleteLater()
+    QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
+    qapp.processEvents()

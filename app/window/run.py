@@ -64,22 +64,10 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
     app.setWindowIcon(_icon())
     if editor is not None:
         from .script_editor import ScriptEditor
-        ed = ScriptEditor(path=editor)
-        ed.show()
-        if quit_after_ms is not None:
-            QtCore.QTimer.singleShot(quit_after_ms, ed.close)
-        code = app.exec()
-        _dispose(ed, app)
-        return code
+        return _run_until_closed(app, ScriptEditor(path=editor), quit_after_ms)
     if walkthrough is not None:
         script, folder = walkthrough
-        wk = WalkthroughWindow(script, folder)
-        wk.show()
-        if quit_after_ms is not None:
-            QtCore.QTimer.singleShot(quit_after_ms, wk.close)
-        code = app.exec()
-        _dispose(wk, app)
-        return code
+        return _run_until_closed(app, WalkthroughWindow(script, folder), quit_after_ms)
     if case is None:
         case = load(case_path) if case_path else load_demo(demo or "ards-moderate")
     trials = {"A": apply_sets(case, sets), "B": None, "C": None} if sets else None
@@ -124,6 +112,16 @@ def run(case_path: str | None = None, demo: str | None = None, screenshot: str |
     window.show()
     if ask_recovery:
         offer_recovery(window)  # over the window, once it is on screen
+    if quit_after_ms is not None:
+        QtCore.QTimer.singleShot(quit_after_ms, window.close)
+    code = app.exec()
+    _dispose(window, app)
+    return code
+
+
+def _run_until_closed(app, window, quit_after_ms: int | None) -> int:
+    """Show ``window`` and run the event loop until it closes (or after ``quit_after_ms``, for tests)."""
+    window.show()
     if quit_after_ms is not None:
         QtCore.QTimer.singleShot(quit_after_ms, window.close)
     code = app.exec()
