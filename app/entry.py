@@ -171,7 +171,7 @@ def forecast_check(case: dict) -> dict:
                 continue  # taken at other settings (entered as before the change): not this forecast's gas
             after = (taken - start).total_seconds() / 60.0
             forecast, rng, inside = {}, {}, {}
-            for key, *_ in CHECKED:
+            for key, _name, _unit, digits in CHECKED:
                 if after <= minutes[-1]:
                     value = float(np.interp(after, minutes, np.asarray(course[key], dtype=float)))
                     lo = float(np.interp(after, minutes, np.asarray(course[_band_key(key, "low")], dtype=float)))
@@ -180,7 +180,8 @@ def forecast_check(case: dict) -> dict:
                     value = float(stored["steady"][key])
                     lo, hi = (float(x) for x in stored["likely_range"][key])
                 forecast[key], rng[key] = value, [lo, hi]
-                inside[key] = bool(lo <= float(obs[key]) <= hi)
+                # Judged as shown: the range at the quantity's clinical precision (app.precision).
+                inside[key] = bool(round(lo, digits) <= round(float(obs[key]), digits) <= round(hi, digits))
             pairs.append({"applied_at": change["applied_at"], "settings": change["settings"],
                           "gas_taken_at": obs["taken_at"], "minutes_after_change": round(after, 1),
                           "measured": {k: obs[k] for k, *_ in CHECKED}, "forecast": forecast, "likely_range": rng,

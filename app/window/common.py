@@ -78,9 +78,9 @@ SHORTCUTS = (
     ("Ctrl+N", "new case"), ("Ctrl+O", "open a case file"),
     ("Ctrl+S", "save the case (trials, goals, gases and applied changes included)"),
     ("Ctrl+G", "add a blood gas (typed or pasted)"), ("Ctrl+Shift+A", "apply the trial to the patient"),
-    ("Ctrl+Shift+S", "save as"), ("Ctrl+Z / Ctrl+Shift+Z", "undo / redo a trial change"),
+    ("Ctrl+Shift+S", "save as"), ("Ctrl+Z / Ctrl+Shift+Z", "undo / redo a trial or data change"),
     ("Ctrl+1 / 2 / 3", "edit Trial A / B / C"), ("Ctrl+R", "reset the trial to the current settings"),
-    ("Ctrl+K", "switch mmHg / kPa"), ("Ctrl+Shift+O", "switch the oxygen chart PaO2 / SaO2"),
+    ("Ctrl+K", "switch mmHg / kPa"), ("Ctrl+Shift+O", "switch the oxygen chart PaO2 / SpO2 (%)"),
     ("F1", "this list"), ("Ctrl+Q", "quit"),
 )
 

@@ -63,7 +63,7 @@ def build_menus(self) -> None:
     self.kpa_action.setChecked(self.units == "kPa")
     self.kpa_action.setShortcut(QtGui.QKeySequence("Ctrl+K"))
     self.kpa_action.toggled.connect(lambda on: self.set_units("kPa" if on else "mmHg"))
-    self.sao2_action = v.addAction("Oxygen chart shows SaO2")
+    self.sao2_action = v.addAction("Oxygen chart shows SpO2 (the model's SaO2, in %)")
     self.sao2_action.setCheckable(True)
     self.sao2_action.setChecked(self.oxygen_view == "sao2")
     self.sao2_action.setShortcut(QtGui.QKeySequence("Ctrl+Shift+O"))
