@@ -1087,6 +1087,8 @@ def test_script_editor_builds_a_script_that_loads_and_runs_to_the_same_course(qt
         ed.add_row("events", ["44", "shunt_up", "0.9", "too much"])  # 0.9 is outside 0-0.5
         assert "events[3].value" in ed.error.text() and not ed.save_button.isEnabled()
         ed.tables["events"].item(3, 2).setText("0.2")
+        kind = ed.tables["events"].cellWidget(3, 1)  # chosen in words, kept as the file's key
+        assert kind.currentText().startswith("shunt up by this fraction") and kind.currentData() == "shunt_up"
         ed.add_row("expected_actions", ["20", "setting_at_least", "colour", "3", ""])
         assert "setting" in ed.error.text() and not ed.save_button.isEnabled()
         t = ed.tables["expected_actions"]

@@ -94,6 +94,18 @@ class ScriptEditor(QtWidgets.QDialog):
         self.revalidate()
 
     # -- rows -----------------------------------------------------------------------------------------
+    def _choices(self, key: str, column: int):
+        """(file key, words on screen) offered in a column chosen from a list, or None for typed cells."""
+        from ventcast.physiology.scenario import EVENT_KINDS
+        if key == "events" and column == 1:
+            return [(k, f"{what} ({name} {lo:g}-{hi:g})") for k, (name, (lo, hi), what) in EVENT_KINDS.items()]
+        if key == "expected_actions" and column == 1:
+            return [("draw", "a blood gas drawn"), ("setting_at_least", "setting at least"),
+                    ("setting_at_most", "setting at most")]
+        if key == "expected_actions" and column == 2:
+            return [("", "(none: a draw)")] + [(k, SETTING_WORDS[k][0]) for k in SETTING_WORDS if k != "mode"]
+        return None
+
     def add_row(self, key: str, values: list | None = None):
         t = self.tables[key]
         t.blockSignals(True)
@@ -102,7 +114,21 @@ class ScriptEditor(QtWidgets.QDialog):
         defaults = {"events": ["5", self.event_kinds[0], "0.1", ""], "checkpoints": ["10", ""],
                     "expected_actions": ["15", "draw", "", "", ""]}[key]
         for c, v in enumerate(values or defaults):
-            t.setItem(r, c, QtWidgets.QTableWidgetItem("" if v is None else str(v)))
+            text = "" if v is None else str(v)
+            choices = self._choices(key, c)
+            if choices is None:
+                t.setItem(r, c, QtWidgets.QTableWidgetItem(text))
+                continue
+            # Chosen in words; the file keeps its key. A key the list does not know (an old or hand-written
+            # script) is shown as it is, so that the loader's refusal can name it.
+            combo = QtWidgets.QComboBox()
+            for k, words in choices:
+                combo.addItem(words, k)
+            if combo.findData(text) < 0:
+                combo.addItem(text, text)
+            combo.setCurrentIndex(combo.findData(text))
+            combo.currentIndexChanged.connect(self.revalidate)
+            t.setCellWidget(r, c, combo)
         t.blockSignals(False)
         self.revalidate()
 
@@ -130,6 +156,9 @@ class ScriptEditor(QtWidgets.QDialog):
 
     # -- the document ---------------------------------------------------------------------------------
     def _cell(self, key, r, c) -> str:
+        widget = self.tables[key].cellWidget(r, c)
+        if isinstance(widget, QtWidgets.QComboBox):
+            return str(widget.currentData() or "")
         item = self.tables[key].item(r, c)
         return "" if item is None else item.text().strip()
 
