@@ -174,8 +174,8 @@ def forecast_check(case: dict) -> dict:
             for key, _name, _unit, digits in CHECKED:
                 if after <= minutes[-1]:
                     value = float(np.interp(after, minutes, np.asarray(course[key], dtype=float)))
-                    lo = float(np.interp(after, minutes, np.asarray(course[_band_key(key, "low")], dtype=float)))
-                    hi = float(np.interp(after, minutes, np.asarray(course[_band_key(key, "high")], dtype=float)))
+                    lo = float(np.interp(after, minutes, np.asarray(course[band_key(key, "low")], dtype=float)))
+                    hi = float(np.interp(after, minutes, np.asarray(course[band_key(key, "high")], dtype=float)))
                 else:  # past the course: the steady state and its range
                     value = float(stored["steady"][key])
                     lo, hi = (float(x) for x in stored["likely_range"][key])
@@ -191,7 +191,8 @@ def forecast_check(case: dict) -> dict:
             "caution": CAUTION}
 
 
-def _band_key(key: str, end: str) -> str:
+def band_key(key: str, end: str) -> str:
+    """The course key of a quantity's band edge: ('pao2_mmhg', 'low') -> 'pao2_low'."""
     return f"{key.replace('_mmhg', '')}_{end}"
 
 

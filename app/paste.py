@@ -13,7 +13,7 @@ import re
 from dataclasses import dataclass, field
 
 from . import MMHG_PER_KPA
-from .casefile import CaseError
+from .casefile import OBSERVATION_RANGES, CaseError
 
 #: Labels (lower case, without spaces, dots, brackets and a trailing "-" or "(a)") -> quantity.
 LABELS = {
@@ -29,22 +29,27 @@ LABELS = {
 NOT_USED = {"be", "beecf", "beb", "sbe", "abe", "lactate", "lac", "clac", "na", "na+", "k", "k+", "cl", "cl-",
             "ca", "ca++", "ca2+", "glucose", "glu", "cglu", "cohb", "fcohb", "methb", "fmethb", "o2hb", "fo2hb",
             "hhb", "fhhb", "hct", "temp", "t", "fio2", "p50", "ctco2", "tco2", "aniongap", "ag", "osm", "crea",
-            "ctbil", "bili", "sbc", "hco3std", "pao2/fio2", "pf", "ctO2".lower(), "p/f"}
+            "ctbil", "bili", "sbc", "hco3std", "pao2/fio2", "pf", "cto2", "p/f"}
 #: Units (lower case, without spaces) -> canonical unit.
 UNITS = {"mmhg": "mmHg", "torr": "mmHg", "kpa": "kPa", "%": "%", "mmol/l": "mmol/L", "meq/l": "mmol/L",
          "g/dl": "g/dL", "g/l": "g/L"}
-#: Plausible ranges per quantity and unit (outside them a reading in that unit is refused).
-PLAUSIBLE = {("pao2", "mmHg"): (20.0, 700.0), ("pao2", "kPa"): (2.7, 93.0), ("paco2", "mmHg"): (10.0, 150.0),
-             ("paco2", "kPa"): (1.3, 20.0), ("petco2", "mmHg"): (0.0, 150.0), ("petco2", "kPa"): (0.0, 20.0),
-             ("ph", ""): (6.5, 8.0), ("sao2", "%"): (30.0, 100.0), ("sao2", ""): (0.3, 1.0),
-             ("hco3", "mmol/L"): (2.0, 60.0), ("hb", "g/dL"): (4.0, 22.0), ("hb", "g/L"): (40.0, 220.0),
-             ("hb", "mmol/L"): (2.5, 13.6)}
+#: Hb in mmol/L (of the monomer) to g/dL: x 1.611 (64 458 g/mol / 4; common practice).
+HB_G_DL_PER_MMOL_L = 1.611
+#: Accepted ranges per quantity and unit (outside them a reading in that unit is refused): the case
+#: file's own ranges (``casefile.OBSERVATION_RANGES``), in kPa too; SaO2 from 30 % (a reading below is not a
+#: plausible arterial saturation); Hb as the case schema's 4-22 g/dL, also in g/L and mmol/L.
+PLAUSIBLE = {("ph", ""): OBSERVATION_RANGES["ph"][:2], ("hco3", "mmol/L"): OBSERVATION_RANGES["hco3_mmol_l"][:2],
+             ("sao2", "%"): (30.0, 100.0), ("sao2", ""): (0.3, 1.0), ("hb", "g/dL"): (4.0, 22.0),
+             ("hb", "g/L"): (40.0, 220.0), ("hb", "mmol/L"): (round(4.0 / HB_G_DL_PER_MMOL_L, 1),
+                                                              round(22.0 / HB_G_DL_PER_MMOL_L, 1))}
+for _q in ("pao2", "paco2", "petco2"):
+    _lo, _hi, _unit = OBSERVATION_RANGES[f"{_q}_mmhg"]
+    PLAUSIBLE[(_q, "mmHg")] = (_lo, _hi)
+    PLAUSIBLE[(_q, "kPa")] = (round(_lo / MMHG_PER_KPA, 1), round(_hi / MMHG_PER_KPA, 1))
 #: Case-file field of each quantity.
 FIELD = {"pao2": "pao2_mmhg", "paco2": "paco2_mmhg", "ph": "ph", "sao2": "sao2", "hco3": "hco3_mmol_l",
          "petco2": "petco2_mmhg", "hb": "hb_g_dl"}
 NAME = {"pao2": "PaO2", "paco2": "PaCO2", "ph": "pH", "sao2": "SaO2", "hco3": "HCO3", "petco2": "PetCO2", "hb": "Hb"}
-#: Hb in mmol/L (of the monomer) to g/dL: x 1.611 (64 458 g/mol / 4; common practice).
-HB_G_DL_PER_MMOL_L = 1.611
 
 # A label (it may hold digits: pCO2, HCO3-, ctHb), then ":" or "=" or at least one space, then the value.
 _LINE = re.compile(r"^\s*(?P<label>[A-Za-z][A-Za-z0-9+/\-\s().]*?)(?:\s*[:=]\s*|\s+)(?P<flag>[<>]?)\s*"

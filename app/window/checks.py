@@ -7,8 +7,11 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from ..entry import CHECKED, tally_text
+from ..entry import CHECKED, band_key, tally_text
 from .common import TRIAL_STYLE, _axis, kpa_from_mmhg, wrapped_table
+
+
+NAMES = {key: name for key, name, _unit, _d in CHECKED}
 
 
 class ForecastCheckPanel(QtWidgets.QWidget):
@@ -87,11 +90,10 @@ class ForecastCheckPanel(QtWidgets.QWidget):
         for key, plot in self.plots.items():
             conv = kpa_from_mmhg if unit == "kPa" else (lambda x: x)
             low, high, line, points = self.items[key]
-            stem = key.replace("_mmhg", "")
-            low.setData(m, conv(np.asarray(course[f"{stem}_low"], dtype=float)))
-            high.setData(m, conv(np.asarray(course[f"{stem}_high"], dtype=float)))
+            low.setData(m, conv(np.asarray(course[band_key(key, "low")], dtype=float)))
+            high.setData(m, conv(np.asarray(course[band_key(key, "high")], dtype=float)))
             line.setData(m, conv(np.asarray(course[key], dtype=float)))
             points.setData([min(p["minutes_after_change"], float(m[-1])) for p in same],
                            [conv(float(p["measured"][key])) for p in same])
-            _axis(plot, f"{'PaO2' if stem == 'pao2' else 'PaCO2'} [{unit}]", "after the change [min]")
+            _axis(plot, f"{NAMES[key]} [{unit}]", "after the change [min]")
         self.graphics.show()

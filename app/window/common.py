@@ -12,6 +12,7 @@ import sys
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
@@ -198,6 +199,21 @@ def no_si_prefix(axis: pg.AxisItem) -> None:
     axis.labelUnitPrefix = ""
     axis.picture = None  # the tick strings are drawn again
     axis.update()
+
+
+def fit_y(plot: pg.PlotItem, values, span: float):
+    """Y range of ``plot`` around the finite ``values``, at least ``span`` wide (so that noise or
+    solver-size wiggles never fill a chart), with 8 % padding."""
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v)]
+    if not v.size:
+        return
+    lo, hi = float(v.min()), float(v.max())
+    if hi - lo < span:
+        mid = 0.5 * (lo + hi)
+        lo, hi = mid - 0.5 * span, mid + 0.5 * span
+    pad = 0.08 * (hi - lo)
+    plot.setYRange(lo - pad, hi + pad, padding=0)
 
 
 def _axis(plot: pg.PlotItem, left: str, bottom: str = "after the change [min]"):

@@ -12,12 +12,11 @@ from html import escape
 
 from PySide6 import QtCore, QtWidgets
 
-from .. import MMHG_PER_KPA
 from ..casefile import CaseError, setting_words
 from ..engine import settings_text
-from ..entry import add_observation, new_case, replace_observation, settings_from_sets
+from ..entry import add_observation, kpa_to_mmhg, new_case, replace_observation, settings_from_sets
 from ..paste import FIELD, read_pasted
-from .common import CONTROLS, field_in_words, mmhg_text_in
+from .common import CONTROLS, field_in_words, kpa_from_mmhg, mmhg_text_in
 
 _BAD = "border: 2px solid #b00020;"
 
@@ -149,10 +148,10 @@ class NewCaseDialog(_Form):
             if key not in patient:
                 raise CaseError(f"patient.{key}", "required")
         sets = [f"mode={self.mode.currentText()}"]
+        unused = "inspiratory_pressure_cmh2o" if self.mode.currentText() == "volume" else "vt_ml"  # not in this mode
         for key, *_ in list(CONTROLS) + [("apparatus_dead_space_ml",)]:
             v = _number(self.fields[key].text(), f"settings.{key}")
-            size = {"volume": "vt_ml", "pressure": "inspiratory_pressure_cmh2o"}
-            if v is not None and (key not in size.values() or key == size[self.mode.currentText()]):
+            if v is not None and key != unused:
                 sets.append(f"{key}={v!r}")
         settings = settings_from_sets(patient, sets, where="settings")
         return new_case(patient, settings, label=self.label.text().strip() or None,
@@ -229,7 +228,7 @@ class GasDialog(_Form):
             if v is None:
                 continue
             if kind == "gas" and self.units == "kPa":
-                v = round(v / MMHG_PER_KPA, 2)
+                v = round(kpa_from_mmhg(v), 2)
             elif key == "sao2":
                 v = round(100.0 * v, 2)
             self.fields[key].setText(f"{v:g}")
@@ -253,7 +252,7 @@ class GasDialog(_Form):
                 if key.endswith("_mmhg") and r.get("unit") == ("kPa" if self.units == "kPa" else "mmHg"):
                     value = r["value"]  # written in the window's unit: shown exactly as pasted
                 elif key.endswith("_mmhg") and self.units == "kPa":
-                    value = round(value / MMHG_PER_KPA, 2)
+                    value = round(kpa_from_mmhg(value), 2)
                 elif key == "sao2":
                     value = round(100.0 * value, 1)
                 self.fields[key].setText(f"{value:g}")
@@ -267,7 +266,7 @@ class GasDialog(_Form):
             if v is None:
                 continue
             if kind == "gas" and self.units == "kPa":
-                v = round(v * MMHG_PER_KPA, 1)
+                v = kpa_to_mmhg(v)
             if key == "sao2":
                 v = round(v / 100.0, 4)  # entered in %
             obs[key] = v

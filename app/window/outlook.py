@@ -11,7 +11,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from .common import NOW_STYLE, STYLE_GLYPH, TRIAL_STYLE, TRIALS, _axis, kpa_from_mmhg
+from .common import NOW_STYLE, STYLE_GLYPH, TRIAL_STYLE, TRIALS, _axis, fit_y, kpa_from_mmhg
 
 def _pen(colour: str, style, width: float):
     return pg.mkPen(QtGui.QColor(colour), width=width, style=style)
@@ -105,14 +105,8 @@ class OutlookChart:
             self.limit.hide()
         if self.x.size:
             self.plot.setXRange(0, float(self.x[-1]), padding=0.01)
-        finite = np.concatenate([a[np.isfinite(a)] for a in ys]) if ys else np.array([])
-        if finite.size:
-            lo, hi = float(finite.min()), float(finite.max())
-            if hi - lo < self.min_span:
-                mid = 0.5 * (hi + lo)
-                lo, hi = mid - 0.5 * self.min_span, mid + 0.5 * self.min_span
-            pad = 0.08 * (hi - lo)
-            self.plot.setYRange(lo - pad, hi + pad, padding=0)
+        if ys:
+            fit_y(self.plot, np.concatenate([np.ravel(a) for a in ys]), self.min_span)
 
     def _moved(self, pos):
         vb = self.plot.getViewBox()

@@ -39,9 +39,7 @@ class ScriptEditor(QtWidgets.QDialog):
             sp.setRange(lo, hi)
             sp.setValue(v)
             sp.valueChanged.connect(self.revalidate)
-        for w in (self.title,):
-            w.textChanged.connect(self.revalidate)
-        for w in (self.story, self.summary):
+        for w in (self.title, self.story, self.summary):
             w.textChanged.connect(self.revalidate)
         self.case.currentTextChanged.connect(self.revalidate)
         form.addRow("Title *", self.title)

@@ -8,28 +8,15 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
-from .common import COLOUR, OKABE_ITO, _axis
+from .common import COLOUR, OKABE_ITO, _axis, fit_y
 
 #: Monitor noise, one SD: pulse oximetry about 2 % (accuracy figures of pulse oximeters are about
 #: 2-3 % SpO2 for SaO2 above 70 %; from memory), end-tidal CO2 about 1 mmHg (common practice).
 SPO2_NOISE_SD = 2.0
 ETCO2_NOISE_SD = 1.0
-#: Smallest y spans drawn (so noise or solver-size wiggles never look like a collapse).
+#: Smallest y spans drawn, so noise or solver-size wiggles never look like a collapse (clinical minimum
+#: spans; common practice).
 MIN_SPAN = {"spo2": 10.0, "etco2": 10.0, "pao2": 20.0, "paco2": 10.0}
-
-
-def fit_y(plot: pg.PlotItem, values, span: float):
-    """Y range of ``plot`` around ``values``, at least ``span`` wide."""
-    v = np.asarray(values, dtype=float)
-    v = v[np.isfinite(v)]
-    if not v.size:
-        return
-    lo, hi = float(v.min()), float(v.max())
-    if hi - lo < span:
-        mid = 0.5 * (lo + hi)
-        lo, hi = mid - 0.5 * span, mid + 0.5 * span
-    pad = 0.08 * (hi - lo)
-    plot.setYRange(lo - pad, hi + pad, padding=0)
 
 
 class MonitorPanel(QtWidgets.QGroupBox):
@@ -103,6 +90,9 @@ class MonitorPanel(QtWidgets.QGroupBox):
         petco2 = float(np.interp(minute, course.minutes, course.petco2))
         spo2 = float(np.clip(round(100.0 * sao2 + self.rng.normal(0.0, SPO2_NOISE_SD)), 0, 100))
         etco2 = float(max(round(petco2 + self.rng.normal(0.0, ETCO2_NOISE_SD)), 0))
+        if self.samples["minute"] and self.samples["minute"][-1] >= minute:
+            for key in self.samples:  # the clock has not moved (a recomputed course): one reading per minute shown
+                self.samples[key].pop()
         self.samples["minute"].append(minute)
         self.samples["spo2"].append(spo2)
         self.samples["etco2"].append(etco2)
