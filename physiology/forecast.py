@@ -123,7 +123,7 @@ def _masked(result, ok):
 
 
 def predict(patient: PatientModel, settings: Settings, start: dict | None = None,
-            tol: float = 1e-4) -> Prediction:
+            tol: float = 1e-4, units: str = "full") -> Prediction:
     """Steady-state mechanics and blood gases for ``settings`` in ``patient`` (batched).
 
     A case fails (``success`` False, NaN numbers, a reason in ``message``) when its mechanics do
@@ -150,7 +150,7 @@ def predict(patient: PatientModel, settings: Settings, start: dict | None = None
         hb=patient.hb, temperature=patient.temperature, barometric=patient.barometric,
         base_excess=patient.base_excess, series_ventilation=np.nan_to_num(br.series_ventilation, nan=0.0),
     )
-    gas = solve_steady_state(lung, tol=tol, start=start)
+    gas = solve_steady_state(lung, tol=tol, start=start, units=units)
     # End-tidal PCO2: the engine gives the mixed alveolar PCO2 (alveolar dead space included); end-tidal
     # gas sits between it and the arterial by the patient's end-tidal share.
     mixed_alveolar = gas.petco2

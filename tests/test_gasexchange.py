@@ -307,3 +307,24 @@ def test_domain_properties(fio2, shunt, log_sd, alveolar_ventilation, cardiac_ou
         assert r.pao2[1] >= r.pao2[0] - 1e-6 * r.pao2[0]
     if r.success[0] and r.success[2]:
         assert r.paco2[2] <= r.paco2[0] + 1e-6 * r.paco2[0]
+
+
+def test_coarse_unit_grid_is_close_to_the_full_one():
+    """The coarse grid (UNIT_GRIDS["coarse"], a third of the units) is only the posterior sampler's proposal
+    device: its draws are corrected to the full lung (tests/test_fitting.py checks the correction). It
+    must stay close enough to keep that correction cheap: over 4,000 random cases of the domain (a
+    low-V/Q mode in 40 %), PaO2 and PaCO2 differ from the full grid's by under 0.1 measurement SD in the
+    median case and under 1 SD in 99 % of cases (physiology.measurement: SD = a + b x value)."""
+    from ventcast.physiology.measurement import SD
+
+    cases = LungParameters(**_random_lungs(4000, 5))
+    full, coarse = solve_steady_state(cases), solve_steady_state(cases, units="coarse")
+    ok = full.success & coarse.success
+    assert ok.sum() > 0.95 * full.success.sum()
+    for q in ("pao2", "paco2"):
+        ref = getattr(full, q)[ok]
+        error = np.abs(getattr(coarse, q)[ok] - ref) / (SD[q][0] + SD[q][1] * ref)
+        print(q, "median", np.median(error), "p99", np.percentile(error, 99), "max", error.max())
+        assert np.median(error) < 0.1 and np.percentile(error, 99) < 1.0, q
+    with pytest.raises(ValueError, match="units"):
+        solve_steady_state(cases, units="fine")
