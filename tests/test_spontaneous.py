@@ -98,3 +98,68 @@ def test_spontaneous_inputs_are_refused_with_their_ranges():
         supported_breath(8.0, 5.0, 10.0, 50.0, 5.0, 30.0, 3.0)
     with pytest.raises(ValueError, match=r"cycle off fraction"):
         supported_breath(8.0, 5.0, 10.0, 50.0, 5.0, 20.0, 1.0, cycle_off_fraction=0.95)
+
+
+# --- step-down of pressure support --------------------------------------------------------------------
+
+def _supported_patient(c_max, resistance, shunt=0.05):
+    from ventcast.physiology.forecast import PatientModel
+    from ventcast.physiology.mechanics.ventilator import Mechanics
+    return PatientModel(pbw_kg=70, shunt_fixed=shunt, log_sd=0.6, dead_space_fraction=0.15, hb=12, vco2=200.0,
+                        mechanics=Mechanics(resistance=resistance, c_max=c_max, anatomic_dead_space_ml=120.0))
+
+
+def test_support_step_down_reaches_the_trial_with_both_bounds_and_names_every_broken_rule():
+    """A patient breathing 520 mL at 18/min on PS 12 (compliance 45 mL/cmH2O; effort estimated from that
+    VT): support falls 12 -> 10 -> 8, the trial conditions (PS <= 8 on PEEP 5; MacIntyre 2001, Boles
+    2007). Each step has
+    both bounds; effort unchanged loses alveolar ventilation, so its PaCO2 rises step by step; drive
+    preserved keeps the alveolar ventilation of now, so its PaCO2 stays within 3 mmHg of now's. Every
+    bound lists exactly the stop rules its own numbers break (checked here independently)."""
+    from ventcast.physiology.planning.support import PH_MIN, RATE_MAX, TRIAL_SUPPORT_MAX, support_step_down
+
+    model = _supported_patient(c_max=45, resistance=10)
+    pmus = effort_from_tidal_volume(520, 12, 5, 10, 45, 18, 1.0)["pmus_cmh2o"]
+    assert pmus > 1.0
+    plan = support_step_down(model, 0.35, 5, 12, pmus, 18, 1.0, 10, 45, spo2_goal=0.9)
+    assert [s.pressure_support for s in plan["steps"]] == [10.0, 8.0] and 8.0 <= TRIAL_SUPPORT_MAX
+    assert plan["reached_trial_conditions"] and plan["stopped_because"] is None
+    now = plan["now"]
+    assert now["vt_ml"] == pytest.approx(520, abs=3)
+    same = [s.bounds["effort_unchanged"]["paco2"] for s in plan["steps"]]
+    assert now["paco2"] + 3 < same[0] < same[1] - 3
+    for s in plan["steps"]:
+        kept = s.bounds["drive_preserved"]
+        assert abs(kept["paco2"] - now["paco2"]) < 3.0
+        for b in s.bounds.values():
+            expected = [w for w, bad in (("rate", b["rr_per_min"] > RATE_MAX), ("RSBI", b["rsbi"] > RSBI_FAILURE),
+                                         ("SaO2", not b["sao2"] >= 0.9), ("pH", not b["ph"] >= PH_MIN),
+                                         ("Pmus", b["pmus_cmh2o"] > PMUS_EXCESSIVE)) if bad]
+            assert [w.split()[0] for w in b["breaks"]] == expected
+
+
+def test_support_step_down_stops_at_the_step_that_would_break_a_rule_and_says_which():
+    """A stiff lung (compliance 28 mL/cmH2O) breathing 26/min at 380 mL on PS 16: lowering support soon
+    makes the drive-preserved bound breathe rapidly and shallowly; the plan lists that step with the
+    rules named and ends there (Yang & Tobin 1991: RSBI above 105)."""
+    from ventcast.physiology.planning.support import support_step_down
+
+    model = _supported_patient(c_max=28, resistance=14, shunt=0.08)
+    pmus = effort_from_tidal_volume(380, 16, 5, 14, 28, 26, 0.8)["pmus_cmh2o"]
+    plan = support_step_down(model, 0.4, 5, 16, pmus, 26, 0.8, 14, 28)
+    assert not plan["reached_trial_conditions"]
+    last = plan["steps"][-1]
+    assert last.breaks and plan["stopped_because"].startswith(f"at pressure support {last.pressure_support:g} cmH2O")
+    assert all(w in plan["stopped_because"] for w in last.breaks)
+    assert all(not s.breaks for s in plan["steps"][:-1])
+
+
+def test_support_matching_the_current_tidal_volume():
+    """The first pressure-support level for a patient leaving controlled ventilation gives the VT they
+    have now with their effort (round trip through the breath model, within 0.3 cmH2O)."""
+    from ventcast.physiology.planning.support import support_matching_vt
+
+    vt = float(supported_breath(11.0, 5.0, 10.0, 55.0, 4.0, 20.0, 1.0).vt_ml)
+    assert support_matching_vt(vt, 5.0, 10.0, 55.0, 4.0, 20.0, 1.0) == pytest.approx(11.0, abs=0.3)
+    with pytest.raises(ValueError, match="outside what pressure support 0 to 40 cmH2O gives"):
+        support_matching_vt(3000.0, 5.0, 10.0, 55.0, 4.0, 20.0, 1.0)
