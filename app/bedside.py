@@ -24,9 +24,20 @@ def bedside_indices(case: dict, observation_index: int = -1) -> dict:
     pplat = obs.get("pplat_cmh2o")
     dp = (pplat - peep) if pplat is not None else None
     crs = (vt / dp) if (vt and dp and dp > 0) else None
-    ve = obs.get("ve_l_min") or (vt * s["rr_per_min"] / 1000.0 if vt else None)
+    # On pressure support or CPAP the rate is the patient's own (the set rate is only the backup).
+    rr = obs.get("spontaneous_rr_per_min") or s["rr_per_min"]
+    ve = obs.get("ve_l_min") or (vt * rr / 1000.0 if vt else None)
     sao2 = obs.get("sao2")
+    spontaneous = obs.get("spontaneous_rr_per_min")
+    pocc = obs.get("delta_pocc_cmh2o")
     return {
+        "spontaneous_rr_per_min": spontaneous,
+        # Yang & Tobin 1991: f / VT, of a patient breathing on their own (pressure support or CPAP).
+        "rsbi": (spontaneous / (vt / 1000.0)) if (spontaneous and vt) else None,
+        "p01_cmh2o": obs.get("p01_cmh2o"),
+        "delta_pocc_cmh2o": pocc,
+        # Bertoni 2019 (coefficient from memory): Pmus = -3/4 x the expiratory occlusion swing.
+        "pmus_from_pocc_cmh2o": (-0.75 * pocc) if pocc is not None else None,
         "pf_ratio_mmhg": pf,
         "alveolar_po2_mmhg": pa_o2,
         "aa_gradient_mmhg": pa_o2 - obs["pao2_mmhg"],

@@ -25,14 +25,18 @@ from ventcast.physiology.gasexchange.alveolar import alveolar_po2
 from ventcast.physiology.indices import predicted_body_weight
 
 FORMAT = "ventcast.case"
-VERSION = 2  # 2 adds settings_history (a version-1 file reads unchanged)
+VERSION = 3  # 2 adds settings_history; 3 the pressure-support and cpap modes and effort measurements (older files read unchanged)
 MAX_BYTES = 1_000_000
-DEMO_NAMES = ("ards-moderate", "copd-trapping", "postop-wean", "refractory-shunt")
+DEMO_NAMES = ("ards-moderate", "copd-trapping", "postop-wean", "refractory-shunt", "support-trial")
 
 #: Defaults for optional fields, documented in the README.
 PATIENT_DEFAULTS = {"temperature_c": 37.0, "barometric_mmhg": 760.0, "hb_g_dl": 12.0, "age_years": None,
                     "condition": "other"}
 SETTINGS_DEFAULTS = {"apparatus_dead_space_ml": 0.0, "vt_ml": None, "inspiratory_pressure_cmh2o": None}
+#: Modes in which the patient breathes: every breath is the patient's, supported (or not, on CPAP).
+SPONTANEOUS_MODES = ("pressure-support", "cpap")
+#: Flow-cycling criterion when a pressure-support case does not give one [fraction of peak flow].
+CYCLE_OFF_DEFAULT = 0.25
 
 # (low, high, unit) accepted in code, after the schema.
 SETTING_RANGES = {
@@ -41,12 +45,16 @@ SETTING_RANGES = {
     "inspiratory_time_s": (0.2, 5.0, "s"),
     "inspiratory_pressure_cmh2o": (1.0, 50.0, "cmH2O"),
     "apparatus_dead_space_ml": (0.0, 300.0, "mL"),
+    "pressure_support_cmh2o": (0.0, 40.0, "cmH2O"),
+    "cycle_off_fraction": (0.05, 0.8, "(fraction of peak flow)"),
 }
 #: Settings in the words on screen: (name, unit with its leading space).
 SETTING_WORDS = {"mode": ("mode", ""), "fio2": ("FiO2", ""), "peep_cmh2o": ("PEEP", " cmH2O"), "vt_ml": ("VT", " mL"),
                  "rr_per_min": ("RR", "/min"), "inspiratory_time_s": ("Ti", " s"),
                  "inspiratory_pressure_cmh2o": ("inspiratory pressure", " cmH2O"),
-                 "apparatus_dead_space_ml": ("apparatus dead space", " mL")}
+                 "apparatus_dead_space_ml": ("apparatus dead space", " mL"),
+                 "pressure_support_cmh2o": ("pressure support", " cmH2O"),
+                 "cycle_off_fraction": ("cycling at", " of peak flow")}
 
 
 def setting_words(key: str, value=None, relation: str = "") -> str:
@@ -73,6 +81,9 @@ OBSERVATION_RANGES = {
     "ve_l_min": (0.5, 40.0, "L/min"),
     "vco2_ml_min": (50.0, 800.0, "mL/min"),
     "cardiac_output_l_min": (1.0, 20.0, "L/min"),
+    "spontaneous_rr_per_min": (4.0, 70.0, "/min"),
+    "p01_cmh2o": (0.0, 20.0, "cmH2O"),
+    "delta_pocc_cmh2o": (-60.0, 0.0, "cmH2O (a swing below PEEP is negative)"),
 }
 #: PaO2 may exceed the ideal alveolar PO2 by at most this much before we refuse [mmHg].
 PAO2_ABOVE_ALVEOLAR_TOLERANCE = 10.0
@@ -202,9 +213,26 @@ def check_settings(field: str, settings: dict, pbw_kg: float) -> dict:
             raise CaseError(f"{field}.vt_ml", "required in volume mode")
         lo, hi = 2.0 * pbw_kg, 20.0 * pbw_kg
         _check(f"{field}.vt_ml", s["vt_ml"], round(lo), round(hi), "mL (2 to 20 mL/kg PBW)")
-    else:
+    elif s["mode"] == "pressure":
         if s.get("inspiratory_pressure_cmh2o") is None:
             raise CaseError(f"{field}.inspiratory_pressure_cmh2o", "required in pressure mode")
+    else:  # pressure-support or cpap: the patient sets VT and rate; RR and Ti are the ventilator's backup
+        for key in ("vt_ml", "inspiratory_pressure_cmh2o"):
+            if s.get(key) is not None:
+                raise CaseError(f"{field}.{key}", f"applies in {'volume' if key == 'vt_ml' else 'pressure'} mode "
+                                                  f"only, and this block is in {s['mode']} mode")
+        if s["mode"] == "pressure-support":
+            if s.get("pressure_support_cmh2o") is None:
+                raise CaseError(f"{field}.pressure_support_cmh2o", "required in pressure-support mode")
+        elif s.get("pressure_support_cmh2o") not in (None, 0, 0.0):
+            raise CaseError(f"{field}.pressure_support_cmh2o", f"value {s['pressure_support_cmh2o']:g} cmH2O is not "
+                                                               f"accepted in cpap mode (no support); use pressure-support")
+        if s.get("cycle_off_fraction") is None:
+            s["cycle_off_fraction"] = CYCLE_OFF_DEFAULT
+    for key in ("pressure_support_cmh2o", "cycle_off_fraction"):
+        if s["mode"] not in SPONTANEOUS_MODES and s.get(key) is not None:
+            raise CaseError(f"{field}.{key}", f"applies in pressure-support mode only, and this block is in "
+                                              f"{s['mode']} mode")
     breath = 60.0 / s["rr_per_min"]
     if s["inspiratory_time_s"] >= breath:
         raise CaseError(f"{field}.inspiratory_time_s",
@@ -279,6 +307,12 @@ def validate(doc) -> dict:
                 _check(f"{field}.{key}", obs[key], lo, hi, unit)
         if obs.get("sao2") is not None:
             check_fraction_field(f"{field}.sao2", obs["sao2"])
+        if obs["settings"]["mode"] in SPONTANEOUS_MODES:
+            # The patient's own breathing is what the model is fitted to: it must be measured.
+            for key in ("vte_ml", "spontaneous_rr_per_min"):
+                if obs.get(key) is None:
+                    raise CaseError(f"{field}.{key}", f"required for a blood gas taken in {obs['settings']['mode']} "
+                                                      f"mode (the patient's own VT and rate)")
         fio2 = obs["settings"]["fio2"]
         pa_ideal = float(alveolar_po2(fio2, obs["paco2_mmhg"], 0.8, pb, min(max(t, 20.0), 45.0)))
         if obs["pao2_mmhg"] > pa_ideal + PAO2_ABOVE_ALVEOLAR_TOLERANCE:

@@ -117,9 +117,15 @@ def _cmd_predict(args) -> int:
         print(json.dumps(out))
         return EXIT_OK
     s = out["settings"]
-    drive = (f"VT {s['vt_ml']:g} mL" if s["mode"] == "volume" else f"Pinsp {s['inspiratory_pressure_cmh2o']:g} cmH2O")
-    print(f"Trial settings: {s['mode']} control, FiO2 {s['fio2']:.2f}, PEEP {s['peep_cmh2o']:g} cmH2O, {drive}, "
-          f"RR {s['rr_per_min']:g}/min, Ti {s['inspiratory_time_s']:g} s")
+    if s["mode"] in ("pressure-support", "cpap"):
+        support = (f"pressure support {s['pressure_support_cmh2o']:g} cmH2O (cycling at "
+                   f"{100 * s['cycle_off_fraction']:.0f} % of peak flow)" if s["mode"] == "pressure-support" else "CPAP")
+        print(f"Trial settings: {support}, FiO2 {s['fio2']:.2f}, PEEP {s['peep_cmh2o']:g} cmH2O, backup RR "
+              f"{s['rr_per_min']:g}/min")
+    else:
+        drive = (f"VT {s['vt_ml']:g} mL" if s["mode"] == "volume" else f"Pinsp {s['inspiratory_pressure_cmh2o']:g} cmH2O")
+        print(f"Trial settings: {s['mode']} control, FiO2 {s['fio2']:.2f}, PEEP {s['peep_cmh2o']:g} cmH2O, {drive}, "
+              f"RR {s['rr_per_min']:g}/min, Ti {s['inspiratory_time_s']:g} s")
     f = out["fit"]
     print(f"Lung fit: shunt {f['shunt_fraction']:.2f}, V/Q log SD {f['vq_log_sd']:.2f}, alveolar dead space "
           f"{f['alveolar_dead_space_fraction']:.2f}, VCO2 {f['vco2_ml_min']:.0f} mL/min, cardiac output "
@@ -127,7 +133,8 @@ def _cmd_predict(args) -> int:
     print("Model assumes: " + "; ".join(f["assumptions"]))
     print()
     width = max(len(row[0]) for row in STEADY_ROWS)
-    print(f"{'Forecast (steady state)':<{width + 2}} {'value':>9}  likely range (90 %)")
+    heading = "Forecast (steady state)" if not out.get("spontaneous") else "Forecast (effort unchanged)"
+    print(f"{heading:<{width + 2}} {'value':>9}  likely range (90 %)")
     rng = out["likely_range"]
     for title, key, unit, d in STEADY_ROWS:
         band = ""
@@ -137,6 +144,8 @@ def _cmd_predict(args) -> int:
             band = f"{scale * lo:.{d}f} to {scale * hi:.{d}f}"
         value = out["steady"][key]
         print(f"  {title:<{width}} {_num(None if value is None else scale * value, d):>9} {unit:<9} {band}")
+    if out.get("spontaneous"):
+        _print_spontaneous(out["spontaneous"])
     if out["settings"] == out.get("current_settings"):
         print("\nThe trial equals the current settings: no change is expected.")
     elif out.get("recheck_after_min") is not None:
@@ -155,11 +164,29 @@ def _cmd_predict(args) -> int:
     return EXIT_OK
 
 
+def _print_spontaneous(sp: dict) -> None:
+    """The two bounds of a forecast on pressure support or CPAP, side by side, and the effort now."""
+    e = sp["effort_now"]
+    print(f"\nBreathing on support: now VT {e['vt_ml']:.0f} mL at {e['rr_per_min']:.0f}/min (RSBI {e['rsbi']:.0f}); "
+          f"effort Pmus {e['pmus_cmh2o']:.1f} cmH2O ({e['pmus_basis']}); the breath model, held to the measured VT, "
+          f"needs {e['pmus_model_cmh2o']:.1f}; dynamic transpulmonary driving pressure "
+          + ("-" if e["dpl_dyn_cmh2o"] is None else f"{e['dpl_dyn_cmh2o']:.1f} cmH2O ({e['dpl_dyn_basis']})"))
+    rows = (("VT", "vt_ml", "mL", 0), ("rate", "rr_per_min", "/min", 0), ("RSBI", "rsbi", "/min/L", 0),
+            ("Pmus", "pmus_cmh2o", "cmH2O", 1), ("PaCO2", "paco2_mmhg", "mmHg", 1), ("pH", "ph", "", 2),
+            ("PaO2", "pao2_mmhg", "mmHg", 0))
+    b1, b2 = sp["bounds"]["effort_unchanged"], sp["bounds"]["drive_preserved"]
+    print(f"  {'':<7} {'effort unchanged':>17} {'drive preserved':>17}")
+    for title, key, unit, d in rows:
+        print(f"  {title:<7} {_num(b1[key], d):>17} {_num(b2[key], d):>17}  {unit}")
+    for name, words in (("effort_unchanged", "effort unchanged"), ("drive_preserved", "drive preserved")):
+        print(f"  {words}: {sp['meaning'][name]}")
+
+
 def _cmd_fit(args) -> int:
-    from .engine import fit_block, fit_case, now_block, to_settings
+    from .engine import current_settings, fit_block, fit_case, now_block
     case = _load_case(args)
     _patient, _obs, result = fit_case(case)
-    block = fit_block(result, to_settings(case["settings"]))
+    block = fit_block(result, current_settings(case))
     out = rounded({"now": now_block(case), "fit": block, "caution": CAUTION})
     if args.format == "json":
         print(json.dumps(out))
@@ -272,6 +299,9 @@ def _cmd_wean(args) -> int:
     if args.format == "json":
         print(json.dumps(out))
         return EXIT_OK
+    if out.get("mode") in ("pressure-support", "cpap"):
+        _print_support_wean(out)
+        return EXIT_OK
     how = f"following the ARDS Network {args.table} table" if args.table else "model-driven"
     print(f"Step-down plan ({how}) toward FiO2 <= {args.target_fio2:.2f} and PEEP <= {args.target_peep:g} cmH2O: "
           f"{out['message']}.")
@@ -290,6 +320,33 @@ def _cmd_wean(args) -> int:
     print()
     print(CAUTION)
     return EXIT_OK
+
+
+def _print_support_wean(out: dict) -> None:
+    """The step-down of pressure support as text: each step's two bounds side by side."""
+    e = out["effort_now"]
+    print(f"Step-down of pressure support toward the breathing trial (support <= "
+          f"{out['target']['pressure_support_cmh2o']:g} cmH2O on PEEP <= {out['target']['peep_cmh2o']:g}): "
+          f"{out['message']}.")
+    print(f"Now: pressure support {e['pressure_support_cmh2o']:g} cmH2O, VT {e['vt_ml']:.0f} mL at "
+          f"{e['rr_per_min']:.0f}/min (RSBI {e['rsbi']:.0f}), effort Pmus {e['pmus_cmh2o']:.1f} cmH2O "
+          f"({e['pmus_basis']}).")
+    for i, st in enumerate(out["steps"], 1):
+        print(f"\n{i}. {st['change']}")
+        for name, words in (("effort_unchanged", "effort unchanged"), ("drive_preserved", "drive preserved")):
+            b = st["bounds"][name]
+            print(f"   {words:<17} VT {b['vt_ml']:.0f} mL, rate {b['rr_per_min']:.0f}/min, RSBI {b['rsbi']:.0f}, "
+                  f"Pmus {b['pmus_cmh2o']:.1f} cmH2O, PaCO2 {b['paco2']:.1f} mmHg, pH {b['ph']:.2f}, SaO2 "
+                  f"{sao2_text(b['sao2'])}" + (f"  [breaks: {'; '.join(b['breaks'])}]" if b["breaks"] else ""))
+        print(f"   {st['stop_if']}")
+    if out["stopped_because"]:
+        print(f"\nStopped {out['stopped_because']}.")
+    elif out["reached_target"]:
+        print("\nThe breathing-trial conditions are reached at the last step.")
+    if out.get("note"):
+        print(out["note"])
+    print()
+    print(CAUTION)
 
 
 def _check_output_path(option: str, path: Path, force: bool) -> None:

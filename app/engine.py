@@ -23,6 +23,8 @@ from ventcast.physiology.forecast import predict
 from ventcast.physiology.indices import oxygenation_index
 from ventcast.physiology.mechanics.motion import mean_airway_pressure, mechanical_power_simplified
 from ventcast.physiology.mechanics.recruitment import aerated_volume
+from ventcast.physiology.mechanics.spontaneous import (DPL_DYN_EXCESSIVE, PMUS_EXCESSIVE, RSBI_FAILURE,
+                                                       effort_from_occlusion, effort_from_tidal_volume, support_bounds)
 from ventcast.physiology.mechanics.ventilator import BEYOND_CAPACITY, NO_ALVEOLAR_VENTILATION, Settings
 from ventcast.physiology.planning.search import Goals, margins, search
 from ventcast.physiology.planning.stepdown import step_down
@@ -30,18 +32,42 @@ from ventcast.physiology.protocols import LIMITS
 
 from . import CAUTION
 from .bedside import bedside_indices
-from .casefile import CaseError, check_settings
+from .casefile import CYCLE_OFF_DEFAULT, SPONTANEOUS_MODES, CaseError, check_settings
 from .precision import decimals_for, sao2_text
 
 SETTING_KEYS = ("mode", "fio2", "peep_cmh2o", "vt_ml", "inspiratory_pressure_cmh2o", "rr_per_min",
-                "inspiratory_time_s", "apparatus_dead_space_ml")
+                "inspiratory_time_s", "apparatus_dead_space_ml", "pressure_support_cmh2o", "cycle_off_fraction")
+MODES = ("volume", "pressure", "pressure-support", "cpap")
+#: Share of a spontaneous breath spent in neural inspiration (Ti/Ttot about 0.35-0.4 in spontaneously
+#: breathing patients; common practice). Sets the effort's timing and the inspiratory time of the
+#: volume-controlled breath that stands in for a supported one in the lung model.
+NEURAL_DUTY = 0.35
 
 
 class ModelError(RuntimeError):
     """The model could not fit or converge (exit status 3)."""
 
 
-def to_settings(s: dict) -> Settings:
+def is_spontaneous(s: dict) -> bool:
+    """True for settings in which the patient makes every breath (pressure support, CPAP)."""
+    return s.get("mode") in SPONTANEOUS_MODES
+
+
+def to_settings(s: dict, observation: dict | None = None) -> Settings:
+    """Engine settings from a case-file settings block. A block on pressure support or CPAP needs the
+    observation that measured the patient's own breathing: the lung model is then given a
+    volume-controlled breath of the measured VT and rate (inspiratory time NEURAL_DUTY of the breath),
+    which carries the same alveolar ventilation; the support itself enters through
+    :func:`spontaneous_now` and the bounds of :func:`forecast_fitted`."""
+    if is_spontaneous(s):
+        if observation is None or observation.get("vte_ml") is None or observation.get("spontaneous_rr_per_min") is None:
+            raise CaseError("observations", f"settings in {s['mode']} mode are forecast from the patient's own "
+                                            f"breathing: a blood gas at them with vte_ml and spontaneous_rr_per_min "
+                                            f"is needed")
+        rr = float(observation["spontaneous_rr_per_min"])
+        return Settings(mode="volume", fio2=float(s["fio2"]), peep=float(s["peep_cmh2o"]),
+                        vt_ml=float(observation["vte_ml"]), rr=rr, ti=NEURAL_DUTY * 60.0 / rr,
+                        apparatus_dead_space_ml=float(s.get("apparatus_dead_space_ml") or 0.0))
     return Settings(mode=s["mode"], fio2=float(s["fio2"]), peep=float(s["peep_cmh2o"]),
                     vt_ml=None if s.get("vt_ml") is None else float(s["vt_ml"]),
                     inspiratory_pressure=None if s.get("inspiratory_pressure_cmh2o") is None
@@ -58,13 +84,29 @@ def to_patient(case: dict) -> Patient:
                    condition=p.get("condition") or "other")
 
 
+def latest_spontaneous(case: dict) -> dict | None:
+    """The newest observation taken on pressure support or CPAP (None if there is none)."""
+    return next((o for o in reversed(case["observations"]) if is_spontaneous(o["settings"])), None)
+
+
+def current_settings(case: dict) -> Settings:
+    """The engine settings now: the case's settings, or on pressure support or CPAP their volume-controlled
+    stand-in from the newest gas measured on them (:func:`to_settings`)."""
+    s = case["settings"]
+    return to_settings(s, latest_spontaneous(case) if is_spontaneous(s) else None)
+
+
 def to_observations(case: dict):
     out = []
     for o in case["observations"]:
+        spontaneous = is_spontaneous(o["settings"])
+        # On support the peak pressure is PEEP + support whatever the lung (left out of the fit); a plateau
+        # is an end-inspiratory hold with the patient relaxed, the passive lung's, and is kept.
         out.append(Observation(
-            settings=to_settings(o["settings"]), pao2=float(o["pao2_mmhg"]), paco2=float(o["paco2_mmhg"]),
+            settings=to_settings(o["settings"], o), pao2=float(o["pao2_mmhg"]), paco2=float(o["paco2_mmhg"]),
             ph=float(o["ph"]), sao2=o.get("sao2"), hco3=o.get("hco3_mmol_l"), petco2=o.get("petco2_mmhg"),
-            pplat=o.get("pplat_cmh2o"), ppeak=o.get("ppeak_cmh2o"), vte_ml=o.get("vte_ml"),
+            pplat=o.get("pplat_cmh2o"), ppeak=None if spontaneous else o.get("ppeak_cmh2o"),
+            vte_ml=o.get("vte_ml"),
             ve_l_min=o.get("ve_l_min"), vco2=o.get("vco2_ml_min"), cardiac_output=o.get("cardiac_output_l_min"),
             taken_at=o.get("taken_at", "")))
     return out
@@ -72,7 +114,8 @@ def to_observations(case: dict):
 
 _NUMBER = re.compile(r"[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?")
 #: Settings that mean something in one mode only: setting them in the other is refused, never ignored.
-MODE_ONLY = {"vt_ml": "volume", "inspiratory_pressure_cmh2o": "pressure"}
+MODE_ONLY = {"vt_ml": "volume", "inspiratory_pressure_cmh2o": "pressure",
+             "pressure_support_cmh2o": "pressure-support", "cycle_off_fraction": "pressure-support"}
 
 
 def apply_sets(case: dict, sets, where: str = "--set") -> dict:
@@ -96,8 +139,9 @@ def apply_sets(case: dict, sets, where: str = "--set") -> dict:
             raise CaseError(where, f"key {key!r} is not a setting; accepted keys: {', '.join(SETTING_KEYS)}")
         given.append(key)
         if key == "mode":
-            if value not in ("volume", "pressure"):
-                raise CaseError(field("mode"), f"value {value!r} is not accepted; expected 'volume' or 'pressure'")
+            if value not in MODES:
+                raise CaseError(field("mode"), f"value {value!r} is not accepted; expected one of "
+                                               f"{', '.join(repr(m) for m in MODES)}")
             trial[key] = value
             continue
         if not _NUMBER.fullmatch(value):  # float() would also take '1_2', 'nan' and 'inf'
@@ -112,6 +156,12 @@ def apply_sets(case: dict, sets, where: str = "--set") -> dict:
         if mode is not None and trial["mode"] != mode:
             raise CaseError(field(key), f"applies in {mode} mode only, and the trial is in {trial['mode']} mode; "
                                         f"add mode={mode} to change the mode")
+    # A setting of the old mode that the new one does not have is dropped (never carried over silently:
+    # the new mode's own settings are required by the check below).
+    for key, mode in MODE_ONLY.items():
+        if key not in given and trial.get(key) is not None and trial["mode"] != mode \
+                and not (key == "cycle_off_fraction" and trial["mode"] == "cpap"):
+            trial[key] = None
     from ventcast.physiology.indices import predicted_body_weight
     pbw = float(predicted_body_weight(case["patient"]["height_cm"], case["patient"]["sex"]))
     return check_settings("trial settings" if option else where, trial, pbw)
@@ -236,7 +286,9 @@ def model_assumptions(condition: str) -> list:
     """What the model assumes for this case, in words (shown with every fit and forecast)."""
     st = structure(condition)
     out = [f"condition: {CONDITION_LABELS[condition]} (sets the population priors)",
-           "a passive patient: no spontaneous breaths or inspiratory effort (volume or pressure control)"]
+           "a passive patient in volume or pressure control: no spontaneous breaths or inspiratory effort; on "
+           "pressure support or CPAP the patient's measured VT and rate stand in for the breath, and the "
+           "answer to a change of support is bounded (effort unchanged, drive preserved)"]
     if st["flow_limitation"] > 0:
         out.append("expiratory flow limitation: set PEEP below about 80 % of intrinsic PEEP does not raise total "
                    "PEEP (Tobin & Lodato 1989)")
@@ -245,9 +297,12 @@ def model_assumptions(condition: str) -> list:
     return out
 
 
-def steady_block(pred) -> dict:
+def steady_block(pred, spontaneous: bool = False) -> dict:
+    """The steady-state forecast in case-file keys. ``spontaneous``: the prediction is the volume-controlled
+    stand-in of a breath on pressure support or CPAP, whose mechanical power would be the ventilator doing all
+    the work: it is left out (None)."""
     g, b = pred.gas, pred.breathing
-    return {
+    out = {
         "pao2_mmhg": _f(g.pao2), "paco2_mmhg": _f(g.paco2), "ph": _f(g.ph), "sao2": _f(g.sao2),
         "petco2_mmhg": _f(g.petco2), "vd_vt": _f(g.vd_vt), "shunt_fraction": _f(pred.shunt),
         "pplat_cmh2o": _f(b.pplat), "ppeak_cmh2o": _f(b.ppeak), "driving_pressure_cmh2o": _f(b.driving_pressure),
@@ -257,6 +312,27 @@ def steady_block(pred) -> dict:
         "pf_ratio_mmhg": _f(g.pf_ratio), "cardiac_output_l_min": _f(pred.cardiac_output),
         "minute_ventilation_l_min": _f(b.minute_ventilation), "alveolar_ventilation_l_min": _f(b.alveolar_ventilation),
     }
+    vt, ve = _f(b.vt_ml), _f(b.minute_ventilation)
+    out["rr_per_min"] = None if not vt or ve is None else 1000.0 * ve / vt
+    out["pmus_cmh2o"] = out["rsbi"] = None  # a passive patient makes no effort (and RSBI is a spontaneous index)
+    if spontaneous:
+        out["mechanical_power_j_min"] = None
+    return out
+
+
+def supported_steady(case: dict, result, trial_dict: dict):
+    """(prediction, steady block) of a trial on pressure support or CPAP: the effort-unchanged bound's, with the
+    breath's rate, Pmus and RSBI, and for VT, rate, Pmus and RSBI the span of both bounds (``<key>_bounds``)."""
+    sup = supported_trial(case, result, trial_dict)
+    pred = predict(result.model, sup["equivalents"]["effort_unchanged"])
+    steady = steady_block(pred, spontaneous=True)
+    b1, b2 = sup["bounds"]["effort_unchanged"], sup["bounds"]["drive_preserved"]
+    steady.update(rr_per_min=float(b1["rr"]), pmus_cmh2o=_f(b1["breath"].pmus), rsbi=_f(b1["breath"].rsbi))
+    for key, get in (("vt_ml", lambda b: float(b["breath"].vt_ml)), ("rr_per_min", lambda b: float(b["rr"])),
+                     ("pmus_cmh2o", lambda b: float(b["breath"].pmus)), ("rsbi", lambda b: float(b["breath"].rsbi))):
+        lo, hi = sorted((get(b1), get(b2)))
+        steady[f"{key}_bounds"] = [lo, hi]
+    return pred, steady, sup
 
 
 def now_block(case: dict) -> dict:
@@ -267,9 +343,14 @@ def now_block(case: dict) -> dict:
     ppeak, pplat = obs.get("ppeak_cmh2o"), obs.get("pplat_cmh2o")
     mp = oi = None
     if ppeak is not None:
-        mpaw = float(mean_airway_pressure(s["mode"], ppeak, s["peep_cmh2o"], s["inspiratory_time_s"], s["rr_per_min"]))
+        if is_spontaneous(s):  # a supported breath is a square pressure wave over the patient's inspiration
+            rr = float(obs.get("spontaneous_rr_per_min") or s["rr_per_min"])
+            mpaw = float(mean_airway_pressure("pressure", ppeak, s["peep_cmh2o"], NEURAL_DUTY * 60.0 / rr, rr))
+        else:
+            mpaw = float(mean_airway_pressure(s["mode"], ppeak, s["peep_cmh2o"], s["inspiratory_time_s"],
+                                              s["rr_per_min"]))
         oi = float(oxygenation_index(s["fio2"], mpaw, obs["pao2_mmhg"]))
-        if vt and pplat is not None:
+        if vt and pplat is not None and not is_spontaneous(s):
             mp = float(mechanical_power_simplified(s["rr_per_min"], vt / 1000.0, ppeak, pplat, s["peep_cmh2o"]))
     out["mechanical_power_j_min"] = mp
     out["oxygenation_index"] = oi
@@ -433,6 +514,193 @@ def capacity_refusal(model, trial: Settings, pred) -> str:
             f"lung holds at most about {most:.0f} mL above PEEP. Choose a smaller VT or a lower PEEP")
 
 
+def spontaneous_now(case: dict, result) -> dict:
+    """The patient's breathing and effort now, on pressure support or CPAP: the measured VT and rate, the
+    mechanics the breath model uses (resistance fitted; compliance the chord compliance of the fitted lung
+    at the measured VT), and the peak muscle pressure Pmus that gives the measured VT at the current support
+    with those mechanics (:func:`physiology.mechanics.spontaneous.effort_from_tidal_volume`), so that the
+    forecast starts from what was measured. An occlusion swing ΔPocc, when measured, gives the effort the
+    Limits judge (Bertoni 2019: Pmus = -3/4 ΔPocc, ΔPL,dyn = (Ppeak - PEEP) - 2/3 ΔPocc); both are reported."""
+    s = case["settings"]
+    obs = latest_spontaneous(case)
+    equivalent = current_settings(case)
+    pred = predict(result.model, equivalent)
+    if not pred.success:
+        raise ModelError(f"the fitted model has no steady state at the measured breathing: {pred.message}")
+    ps = float(s.get("pressure_support_cmh2o") or 0.0)
+    peep = float(s["peep_cmh2o"])
+    rr = float(obs["spontaneous_rr_per_min"])
+    tin = NEURAL_DUTY * 60.0 / rr
+    cyc = float(s.get("cycle_off_fraction") or CYCLE_OFF_DEFAULT)
+    resistance = float(np.asarray(result.model.mechanics.resistance))
+    compliance = float(np.asarray(pred.breathing.compliance))
+    try:
+        model_effort = effort_from_tidal_volume(float(obs["vte_ml"]), ps, peep, resistance, compliance, rr, tin, cyc)
+    except ValueError as exc:
+        raise ModelError(f"the patient's effort cannot be estimated from the measured breathing: {exc}") from None
+    out = {"pressure_support_cmh2o": ps, "peep_cmh2o": peep, "cycle_off_fraction": cyc, "vt_ml": float(obs["vte_ml"]),
+           "rr_per_min": rr, "ti_neural_s": tin, "resistance_cmh2o_l_s": resistance,
+           "compliance_ml_per_cmh2o": compliance, "rsbi": rr / (float(obs["vte_ml"]) / 1000.0),
+           "p01_cmh2o": obs.get("p01_cmh2o"), "delta_pocc_cmh2o": obs.get("delta_pocc_cmh2o"),
+           "pmus_model_cmh2o": model_effort["pmus_cmh2o"], "pmus_model_basis": model_effort["basis"],
+           "dpl_dyn_cmh2o": float(obs["vte_ml"]) / compliance, "dpl_dyn_basis": "VT / compliance of the fitted lung"}
+    out["pmus_cmh2o"], out["pmus_basis"] = out["pmus_model_cmh2o"], out["pmus_model_basis"]
+    if obs.get("delta_pocc_cmh2o") is not None:
+        occ = effort_from_occlusion(obs["delta_pocc_cmh2o"], ppeak=peep + ps, peep=peep)
+        out.update(pmus_cmh2o=occ["pmus_cmh2o"], pmus_basis=occ["basis"], dpl_dyn_cmh2o=occ["dpl_dyn_cmh2o"],
+                   dpl_dyn_basis="(Ppeak - PEEP) - 2/3 ΔPocc (Bertoni 2019)")
+    return out
+
+
+def supported_trial(case: dict, result, trial_dict: dict) -> dict:
+    """A trial on pressure support or CPAP: the effort now (:func:`spontaneous_now`), both bounds of the
+    patient's answer (:func:`physiology.mechanics.spontaneous.support_bounds`) and, for each, the
+    volume-controlled stand-in the lung model is given (same VT, rate and neural inspiratory share)."""
+    if not is_spontaneous(case["settings"]):
+        raise CaseError("trial settings.mode", f"value {trial_dict['mode']!r}: a forecast on pressure support or CPAP "
+                                               f"needs the patient's own breathing, measured on it (a blood gas with "
+                                               f"vte_ml and spontaneous_rr_per_min); this case is in "
+                                               f"{case['settings']['mode']} mode")
+    now = spontaneous_now(case, result)
+    series = float(np.asarray(result.model.mechanics.anatomic_dead_space_ml)) + \
+        float(trial_dict.get("apparatus_dead_space_ml") or 0.0)
+    bounds = support_bounds(now["pressure_support_cmh2o"], float(trial_dict.get("pressure_support_cmh2o") or 0.0),
+                            float(trial_dict["peep_cmh2o"]), now["resistance_cmh2o_l_s"],
+                            now["compliance_ml_per_cmh2o"], now["pmus_model_cmh2o"], now["rr_per_min"],
+                            now["ti_neural_s"], series,
+                            float(trial_dict.get("cycle_off_fraction") or CYCLE_OFF_DEFAULT))
+    equivalents = {}
+    for name in ("effort_unchanged", "drive_preserved"):
+        b = bounds[name]
+        equivalents[name] = to_settings(dict(trial_dict), {"vte_ml": float(b["breath"].vt_ml),
+                                                           "spontaneous_rr_per_min": float(b["rr"])})
+    return {"now": now, "bounds": bounds, "equivalents": equivalents}
+
+
+def trial_engine_settings(case: dict, result, trial_dict: dict) -> Settings:
+    """Engine settings of a trial; on pressure support or CPAP the stand-in breath of the *effort unchanged*
+    bound (the forecast drawn; the other bound is in the ``spontaneous`` block)."""
+    if is_spontaneous(trial_dict):
+        return supported_trial(case, result, trial_dict)["equivalents"]["effort_unchanged"]
+    return to_settings(trial_dict)
+
+
+def _spontaneous_block(case, result, trial_dict, supported) -> tuple:
+    """The ``spontaneous`` block of a forecast and the likely range spanning both bounds and the draws."""
+    bounds_out, spans = {}, {}
+    for name in ("effort_unchanged", "drive_preserved"):
+        b = supported["bounds"][name]
+        br = b["breath"]
+        eq = supported["equivalents"][name]
+        pred = predict(result.model, eq)
+        gas = steady_block(pred) if bool(np.all(pred.success)) else {}
+        ranges = None
+        if result.sampled:
+            r, _table, _ok = likely_range(result, eq)
+            ranges = {"pao2_mmhg": list(r["pao2"]), "paco2_mmhg": list(r["paco2"]), "ph": list(r["ph"]),
+                      "sao2": list(r["sao2"])}
+        bounds_out[name] = {
+            "vt_ml": _f(br.vt_ml), "rr_per_min": float(b["rr"]), "rsbi": _f(br.rsbi), "pmus_cmh2o": _f(br.pmus),
+            "pressure_time_product_cmh2o_s_min": _f(br.ptp_per_min), "dpl_dyn_cmh2o": _f(br.dpl_dyn),
+            "intrinsic_peep_cmh2o": _f(br.intrinsic_peep), "mean_airway_pressure_cmh2o": _f(br.mean_paw),
+            "inspiratory_time_s": _f(br.ti_s), "alveolar_ventilation_l_min": float(b["alveolar_ventilation"]),
+            "attainable": bool(b["attainable"]), "pao2_mmhg": gas.get("pao2_mmhg"), "paco2_mmhg": gas.get("paco2_mmhg"),
+            "ph": gas.get("ph"), "sao2": gas.get("sao2"), "likely_range": ranges}
+    def span(key, ranged=False):
+        vals = []
+        for v in bounds_out.values():
+            if v.get(key) is not None:
+                vals.append(v[key])
+            if ranged and v["likely_range"] is not None:
+                vals += v["likely_range"][key]
+        return [min(vals), max(vals)] if vals else None
+
+    now = supported["now"]
+    block = {"pmus_cmh2o": span("pmus_cmh2o"), "vt_ml": span("vt_ml"), "rr_per_min": span("rr_per_min"),
+             "rsbi": span("rsbi"), "paco2_mmhg": span("paco2_mmhg", ranged=True), "bounds": bounds_out,
+             "effort_now": {k: now[k] for k in ("pmus_cmh2o", "pmus_basis", "pmus_model_cmh2o", "dpl_dyn_cmh2o",
+                                                 "dpl_dyn_basis", "p01_cmh2o", "delta_pocc_cmh2o", "vt_ml",
+                                                 "rr_per_min", "rsbi", "pressure_support_cmh2o",
+                                                 "compliance_ml_per_cmh2o", "resistance_cmh2o_l_s")},
+             "meaning": {"effort_unchanged": "the same effort and rate as now: with less support VT and alveolar "
+                                             "ventilation fall and PaCO2 rises",
+                         "drive_preserved": "the alveolar ventilation of now kept by a faster rate at the same "
+                                            "effort per breath (more effort if the rate alone cannot): rapid "
+                                            "shallow breathing"}}
+    likely = None
+    if result.sampled:
+        likely = {k: span(k, ranged=True) for k in ("pao2_mmhg", "paco2_mmhg", "ph", "sao2")}
+    return block, likely
+
+
+#: Effort limits of a patient breathing on support: (what, limit, source).
+EFFORT_LIMITS = {
+    "pmus_high": ("Pmus", PMUS_EXCESSIVE, "Bertoni 2019"),
+    "pmus_low": ("Pmus", 3.0, "lung- and diaphragm-protective targets, Goligher 2020, from memory"),
+    "dpl_dyn": ("dynamic transpulmonary driving pressure", DPL_DYN_EXCESSIVE, "Bertoni 2019"),
+    "rsbi": ("RSBI", RSBI_FAILURE, "Yang & Tobin 1991"),
+    "rate": ("rate", 35.0, "breathing-trial failure criterion, Boles 2007, from memory"),
+}
+
+
+def effort_limit_lines(block: dict) -> list:
+    """The effort checks of a trial on support, as lines of the Limits (same fields as :func:`limit_checks`):
+    the effort now (Pmus and ΔPL,dyn, with their basis) and each bound's Pmus, RSBI and rate."""
+    lines = []
+
+    def line(code, what, value, digits, unit, limit_text, bad, severity, source, message):
+        value_text = f"{value:.{digits}f} {unit}".strip()
+        lines.append({"code": code if bad else None, "what": what, "value": value_text, "limit": limit_text,
+                      "source": source, "status": severity if bad else "ok",
+                      "message": f"{message} ({source})" if bad else f"{what} {value_text} within {limit_text}"})
+
+    now = block["effort_now"]
+    name, top, source = EFFORT_LIMITS["pmus_high"]
+    p = now["pmus_cmh2o"]
+    line("effort_excessive", "effort now: Pmus", p, 1, "cmH2O", f"\u2264 {top:g} cmH2O", p > top, "caution", source,
+         f"effort now: Pmus {p:.1f} cmH2O, above {top:g} ({now['pmus_basis']})")
+    low = EFFORT_LIMITS["pmus_low"]
+    line("effort_low", "effort now: Pmus", p, 1, "cmH2O", f"\u2265 {low[1]:g} cmH2O", p < low[1], "info", low[2],
+         f"effort now: Pmus {p:.1f} cmH2O, below {low[1]:g}: the support may be doing the patient's work "
+         f"(over-assistance)")
+    if now["dpl_dyn_cmh2o"] is not None:
+        what, top, source = EFFORT_LIMITS["dpl_dyn"]
+        d = now["dpl_dyn_cmh2o"]
+        line("dpl_dyn_excessive", "effort now: \u0394PL,dyn", d, 1, "cmH2O", f"\u2264 {top:g} cmH2O", d > top,
+             "caution", source, f"{what} now {d:.1f} cmH2O, above {top:g} ({now['dpl_dyn_basis']})")
+    for bound, words in (("effort_unchanged", "effort unchanged"), ("drive_preserved", "drive preserved")):
+        b = block["bounds"][bound]
+        for key, code, digits, unit in (("pmus_cmh2o", "pmus_high", 1, "cmH2O"), ("rsbi", "rsbi", 0, "/min/L"),
+                                        ("rr_per_min", "rate", 0, "/min")):
+            what, top, source = EFFORT_LIMITS[code]
+            v = b[key]
+            if v is None:
+                continue
+            line({"pmus_high": "effort_excessive", "rsbi": "rsbi_high", "rate": "rate_high"}[code],
+                 f"{words}: {what}", v, digits, unit, f"\u2264 {top:g} {unit}", v > top, "caution", source,
+                 f"{words}: {what} {v:.{digits}f} {unit}, above {top:g}"
+                 + (": a breathing trial is likely to fail" if code == "rsbi" else ""))
+        if not b["attainable"]:
+            lines.append({"code": "drive_not_attainable", "what": f"{words}: alveolar ventilation kept", "value": "no",
+                          "limit": "kept", "source": "the breath model", "status": "caution",
+                          "message": f"{words}: the alveolar ventilation of now cannot be kept even with an effort of "
+                                     f"40 cmH2O at this support"})
+    return lines
+
+
+def _spontaneous_alerts(block) -> list:
+    """Alerts of a trial on support: every effort check not met (:func:`effort_limit_lines`), and what the
+    forecast shown means."""
+    out = [{"code": ln["code"], "severity": ln["status"], "message": ln["message"]}
+           for ln in effort_limit_lines(block) if ln["status"] != "ok"]
+    out.append({"code": "supported_breath", "severity": "info",
+                "message": "pressure support: the forecast shown is the effort-unchanged bound; the spontaneous block "
+                           "has both bounds, and the likely range spans them. Pplat, driving pressure and mechanical "
+                           "power are those of the same VT given passively (the lung's stretch); the patient's effort "
+                           "adds the transpulmonary pressure in ΔPL,dyn"})
+    return out
+
+
 def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0, with_course: bool = True,
                     with_band: bool = True, with_next: bool = True) -> dict:
     """Forecast checked trial settings (case-file keys) for an already fitted case (same blocks as ``predict``).
@@ -440,15 +708,21 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
     ``with_band`` adds the likely range of the course (200 parameter draws, the slowest part);
     ``with_next`` the next best measurement. The window asks for them in a second, later pass.
     """
-    trial = to_settings(trial_dict)
-    current = to_settings(case["settings"])
-    pred = predict(result.model, trial)
+    supported = None
+    if is_spontaneous(trial_dict):
+        pred, steady, supported = supported_steady(case, result, trial_dict)
+        trial = supported["equivalents"]["effort_unchanged"]
+    else:
+        trial = to_settings(trial_dict)
+        pred = predict(result.model, trial)
+    current = current_settings(case)
     if not pred.success:
         refusal = capacity_refusal(result.model, trial, pred)
         if refusal:
             raise CaseError("trial settings", refusal)
         raise ModelError(f"no steady state at the trial settings: {pred.message}")
-    steady = steady_block(pred)
+    if supported is None:
+        steady = steady_block(pred)
     if with_band and not result.sampled:
         raise ValueError("the course's likely range needs the fit's posterior draws (sample_posterior)")
     out = {
@@ -464,7 +738,13 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
         ranges, _table, ok_share = likely_range(result, trial)
         out["likely_range"] = {"pao2_mmhg": list(ranges["pao2"]), "paco2_mmhg": list(ranges["paco2"]),
                                "ph": list(ranges["ph"]), "sao2": list(ranges["sao2"])}
+    if supported is not None:
+        out["spontaneous"], likely = _spontaneous_block(case, result, trial_dict, supported)
+        if likely is not None:
+            out["likely_range"] = likely
     alerts = limit_alerts(steady, case.get("goals"))
+    if supported is not None:
+        alerts += _spontaneous_alerts(out["spontaneous"])
     if out["likely_range"] is not None:
         # The point forecast comes from the fitted estimate, the range from the posterior draws; when the
         # estimate lies outside the draws' 90 % range it is atypical of what the data allow: say so.
@@ -543,7 +823,8 @@ def course_block(course) -> dict:
 def trial_course(case: dict, result, trial_dict: dict, minutes: float = 60.0) -> dict:
     """The course (no likely range) from the current settings to checked trial settings, for drawing
     trials side by side; :class:`ModelError` when it has no course."""
-    course = simulate(result.model, to_settings(case["settings"]), to_settings(trial_dict), minutes=minutes)
+    course = simulate(result.model, current_settings(case), trial_engine_settings(case, result, trial_dict),
+                      minutes=minutes)
     if not course.success:
         raise ModelError(course.message)
     return course_block(course)
@@ -651,6 +932,11 @@ def settings_dict(s: Settings) -> dict:
 
 def settings_text(s: dict) -> str:
     """Case-file settings in one line of words, with units."""
+    if s["mode"] in SPONTANEOUS_MODES:
+        support = (f"pressure support {s['pressure_support_cmh2o']:g} cmH2O" if s["mode"] == "pressure-support"
+                   else "CPAP")
+        return (f"{support}, FiO2 {s['fio2']:.2f}, PEEP {s['peep_cmh2o']:g} cmH2O, backup RR {s['rr_per_min']:g}/min, "
+                f"Ti {s['inspiratory_time_s']:g} s")
     size = f"VT {s['vt_ml']:g} mL" if s["mode"] == "volume" else f"Pinsp {s['inspiratory_pressure_cmh2o']:g} cmH2O"
     return (f"{s['mode']} control, FiO2 {s['fio2']:.2f}, PEEP {s['peep_cmh2o']:g} cmH2O, {size}, "
             f"RR {s['rr_per_min']:g}/min, Ti {s['inspiratory_time_s']:g} s")
@@ -678,6 +964,10 @@ def plan_case(case: dict, result=None, required_probability: float = 0.9, progre
     """Options that meet the case's goals: the ``plan`` JSON of the README."""
     if result is None:
         _p, _o, result = fit_case(case)
+    if is_spontaneous(case["settings"]):
+        raise CaseError("settings.mode", f"value {case['settings']['mode']!r}: options are searched among volume- and "
+                                         f"pressure-control settings; for a patient on pressure support or CPAP the "
+                                         f"step-down plan (ventcast wean) lowers the support")
     goals = case_goals(case)
     now = to_settings(case["settings"])
     res = search(result.model, result.draws, now, goals, float(result.patient.pbw_kg),
@@ -717,6 +1007,8 @@ def wean_case(case: dict, result=None, table: str | None = None, target_fio2: fl
     if result is None:
         _p, _o, result = fit_case(case)
     goals = case_goals(case)
+    if is_spontaneous(case["settings"]):
+        return _wean_support(case, result, goals)
     now = to_settings(case["settings"])
     res = step_down(result.model, result.draws, now, goals, target_fio2=target_fio2, target_peep=target_peep,
                     table=table, spontaneous_rr=spontaneous_rr, spontaneous_vt_ml=spontaneous_vt_ml)
@@ -729,3 +1021,45 @@ def wean_case(case: dict, result=None, table: str | None = None, target_fio2: fl
     return {"goals": goals.as_dict(), "table": table, "target": {"fio2": target_fio2, "peep_cmh2o": target_peep},
             "success": res.success, "message": res.message, "steps": steps, "reached_target": res.reached_target,
             "stopped_because": res.stopped_because, "readiness": res.readiness, "caution": CAUTION}
+
+
+#: What to watch on each step of pressure support (common practice, from memory).
+SUPPORT_STOP_IF = ("go back one step if the rate rises above 35/min, RSBI above 105, SpO2 falls below the goal, "
+                   "pH below 7.32, or signs of distress appear")
+
+
+def _wean_support(case: dict, result, goals) -> dict:
+    """The step-down of pressure support for a case on it (:func:`physiology.planning.support.support_step_down`):
+    the ``wean`` JSON with each step's two bounds."""
+    from ventcast.physiology.planning.support import TRIAL_PEEP_MAX, TRIAL_SUPPORT_MAX, support_step_down
+
+    now = spontaneous_now(case, result)
+    s = case["settings"]
+    spo2_goal = goals.spo2[0] if goals.spo2 else 0.88
+    plan = support_step_down(result.model, float(s["fio2"]), now["peep_cmh2o"], now["pressure_support_cmh2o"],
+                             now["pmus_model_cmh2o"], now["rr_per_min"], now["ti_neural_s"],
+                             now["resistance_cmh2o_l_s"], now["compliance_ml_per_cmh2o"],
+                             float(s.get("apparatus_dead_space_ml") or 0.0), spo2_goal, now["cycle_off_fraction"])
+    steps = []
+    before = now["pressure_support_cmh2o"]
+    for st in plan["steps"]:
+        settings = dict(s, mode="pressure-support", pressure_support_cmh2o=st.pressure_support)
+        bounds = {name: {k: (v if not isinstance(v, float) else float(v)) for k, v in b.items()}
+                  for name, b in st.bounds.items()}
+        same = bounds["effort_unchanged"]
+        change = f"pressure support {before:g} -> {st.pressure_support:g} cmH2O"
+        before = st.pressure_support
+        steps.append({"settings": settings, "change": change,
+                      "why": "lower the support toward the breathing-trial conditions",
+                      "steady": {"pao2_mmhg": same["pao2"], "paco2_mmhg": same["paco2"], "ph": same["ph"],
+                                 "sao2": same["sao2"], "vt_ml": same["vt_ml"], "rr_per_min": same["rr_per_min"]},
+                      "bounds": bounds, "breaks": list(st.breaks), "hold_min": None,
+                      "hold_basis": "watch the breathing pattern and SpO2 before the next step", "stop_if": SUPPORT_STOP_IF})
+    message = (f"{len(steps)} step(s) of pressure support" + (f"; stopped {plan['stopped_because']}"
+                                                              if plan["stopped_because"] else ""))
+    return {"goals": goals.as_dict(), "table": None, "mode": s["mode"],
+            "target": {"pressure_support_cmh2o": TRIAL_SUPPORT_MAX, "peep_cmh2o": TRIAL_PEEP_MAX},
+            "success": True, "message": message, "effort_now": {k: now[k] for k in (
+                "pmus_cmh2o", "pmus_basis", "pmus_model_cmh2o", "vt_ml", "rr_per_min", "rsbi", "pressure_support_cmh2o")},
+            "now": plan["now"], "steps": steps, "reached_target": plan["reached_trial_conditions"],
+            "stopped_because": plan["stopped_because"], "note": plan["note"], "readiness": [], "caution": CAUTION}

@@ -279,11 +279,11 @@ def compute_forecasts(case: dict, trials: dict, result=None) -> dict:
     from ventcast.physiology.forecast import predict
 
     from .casefile import check_settings
-    from .engine import apply_sets, fit_case, forecast_fitted, steady_block, to_settings
+    from .engine import apply_sets, current_settings, fit_case, forecast_fitted, is_spontaneous, steady_block
 
     if result is None:
         result = fit_case(case)[2]
-    now_steady = steady_block(predict(result.model, to_settings(case["settings"])))
+    now_steady = steady_block(predict(result.model, current_settings(case)), spontaneous=is_spontaneous(case["settings"]))
     forecasts = {}
     for name, sets in trials.items():
         settings = (check_settings(f"Trial {name}", dict(sets), float(result.patient.pbw_kg)) if isinstance(sets, dict)

@@ -140,8 +140,9 @@ def test_support_step_down_reaches_the_trial_with_both_bounds_and_names_every_br
 
 def test_support_step_down_stops_at_the_step_that_would_break_a_rule_and_says_which():
     """A stiff lung (compliance 28 mL/cmH2O) breathing 26/min at 380 mL on PS 16: lowering support soon
-    makes the drive-preserved bound breathe rapidly and shallowly; the plan lists that step with the
-    rules named and ends there (Yang & Tobin 1991: RSBI above 105)."""
+    makes even the drive-preserved bound breathe rapidly and shallowly; the plan lists that step with the
+    rules named and ends there (Yang & Tobin 1991: RSBI above 105). Earlier steps may break a rule in the
+    effort-unchanged bound only: they are proposed, and say so."""
     from ventcast.physiology.planning.support import support_step_down
 
     model = _supported_patient(c_max=28, resistance=14, shunt=0.08)
@@ -149,9 +150,11 @@ def test_support_step_down_stops_at_the_step_that_would_break_a_rule_and_says_wh
     plan = support_step_down(model, 0.4, 5, 16, pmus, 26, 0.8, 14, 28)
     assert not plan["reached_trial_conditions"]
     last = plan["steps"][-1]
-    assert last.breaks and plan["stopped_because"].startswith(f"at pressure support {last.pressure_support:g} cmH2O")
-    assert all(w in plan["stopped_because"] for w in last.breaks)
-    assert all(not s.breaks for s in plan["steps"][:-1])
+    assert last.bounds["drive_preserved"]["breaks"]
+    assert plan["stopped_because"].startswith(f"at pressure support {last.pressure_support:g} cmH2O, even with the "
+                                              f"drive preserved")
+    assert all(w in plan["stopped_because"] for w in last.bounds["drive_preserved"]["breaks"])
+    assert all(not s.bounds["drive_preserved"]["breaks"] for s in plan["steps"][:-1])
 
 
 def test_support_matching_the_current_tidal_volume():

@@ -1168,3 +1168,47 @@ def _dispose_walkthrough(w, qapp):
     w.deleteLater()
     QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
     qapp.processEvents()
+
+
+def test_a_case_on_pressure_support_in_the_window(qtbot, qapp):
+    """Issue 22: the support demo opens with the mode 'pressure support' and its support control (no VT or
+    inspiratory pressure), the Bedside shows the effort measurements (hidden for a controlled case), and a
+    trial at less support shows VT, rate, Pmus and RSBI as spans between the two bounds, the effort checks
+    in the Limits, and which bound the course draws."""
+    w = win.MainWindow(load_demo("support-trial"))
+    w.resize(1400, 900)
+    w.show()
+    try:
+        with qtbot.waitSignal(w.band_shown, timeout=WAIT_MS):
+            pass
+        panel = w.trial_panel
+        assert panel.mode.currentText() == "pressure support"
+        assert panel.spins["pressure_support_cmh2o"].isVisible() and not panel.spins["vt_ml"].isVisible()
+        assert not panel.spins["inspiratory_pressure_cmh2o"].isVisible()
+        assert w.bedside.values["rsbi"].isVisible() and w.bedside.values["rsbi"].text().startswith("39")
+        assert w.bedside.values["pmus_from_pocc_cmh2o"].text() == "4.5 cmH2O"
+        out = _change(qtbot, w, "pressure_support_cmh2o", 8)
+        expected = _expected(w, w.state.trials["A"])["spontaneous"]
+        rows = {panel.compare.verticalHeaderItem(r).text(): r for r in range(panel.compare.rowCount())}
+        col = 2  # Trial A
+        lo, hi = expected["vt_ml"]
+        assert panel.compare.item(rows["VT [mL]"], col).text() == f"{lo:.0f}\u2013{hi:.0f}"
+        lo, hi = expected["rsbi"]
+        assert panel.compare.item(rows["RSBI [/min/L]"], col).text() == f"{lo:.0f}\u2013{hi:.0f}"
+        assert "\u2013" in panel.compare.item(rows["Pmus [cmH2O]"], col).text()
+        limits = w.limits_panel
+        whats = [limits.table.item(r, 1).text() for r in range(limits.table.rowCount())]
+        assert any("effort unchanged: RSBI" in t for t in whats) and any("drive preserved: rate" in t for t in whats)
+        assert "course drawn is the effort-unchanged bound" in w.recheck_label.text()
+        assert out["spontaneous"]["bounds"]["drive_preserved"]["rr_per_min"] > 22
+        # back to pressure control: the support control hides, the inspiratory pressure shows
+        _change(qtbot, w, "mode", "pressure")
+        assert panel.spins["inspiratory_pressure_cmh2o"].isVisible() and not panel.spins["pressure_support_cmh2o"].isVisible()
+        assert w.state.trials["A"]["pressure_support_cmh2o"] is None
+    finally:
+        _close(w, qapp)
+
+
+def test_effort_rows_are_hidden_for_a_controlled_case(window):
+    assert not window.bedside.values["rsbi"].isVisible()
+    assert not window.trial_panel.spins["pressure_support_cmh2o"].isVisible()

@@ -25,12 +25,17 @@ class BedsidePanel(QtWidgets.QGroupBox):
             ("driving_pressure_cmh2o", "Driving pressure\n(Pplat \u2212 set PEEP)"), ("compliance_ml_per_cmh2o", "Crs"),
             ("pbw_kg", "PBW"), ("vt_ml_per_kg_pbw", "VT"), ("mechanical_power_j_min", "Mechanical power"),
             ("ventilatory_ratio", "Ventilatory ratio"), ("oxygenation_index", "Oxygenation index"),
-            ("berlin_category", "Berlin category"), ("base_excess_mmol_l", "Base excess"))
+            ("berlin_category", "Berlin category"), ("base_excess_mmol_l", "Base excess"),
+            ("spontaneous_rr_per_min", "Own rate"), ("rsbi", "RSBI"), ("p01_cmh2o", "P0.1"),
+            ("delta_pocc_cmh2o", "\u0394Pocc"), ("pmus_from_pocc_cmh2o", "Pmus (from \u0394Pocc)"))
+    #: Effort measurements of a patient breathing on support: their rows are shown only when measured.
+    EFFORT_KEYS = ("spontaneous_rr_per_min", "rsbi", "p01_cmh2o", "delta_pocc_cmh2o", "pmus_from_pocc_cmh2o")
     #: Index: (decimals, unit).
     FORMAT = {"pf_ratio_mmhg": (0, "mmHg"), "aa_gradient_mmhg": (0, "mmHg"), "driving_pressure_cmh2o": (1, "cmH2O"),
               "compliance_ml_per_cmh2o": (0, "mL/cmH2O"), "pbw_kg": (1, "kg"), "vt_ml_per_kg_pbw": (1, "mL/kg PBW"),
               "mechanical_power_j_min": (1, "J/min"), "ventilatory_ratio": (2, ""), "oxygenation_index": (1, ""),
-              "base_excess_mmol_l": (1, "mmol/L")}
+              "base_excess_mmol_l": (1, "mmol/L"), "spontaneous_rr_per_min": (0, "/min"), "rsbi": (0, "/min/L"),
+              "p01_cmh2o": (1, "cmH2O"), "delta_pocc_cmh2o": (1, "cmH2O"), "pmus_from_pocc_cmh2o": (1, "cmH2O")}
 
     def __init__(self, parent=None):
         super().__init__("Bedside", parent)
@@ -42,6 +47,7 @@ class BedsidePanel(QtWidgets.QGroupBox):
         self.add_gas.clicked.connect(self.gas_requested.emit)
         lay.addWidget(self.add_gas)
         form = QtWidgets.QFormLayout()
+        self.form = form
         self.values = {}
         for key, label in self.ROWS:
             w = QtWidgets.QLabel("-")
@@ -92,6 +98,8 @@ class BedsidePanel(QtWidgets.QGroupBox):
         if not case["observations"]:  # a new case: its settings, and nothing measured yet
             for w in self.values.values():
                 w.setText("-")
+            for key in self.EFFORT_KEYS:
+                self.form.setRowVisible(self.values[key], False)
             self.values["settings"].setText(settings_text(case["settings"]))
             self.values["pao2"].setText("no blood gas yet")
             return
@@ -110,6 +118,14 @@ class BedsidePanel(QtWidgets.QGroupBox):
             else:
                 v[key].setText("-" if x is None else f"{x:.{d}f} {unit}".strip())
         v["berlin_category"].setText(str(idx.get("berlin_category") or "-"))
+        for key in self.EFFORT_KEYS:
+            self.form.setRowVisible(v[key], idx.get(key) is not None)
+        if idx.get("rsbi") is not None:
+            v["rsbi"].setToolTip("rapid shallow breathing index, own rate / VT; above 105 a breathing trial is likely "
+                                 "to fail (Yang & Tobin 1991)")
+        if idx.get("pmus_from_pocc_cmh2o") is not None:
+            v["pmus_from_pocc_cmh2o"].setToolTip("Pmus = -3/4 \u0394Pocc (Bertoni 2019, coefficient from memory); "
+                                                 "above 10 cmH2O is excessive")
         v["vd_vt"].setText("after the fit")
         rows = case["observations"]
         self.history.setRowCount(len(rows))

@@ -52,9 +52,18 @@ CONTROLS = (
     ("vt_ml", "VT", "mL", 100.0, 1200.0, 10.0, 0),
     ("inspiratory_pressure_cmh2o", "Inspiratory pressure", "cmH2O", *SETTING_RANGES["inspiratory_pressure_cmh2o"][:2],
      1.0, 0),
+    ("pressure_support_cmh2o", "Pressure support", "cmH2O", *SETTING_RANGES["pressure_support_cmh2o"][:2], 1.0, 0),
     ("rr_per_min", "RR", "/min", *SETTING_RANGES["rr_per_min"][:2], 1.0, 0),
     ("inspiratory_time_s", "Ti", "s", *SETTING_RANGES["inspiratory_time_s"][:2], 0.05, 2),
 )
+#: The modes in the order of the Mode list, and their names on screen.
+MODES = (("volume", "volume control"), ("pressure", "pressure control"), ("pressure-support", "pressure support"),
+         ("cpap", "CPAP"))
+#: The breath-size controls each mode does not use (hidden while it is chosen).
+HIDDEN_IN_MODE = {"volume": {"inspiratory_pressure_cmh2o", "pressure_support_cmh2o"},
+                  "pressure": {"vt_ml", "pressure_support_cmh2o"},
+                  "pressure-support": {"vt_ml", "inspiratory_pressure_cmh2o"},
+                  "cpap": {"vt_ml", "inspiratory_pressure_cmh2o", "pressure_support_cmh2o"}}
 #: What each settings key is called on screen.
 SETTING_LABELS = {"mode": "Mode", **{key: label for key, label, *_ in CONTROLS},
                   "apparatus_dead_space_ml": "apparatus dead space"}

@@ -15,8 +15,8 @@ import numpy as np
 from ventcast.physiology.forecast import predict
 
 from ..casefile import CaseError
-from ..engine import (ModelError, fit_case, forecast_fitted, limit_checks, sample_fit, steady_block, to_settings,
-                      trial_course)
+from ..engine import (ModelError, current_settings, fit_case, forecast_fitted, is_spontaneous, limit_checks, sample_fit,
+                      steady_block, supported_steady, to_settings, trial_course)
 from .common import field_in_words
 
 
@@ -28,7 +28,7 @@ class ForecastPipeline:
         # The estimate alone first (a tenth of the time): its forecast is shown while the posterior
         # draws, which give every likely range, are computed in a second job ("draws").
         _patient, _obs, result = fit_case(case, sample=False)
-        now = predict(result.model, to_settings(case["settings"]))
+        now = predict(result.model, current_settings(case))
         return {"result": result, "now": now}
 
     def _fitted_for(self, doing: str):
@@ -65,8 +65,12 @@ class ForecastPipeline:
     def _steady_work(case, result, trials, active):
         compare, reasons = {}, {}
         for t, s in trials.items():
-            p = predict(result.model, to_settings(s))
-            compare[t] = steady_block(p) if bool(np.all(p.success)) else None
+            if is_spontaneous(s):  # the effort-unchanged bound, with the span of both bounds
+                p, steady, _sup = supported_steady(case, result, s)
+            else:
+                p = predict(result.model, to_settings(s))
+                steady = steady_block(p)
+            compare[t] = steady if bool(np.all(p.success)) else None
             reasons[t] = p.message
         if compare[active] is None:
             raise ArithmeticError(f"Trial {active}: the model has no steady state at these settings ({reasons[active]})")

@@ -17,10 +17,12 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from .. import CAUTION
-from ..engine import RECHECK_NOTE, case_goals, now_block, plan_case, steady_block, wean_case
+from ..engine import (RECHECK_NOTE, case_goals, effort_limit_lines, is_spontaneous, now_block, plan_case, steady_block,
+                      wean_case)
 from ..worker import EngineRunner
 from .bedside import BedsidePanel
-from .common import APP_NAME, AUTOSAVE_MS, DEBOUNCE_MS, ORG_NAME, TRIALS, TrialState, file_stamp, new_recovery_path
+from .common import (APP_NAME, AUTOSAVE_MS, DEBOUNCE_MS, ORG_NAME, TRIALS, TrialState, file_stamp, gas_text,
+                     new_recovery_path)
 from .dialogs import GoalsDialog
 from .files import CaseFiles
 from .forecasting import ForecastPipeline
@@ -236,7 +238,8 @@ class MainWindow(BedsideLoop, ForecastPipeline, CaseFiles, TrialEditing, QtWidge
             self.lung_fit.show_vq(now)
 
     def _fill_compare(self, compare, ranges=None, ranges_trial=None):
-        now = steady_block(self.now_prediction) if self.now_prediction is not None else None
+        now = (steady_block(self.now_prediction, spontaneous=is_spontaneous(self.state.case["settings"]))
+               if self.now_prediction is not None else None)
         self.trial_panel.fill_compare(now, compare, self.units, ranges, ranges_trial, self._measured())
 
     def _measured(self) -> dict:
@@ -248,8 +251,12 @@ class MainWindow(BedsideLoop, ForecastPipeline, CaseFiles, TrialEditing, QtWidge
         vt = obs.get("vte_ml") or (s.get("vt_ml") if s["mode"] == "volume" else None)
         out = {k: obs.get(k) for k in ("pao2_mmhg", "paco2_mmhg", "ph", "sao2", "pplat_cmh2o")}
         out["vt_ml"] = vt
+        bedside = now_block(self.state.case)
+        out["rr_per_min"] = obs.get("spontaneous_rr_per_min") or s["rr_per_min"]
+        out["rsbi"] = bedside.get("rsbi")
+        out["pmus_cmh2o"] = bedside.get("pmus_from_pocc_cmh2o")
         out["vt_ml_per_kg_pbw"] = None if vt is None else vt / self._pbw()
-        out["mechanical_power_j_min"] = now_block(self.state.case).get("mechanical_power_j_min")
+        out["mechanical_power_j_min"] = bedside.get("mechanical_power_j_min")
         return out
 
     def _fill_limits(self, lines):
@@ -269,7 +276,8 @@ class MainWindow(BedsideLoop, ForecastPipeline, CaseFiles, TrialEditing, QtWidge
     def _show_forecast(self, out):
         self._draw_course(out)
         self._fill_compare(out["compare"], out["likely_range"], out["active"])
-        self._fill_limits(out["limit_lines"])
+        # On pressure support or CPAP the effort checks join the Limits (Pmus, RSBI, rate, for each bound).
+        self._fill_limits(out["limit_lines"] + (effort_limit_lines(out["spontaneous"]) if out.get("spontaneous") else []))
         r = out.get("recheck_after_min")
         unchanged = out["settings"] == out["current_settings"]
         text = ("The trial equals the current settings: no change is expected." if unchanged else
@@ -277,7 +285,14 @@ class MainWindow(BedsideLoop, ForecastPipeline, CaseFiles, TrialEditing, QtWidge
                                      f"({RECHECK_NOTE}).")
         # A forecast outside its own likely range is said where the re-check advice is read.
         outside = [a["message"] for a in out.get("alerts", []) if a["code"] == "estimate_outside_range"]
-        self.recheck_label.setText("\n".join([text] + [f"\u26a0 {m[0].upper()}{m[1:]}." for m in outside]).strip())
+        lines = [text] + [f"\u26a0 {m[0].upper()}{m[1:]}." for m in outside]
+        if out.get("spontaneous"):  # which bound is drawn, and what the other says
+            b1, b2 = out["spontaneous"]["bounds"]["effort_unchanged"], out["spontaneous"]["bounds"]["drive_preserved"]
+            lines.insert(0, f"On support the course drawn is the effort-unchanged bound (VT {b1['vt_ml']:.0f} mL at "
+                            f"{b1['rr_per_min']:.0f}/min, PaCO2 {gas_text(b1['paco2_mmhg'], self.units, 1)}); with the "
+                            f"drive preserved the patient breathes {b2['rr_per_min']:.0f}/min at VT {b2['vt_ml']:.0f} mL, "
+                            f"PaCO2 {gas_text(b2['paco2_mmhg'], self.units, 1)}.")
+        self.recheck_label.setText("\n".join(lines).strip())
 
     def _show_band(self, out):
         if self.last_forecast is None:

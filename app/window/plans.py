@@ -137,10 +137,19 @@ class StepDownPanel(QtWidgets.QWidget):
         self.message.setText(f"{head} {escape(out['message'])}")
         self.steps.setRowCount(len(out["steps"]))
         for i, st in enumerate(out["steps"]):
-            v, r = st["steady"], st["likely_range"]
-            forecast = (f"SaO2 {sao2_text(v['sao2'])} ({100 * r['sao2'][0]:.0f}\u2013{sao2_text(r['sao2'][1])}), "
-                        f"{gas_text(v['pao2_mmhg'], units)}, PaCO2 {gas_text(v['paco2_mmhg'], units, 1)}, "
-                        f"pH {v['ph']:.2f}\n{st['stop_if']}")
+            if "bounds" in st:  # a step of pressure support: both bounds of the patient's answer
+                parts = []
+                for name, words in (("effort_unchanged", "effort unchanged"), ("drive_preserved", "drive preserved")):
+                    b = st["bounds"][name]
+                    parts.append(f"{words}: VT {b['vt_ml']:.0f} mL, {b['rr_per_min']:.0f}/min, RSBI {b['rsbi']:.0f}, "
+                                 f"Pmus {b['pmus_cmh2o']:.1f}, PaCO2 {gas_text(b['paco2'], units, 1)}, pH {b['ph']:.2f}"
+                                 + (f" \u26a0 {'; '.join(b['breaks'])}" if b["breaks"] else ""))
+                forecast = "\n".join(parts + [st["stop_if"]])
+            else:
+                v, r = st["steady"], st["likely_range"]
+                forecast = (f"SaO2 {sao2_text(v['sao2'])} ({100 * r['sao2'][0]:.0f}\u2013{sao2_text(r['sao2'][1])}), "
+                            f"{gas_text(v['pao2_mmhg'], units)}, PaCO2 {gas_text(v['paco2_mmhg'], units, 1)}, "
+                            f"pH {v['ph']:.2f}\n{st['stop_if']}")
             hold = "-" if st["hold_min"] is None else f"{st['hold_min']:.0f} min"
             for j, text in enumerate((f"{i + 1}. {st['change']}\n({st['why']})", forecast, hold)):
                 item = QtWidgets.QTableWidgetItem(text)
@@ -149,6 +158,12 @@ class StepDownPanel(QtWidgets.QWidget):
                 self.steps.setItem(i, j, item)
         self.steps.resizeRowsToContents()
         marks = {True: "\u2713", False: "\u2716", None: "?"}
+        if out.get("mode") in ("pressure-support", "cpap"):
+            end = (f"\u26a0 stopped {escape(out['stopped_because'])}" if out["stopped_because"] else
+                   "\u2713 the breathing-trial conditions are reached at the last step" if out["reached_target"] else "")
+            self.readiness.setText(f"<b>Pressure support:</b> {end}" + (f"<br>{escape(out['note'])}" if out.get("note")
+                                                                         else ""))
+            return
         self.readiness.setText("<b>Readiness at the last step:</b><br>" + "<br>".join(
             f"{marks[c['met']]} {escape(c['criterion'])}: {_readiness_value(c['value'])} ({escape(c['source'])})"
             for c in out["readiness"]))

@@ -11,7 +11,7 @@ import math
 
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from .common import CONTROLS, STYLE_NAME, TRIAL_STYLE, TRIALS, kpa_from_mmhg
+from .common import CONTROLS, HIDDEN_IN_MODE, MODES, STYLE_NAME, TRIAL_STYLE, TRIALS, kpa_from_mmhg
 
 
 class TrialPanel(QtWidgets.QGroupBox):
@@ -27,20 +27,27 @@ class TrialPanel(QtWidgets.QGroupBox):
                     ("\u0394P", "driving_pressure_cmh2o", "cmH2O", 1),
                     ("Mech. power", "mechanical_power_j_min", "J/min", 1),
                     ("PEEPi", "intrinsic_peep_cmh2o", "cmH2O", 1), ("VT", "vt_ml", "mL", 0),
-                    ("VT", "vt_ml_per_kg_pbw", "mL/kg PBW", 1), ("Cardiac output", "cardiac_output_l_min", "L/min", 1))
+                    ("VT", "vt_ml_per_kg_pbw", "mL/kg PBW", 1), ("Rate", "rr_per_min", "/min", 0),
+                    ("Pmus", "pmus_cmh2o", "cmH2O", 1), ("RSBI", "rsbi", "/min/L", 0),
+                    ("Cardiac output", "cardiac_output_l_min", "L/min", 1))
     #: Rows whose model value at the current settings is shown with its difference from the measured one.
     DIFFERENCE_KEYS = {"pao2_mmhg", "paco2_mmhg", "ph", "sao2", "pplat_cmh2o", "vt_ml"}
     RANGE_KEYS = {"pao2_mmhg", "paco2_mmhg", "ph", "sao2"}
     ROW_TIPS = {"driving_pressure_cmh2o": "driving pressure: Pplat minus total PEEP (set plus intrinsic)",
                 "mechanical_power_j_min": "mechanical power (Gattinoni 2016, simplified equation)",
                 "vt_ml": "tidal volume delivered to the patient (measured: exhaled VT)",
-                "intrinsic_peep_cmh2o": "intrinsic PEEP (auto-PEEP): gas trapped at the end of expiration"}
+                "intrinsic_peep_cmh2o": "intrinsic PEEP (auto-PEEP): gas trapped at the end of expiration",
+                "pmus_cmh2o": "the patient's inspiratory muscle pressure (none in volume or pressure control); on "
+                              "support a trial shows the span between its two bounds",
+                "rsbi": "rapid shallow breathing index, rate / VT (Yang & Tobin 1991: above 105 a breathing trial is "
+                        "likely to fail)",
+                "rr_per_min": "breaths per minute: the set rate, or on support the patient's own"}
 
     def __init__(self, parent=None):
         super().__init__("Trial settings", parent)
         self._quiet = False  # True while the panel itself sets the controls
         self._compact = False  # True on a narrow screen: no sliders
-        self._hidden_key = "inspiratory_pressure_cmh2o"  # the breath-size control the mode does not use
+        self._hidden = HIDDEN_IN_MODE["volume"]  # the breath-size controls the mode does not use
         lay = QtWidgets.QGridLayout(self)
         self.trial_tabs = QtWidgets.QTabBar()
         for i, t in enumerate(TRIALS):
@@ -51,7 +58,7 @@ class TrialPanel(QtWidgets.QGroupBox):
         self.trial_tabs.setExpanding(False)
         lay.addWidget(self.trial_tabs, 0, 0, 1, 4)  # above the controls and the comparison
         self.mode = QtWidgets.QComboBox()
-        self.mode.addItems(["volume control", "pressure control"])
+        self.mode.addItems([words for _mode, words in MODES])
         self.mode.currentIndexChanged.connect(lambda _i: self._changed("mode"))
         lay.addWidget(QtWidgets.QLabel("Mode"), 1, 0)
         lay.addWidget(self.mode, 1, 1)
@@ -123,12 +130,13 @@ class TrialPanel(QtWidgets.QGroupBox):
             self._show_rows()
 
     def _show_rows(self):
-        """The size of the breath is VT in volume control, the inspiratory pressure in pressure control;
-        sliders only when the panel is wide enough."""
+        """The size of the breath is VT in volume control, the inspiratory pressure in pressure control, the
+        support on pressure support (none on CPAP: the patient's own); sliders only when the panel is wide
+        enough."""
         for key, (name, spin, slider) in self.rows.items():
-            name.setVisible(key != self._hidden_key)
-            spin.setVisible(key != self._hidden_key)
-            slider.setVisible(key != self._hidden_key and not self._compact)
+            name.setVisible(key not in self._hidden)
+            spin.setVisible(key not in self._hidden)
+            slider.setVisible(key not in self._hidden and not self._compact)
 
     def _changed(self, key):
         if not self._quiet:
@@ -159,7 +167,7 @@ class TrialPanel(QtWidgets.QGroupBox):
         self.problem.hide()
 
     def mode_value(self) -> str:
-        return "volume" if self.mode.currentIndex() == 0 else "pressure"
+        return MODES[self.mode.currentIndex()][0]
 
     def value(self, key: str) -> float:
         return round(float(self.spins[key].value()), 2)
@@ -176,8 +184,8 @@ class TrialPanel(QtWidgets.QGroupBox):
         """Set the controls to the settings ``s`` (case-file keys) without reporting changes."""
         self._quiet = True
         try:
-            self.mode.setCurrentIndex(0 if s["mode"] == "volume" else 1)
-            self._hidden_key = "inspiratory_pressure_cmh2o" if s["mode"] == "volume" else "vt_ml"
+            self.mode.setCurrentIndex([m for m, _w in MODES].index(s["mode"]))
+            self._hidden = HIDDEN_IN_MODE[s["mode"]]
             self._show_rows()
             for key, _label, _unit, _lo, _hi, step, _dec in CONTROLS:
                 v = s.get(key)
@@ -218,6 +226,10 @@ class TrialPanel(QtWidgets.QGroupBox):
             self.compare.setItem(r, 0, QtWidgets.QTableWidgetItem(self._value(measured.get(key), unit, digits, units)))
             for col, (label, block) in enumerate([("now", now)] + [(t, compare.get(t)) for t in TRIALS], start=1):
                 text = "-" if block is None else self._value(block.get(key), unit, digits, units)
+                if block is not None and block.get(f"{key}_bounds") is not None:
+                    # On support: the span between the two bounds (effort unchanged, drive preserved).
+                    lo, hi = block[f"{key}_bounds"]
+                    text = self._value(lo, unit, digits, units) + "\u2013" + self._value(hi, unit, digits, units)
                 if label == "now" and text != "-" and key in self.DIFFERENCE_KEYS and measured.get(key) is not None:
                     diff = float(block[key]) - float(measured[key])
                     kpa = unit == "gas" and units == "kPa"  # the same unit and decimals as _value

@@ -9,7 +9,8 @@ from __future__ import annotations
 import numpy as np
 
 from ..casefile import check_settings
-from .common import TRIALS, TrialChange
+from ..engine import MODE_ONLY
+from .common import MODES, TRIALS, TrialChange
 
 
 class TrialEditing:
@@ -41,6 +42,12 @@ class TrialEditing:
                 after["inspiratory_pressure_cmh2o"] = self._pressure_for_volume(after)
             if mode == "volume" and after.get("vt_ml") is None:
                 after["vt_ml"] = float(self.state.case["settings"].get("vt_ml") or 6.0 * self._pbw())
+            if mode == "pressure-support" and after.get("pressure_support_cmh2o") is None:
+                after["pressure_support_cmh2o"] = float(self.state.case["settings"].get("pressure_support_cmh2o") or 10.0)
+            # The settings of the old mode that the new one does not have are dropped, as on the command line.
+            for k, only in MODE_ONLY.items():
+                if after.get(k) is not None and mode != only and not (k == "cycle_off_fraction" and mode == "cpap"):
+                    after[k] = None
         else:
             after[key] = self.trial_panel.value(key)
         if after == before:
@@ -78,7 +85,7 @@ class TrialEditing:
     def set_trial_value(self, key: str, value):
         """Programmatic control change (tests, walkthroughs): as if the user had typed it."""
         if key == "mode":
-            self.mode.setCurrentIndex(0 if value == "volume" else 1)
+            self.mode.setCurrentIndex([m for m, _w in MODES].index(value))
         else:
             self.spins[key].setValue(float(value))
 
@@ -87,6 +94,9 @@ class TrialEditing:
         pbw = self._pbw()
         if s["mode"] == "volume" and s.get("vt_ml"):
             return f"VT {s['vt_ml'] / pbw:.1f} mL/kg PBW (PBW {pbw:.1f} kg)"
+        if s["mode"] in ("pressure-support", "cpap"):
+            return (f"PBW {pbw:.1f} kg; VT and rate are the patient's: forecast between two bounds (effort unchanged, "
+                    f"drive preserved); RR and Ti here are the backup")
         return f"PBW {pbw:.1f} kg; VT follows from the inspiratory pressure"
 
     def use_step(self, row):

@@ -6,8 +6,10 @@ conditions (pressure support at most 8 cmH2O on PEEP at most 5, or CPAP; common 
 both bounds of :func:`physiology.mechanics.spontaneous.support_bounds` -- *effort unchanged* and *drive
 preserved* -- with VT, rate, RSBI, effort, and the blood gases of each from the gas-exchange engine (the
 breath's alveolar ventilation given to the lung as a volume-controlled breath of the same VT, rate and
-inspiratory time). Every stop rule is checked on both bounds; a step that would break one is still
-listed, with the rules it breaks named, and the plan ends there.
+inspiratory time). Every stop rule is checked on both bounds and every rule a bound breaks is named on
+its step. A step whose *effort unchanged* bound breaks a rule is still proposed (the patient may raise
+their effort; the step says what happens if not); the plan ends at the step whose *drive preserved*
+bound breaks one, listed with the rules named.
 
 Stop rules (:data:`STOP_RULES`): rate above 35/min, RSBI above 105 breaths/min/L (Yang & Tobin 1991),
 SaO2 below the goal, pH below 7.32 (failure criteria of a breathing trial: Boles 2007, from memory),
@@ -125,8 +127,12 @@ def support_step_down(model: PatientModel, fio2, peep, pressure_support_now, pmu
         broken = tuple(dict.fromkeys(numbers["effort_unchanged"]["breaks"] + numbers["drive_preserved"]["breaks"]))
         steps.append(SupportStep(new, numbers, broken))
         ps = new
-        if broken:
-            stopped = f"at pressure support {new:g} cmH2O: " + "; ".join(broken)
+        # The plan goes on while the patient could manage the step by keeping their drive (each step says what
+        # breaks if they do not); it ends where even that breaks a rule, or cannot keep the ventilation.
+        kept = numbers["drive_preserved"]
+        if kept["breaks"] or not kept["attainable"]:
+            why = kept["breaks"] or ["the alveolar ventilation of now cannot be kept"]
+            stopped = f"at pressure support {new:g} cmH2O, even with the drive preserved: " + "; ".join(why)
             break
     reached = stopped is None and ps <= TRIAL_SUPPORT_MAX and float(peep) <= TRIAL_PEEP_MAX
     note = ""
