@@ -499,7 +499,12 @@ GAS_OPTIONS = (("--pao2-mmhg", "pao2_mmhg", "--pao2-kpa", "PaO2 [mmHg] (or --pao
                ("--pplat-cmh2o", "pplat_cmh2o", None, "plateau pressure [cmH2O]"),
                ("--ppeak-cmh2o", "ppeak_cmh2o", None, "peak pressure [cmH2O]"),
                ("--vte-ml", "vte_ml", None, "exhaled VT [mL]"), ("--ve-l-min", "ve_l_min", None, "minute ventilation [L/min]"),
-               ("--hb-g-dl", "hb_g_dl", None, "haemoglobin with the gas [g/dL] (becomes the patient's Hb)"))
+               ("--hb-g-dl", "hb_g_dl", None, "haemoglobin with the gas [g/dL] (becomes the patient's Hb)"),
+               ("--spontaneous-rr-per-min", "spontaneous_rr_per_min", None,
+                "the patient's own rate on pressure support or CPAP [/min] (required there, with --vte-ml)"),
+               ("--p01-cmh2o", "p01_cmh2o", None, "airway occlusion pressure at 0.1 s [cmH2O]"),
+               ("--delta-pocc-cmh2o", "delta_pocc_cmh2o", None,
+                "expiratory occlusion swing [cmH2O], negative as measured (write --delta-pocc-cmh2o=-6)"))
 
 
 def _cmd_add_gas(args) -> int:

@@ -18,7 +18,7 @@ from .casefile import FORMAT, VERSION, CaseError, check_patient, check_taken_at,
 
 #: Observation fields a blood-gas form or command may fill, with their unit (gas pressures in mmHg).
 GAS_FIELDS = ("pao2_mmhg", "paco2_mmhg", "ph", "sao2", "hco3_mmol_l", "petco2_mmhg", "pplat_cmh2o", "ppeak_cmh2o",
-              "vte_ml", "ve_l_min")
+              "vte_ml", "ve_l_min", "spontaneous_rr_per_min", "p01_cmh2o", "delta_pocc_cmh2o")
 #: The quantities the forecast check compares (the stored course has each with its likely range).
 CHECKED = (("pao2_mmhg", "PaO2", "mmHg", 0), ("paco2_mmhg", "PaCO2", "mmHg", 1), ("ph", "pH", "", 2))
 

@@ -239,10 +239,10 @@ def test_a_change_is_refused_unless_after_the_last_and_the_stored_forecast_is_ne
     assert forecast_check(three)["pair_count"] == 1
 
 
-def test_a_version_1_file_reads_unchanged_and_is_saved_as_version_2(tmp_path):
+def test_a_version_1_file_reads_unchanged_and_is_saved_as_the_current_version(tmp_path):
     case = load_demo("ards-moderate")
     assert case["version"] == 1 and "settings_history" not in case
-    assert json.loads(dumps(case))["version"] == 2
+    assert json.loads(dumps(case))["version"] == 3
 
 
 def test_new_case_function_refuses_what_the_command_refuses():

@@ -149,3 +149,21 @@ def test_switching_modes_drops_the_old_modes_settings():
         engine.apply_sets(load_demo("postop-wean"), ["pressure_support_cmh2o=8"])
     cpap = engine.apply_sets(copy.deepcopy(case), ["mode=cpap"])
     assert cpap["pressure_support_cmh2o"] is None
+
+
+def test_a_gas_on_support_is_added_with_its_own_breathing(tmp_path, capsys):
+    """add-gas takes the patient's own rate, P0.1 and the occlusion swing; on support it refuses a gas without
+    the measured VT and rate, naming the field, and leaves the file as it was."""
+    path = tmp_path / "case.ventcast.json"
+    path.write_text(dumps(load_demo(DEMO)))
+    assert main(["add-gas", str(path), "--pao2-mmhg", "80", "--paco2-mmhg", "47", "--ph", "7.35", "--vte-ml", "430",
+                 "--spontaneous-rr-per-min", "27", "--p01-cmh2o", "3.1", "--delta-pocc-cmh2o=-8",
+                 "--set", "pressure_support_cmh2o=10", "--at", "2026-09-02T10:00:00Z"]) == 0
+    capsys.readouterr()
+    obs = json.loads(path.read_text())["observations"][-1]
+    assert (obs["spontaneous_rr_per_min"], obs["p01_cmh2o"], obs["delta_pocc_cmh2o"]) == (27, 3.1, -8)
+    before = path.read_text()
+    assert main(["add-gas", str(path), "--pao2-mmhg", "80", "--paco2-mmhg", "47", "--ph", "7.35",
+                 "--at", "2026-09-02T11:00:00Z"]) == 2
+    assert "vte_ml: required for a blood gas taken in pressure-support mode" in capsys.readouterr().err
+    assert path.read_text() == before

@@ -969,7 +969,7 @@ def test_bedside_loop_in_the_window(qtbot, qapp, tmp_path):
         path = tmp_path / "loop.ventcast.json"
         assert w._save_to(str(path))
         reopened = load(str(path))
-        assert reopened["version"] == 2 and len(reopened["observations"]) == 2
+        assert reopened["version"] == 3 and len(reopened["observations"]) == 2
         assert reopened["settings_history"][0]["forecast"] == stored
         assert forecast_check(reopened) == check
     finally:

@@ -74,7 +74,9 @@ FIELD_WORDS = {"pao2_mmhg": "PaO2", "paco2_mmhg": "PaCO2", "ph": "pH", "sao2": "
                "petco2_mmhg": "PetCO2", "pplat_cmh2o": "Pplat", "ppeak_cmh2o": "Ppeak", "vte_ml": "exhaled VT",
                "ve_l_min": "minute ventilation", "hb_g_dl": "Hb", "taken_at": "time taken", "height_cm": "height",
                "weight_kg": "weight", "age_years": "age", "temperature_c": "temperature",
-               "barometric_mmhg": "barometric pressure", "sex": "sex", "patient": "patient", "settings": "settings"}
+               "barometric_mmhg": "barometric pressure", "sex": "sex", "patient": "patient", "settings": "settings",
+               "spontaneous_rr_per_min": "own rate", "p01_cmh2o": "P0.1", "delta_pocc_cmh2o": "\u0394Pocc",
+               "cycle_off_fraction": "cycling criterion"}
 
 
 def field_in_words(field: str) -> str:

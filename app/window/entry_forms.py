@@ -16,7 +16,7 @@ from ..casefile import CaseError, setting_words
 from ..engine import settings_text
 from ..entry import add_observation, kpa_to_mmhg, new_case, replace_observation, settings_from_sets
 from ..paste import FIELD, read_pasted
-from .common import CONTROLS, field_in_words, kpa_from_mmhg, mmhg_text_in
+from .common import CONTROLS, HIDDEN_IN_MODE, field_in_words, kpa_from_mmhg, mmhg_text_in
 
 _BAD = "border: 2px solid #b00020;"
 
@@ -117,14 +117,14 @@ class NewCaseDialog(_Form):
         patient.addRow("Condition (sets the fit's priors)", self.condition)
         settings = QtWidgets.QFormLayout()
         self.mode = QtWidgets.QComboBox()
-        self.mode.addItems(["volume", "pressure"])
+        self.mode.addItems(["volume", "pressure", "pressure-support", "cpap"])
         self.mode.currentIndexChanged.connect(self.revalidate)
         self.fields["mode"] = self.mode
         settings.addRow("Mode *", self.mode)
         # Empty, never the previous patient's settings: nothing is carried over from one patient to the next.
         for key, label, unit, *_ in CONTROLS:
-            w = self._line(key, "required" if key != "inspiratory_pressure_cmh2o" and key != "vt_ml" else
-                           "required in its mode")
+            w = self._line(key, "required" if key not in ("inspiratory_pressure_cmh2o", "vt_ml", "pressure_support_cmh2o")
+                           else "required in its mode")
             settings.addRow(f"{label} [{unit}]" if unit else label, w)
         settings.addRow("Apparatus dead space [mL]", self._line("apparatus_dead_space_ml", "0"))
         for title, form in (("Patient", patient), ("Current settings", settings)):
@@ -148,10 +148,10 @@ class NewCaseDialog(_Form):
             if key not in patient:
                 raise CaseError(f"patient.{key}", "required")
         sets = [f"mode={self.mode.currentText()}"]
-        unused = "inspiratory_pressure_cmh2o" if self.mode.currentText() == "volume" else "vt_ml"  # not in this mode
+        unused = HIDDEN_IN_MODE[self.mode.currentText()]  # the breath-size settings of the other modes
         for key, *_ in list(CONTROLS) + [("apparatus_dead_space_ml",)]:
             v = _number(self.fields[key].text(), f"settings.{key}")
-            if v is not None and key != unused:
+            if v is not None and key not in unused:
                 sets.append(f"{key}={v!r}")
         settings = settings_from_sets(patient, sets, where="settings")
         return new_case(patient, settings, label=self.label.text().strip() or None,
@@ -164,7 +164,9 @@ class GasDialog(_Form):
     GAS = (("ph", "pH *", ""), ("paco2_mmhg", "PaCO2 *", "gas"), ("pao2_mmhg", "PaO2 *", "gas"),
            ("sao2", "SaO2 [%]", ""), ("hco3_mmol_l", "HCO3 [mmol/L]", ""), ("petco2_mmhg", "PetCO2", "gas"),
            ("pplat_cmh2o", "Pplat [cmH2O]", ""), ("ppeak_cmh2o", "Ppeak [cmH2O]", ""), ("vte_ml", "Exhaled VT [mL]", ""),
-           ("ve_l_min", "Minute ventilation [L/min]", ""), ("hb_g_dl", "Hb [g/dL]", ""))
+           ("ve_l_min", "Minute ventilation [L/min]", ""), ("hb_g_dl", "Hb [g/dL]", ""),
+           ("spontaneous_rr_per_min", "Own rate [/min] (on support)", ""), ("p01_cmh2o", "P0.1 [cmH2O]", ""),
+           ("delta_pocc_cmh2o", "\u0394Pocc [cmH2O, negative]", ""))
 
     def __init__(self, case: dict, units: str, parent=None, index: int | None = None):
         super().__init__("Add blood gas" if index is None else "Edit blood gas", parent)
