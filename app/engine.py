@@ -515,15 +515,15 @@ def capacity_refusal(model, trial: Settings, pred) -> str:
 
 
 def spontaneous_now(case: dict, result) -> dict:
-    """The patient's breathing and effort now, on pressure support or CPAP: the measured VT and rate, the
-    mechanics the breath model uses (resistance fitted; compliance the chord compliance of the fitted lung
+    """The patient's breathing and effort, on pressure support or CPAP, at the newest gas taken on it (and the
+    support then in force): the measured VT and rate, the mechanics the breath model uses (resistance fitted; compliance the chord compliance of the fitted lung
     at the measured VT), and the peak muscle pressure Pmus that gives the measured VT at the current support
     with those mechanics (:func:`physiology.mechanics.spontaneous.effort_from_tidal_volume`), so that the
     forecast starts from what was measured. An occlusion swing ΔPocc, when measured, gives the effort the
     Limits judge (Bertoni 2019: Pmus = -3/4 ΔPocc, ΔPL,dyn = (Ppeak - PEEP) - 2/3 ΔPocc); both are reported."""
-    s = case["settings"]
     obs = latest_spontaneous(case)
-    equivalent = current_settings(case)
+    s = obs["settings"]  # the effort was measured at the support in force when the gas was taken
+    equivalent = to_settings(s, obs)
     pred = predict(result.model, equivalent)
     if not pred.success:
         raise ModelError(f"the fitted model has no steady state at the measured breathing: {pred.message}")
