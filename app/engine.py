@@ -585,9 +585,9 @@ def trial_engine_settings(case: dict, result, trial_dict: dict) -> Settings:
     return to_settings(trial_dict)
 
 
-def _spontaneous_block(case, result, trial_dict, supported) -> tuple:
+def _spontaneous_block(result, supported) -> tuple:
     """The ``spontaneous`` block of a forecast and the likely range spanning both bounds and the draws."""
-    bounds_out, spans = {}, {}
+    bounds_out = {}
     for name in ("effort_unchanged", "drive_preserved"):
         b = supported["bounds"][name]
         br = b["breath"]
@@ -606,6 +606,7 @@ def _spontaneous_block(case, result, trial_dict, supported) -> tuple:
             "inspiratory_time_s": _f(br.ti_s), "alveolar_ventilation_l_min": float(b["alveolar_ventilation"]),
             "attainable": bool(b["attainable"]), "pao2_mmhg": gas.get("pao2_mmhg"), "paco2_mmhg": gas.get("paco2_mmhg"),
             "ph": gas.get("ph"), "sao2": gas.get("sao2"), "likely_range": ranges}
+
     def span(key, ranged=False):
         vals = []
         for v in bounds_out.values():
@@ -739,7 +740,7 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
         out["likely_range"] = {"pao2_mmhg": list(ranges["pao2"]), "paco2_mmhg": list(ranges["paco2"]),
                                "ph": list(ranges["ph"]), "sao2": list(ranges["sao2"])}
     if supported is not None:
-        out["spontaneous"], likely = _spontaneous_block(case, result, trial_dict, supported)
+        out["spontaneous"], likely = _spontaneous_block(result, supported)
         if likely is not None:
             out["likely_range"] = likely
     alerts = limit_alerts(steady, case.get("goals"))
