@@ -122,8 +122,24 @@ class TrialPanel(QtWidgets.QGroupBox):
     #: every trial fits beside the controls on a 1280-pixel screen.
     COMPACT_WIDTH = 820
 
+    def showEvent(self, event):
+        # Columns filled before the panel was first shown (a forecast computed while the window was being
+        # built) were measured before the style was applied: measure them again.
+        super().showEvent(event)
+        self._fit_columns()
+
+    def _fit_columns(self):
+        """Every column as wide as its values (with their ranges); the last one stretches into spare room
+        only, so that where the panel is too narrow the table scrolls sideways instead of cutting a value."""
+        header = self.compare.horizontalHeader()
+        header.setStretchLastSection(False)
+        self.compare.resizeColumnsToContents()
+        needed = sum(header.sectionSize(c) for c in range(self.compare.columnCount()) if not header.isSectionHidden(c))
+        header.setStretchLastSection(needed < self.compare.viewport().width())
+
     def resizeEvent(self, event):
         super().resizeEvent(event)
+        self._fit_columns()
         compact = self.width() < self.COMPACT_WIDTH
         if compact != self._compact:
             self._compact = compact
@@ -241,4 +257,4 @@ class TrialPanel(QtWidgets.QGroupBox):
                     lo, hi = ranges[key]
                     text += f" ({self._value(lo, unit, digits, units)}–{self._value(hi, unit, digits, units)})"
                 self.compare.setItem(r, col, QtWidgets.QTableWidgetItem(text))
-        self.compare.resizeColumnsToContents()
+        self._fit_columns()
