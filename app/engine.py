@@ -1040,9 +1040,10 @@ def _wean_support(case: dict, result, goals) -> dict:
     plan = support_step_down(result.model, float(s["fio2"]), now["peep_cmh2o"], now["pressure_support_cmh2o"],
                              now["pmus_model_cmh2o"], now["rr_per_min"], now["ti_neural_s"],
                              now["resistance_cmh2o_l_s"], now["compliance_ml_per_cmh2o"],
-                             float(s.get("apparatus_dead_space_ml") or 0.0), spo2_goal, now["cycle_off_fraction"])
+                             float(s.get("apparatus_dead_space_ml") or 0.0), spo2_goal, now["cycle_off_fraction"],
+                             start=float(s.get("pressure_support_cmh2o") or 0.0))
     steps = []
-    before = now["pressure_support_cmh2o"]
+    before = float(s.get("pressure_support_cmh2o") or 0.0)  # the steps go down from the support in force
     for st in plan["steps"]:
         settings = dict(s, mode="pressure-support", pressure_support_cmh2o=st.pressure_support)
         bounds = {name: {k: (v if not isinstance(v, float) else float(v)) for k, v in b.items()}

@@ -167,3 +167,14 @@ def test_a_gas_on_support_is_added_with_its_own_breathing(tmp_path, capsys):
                  "--at", "2026-09-02T11:00:00Z"]) == 2
     assert "vte_ml: required for a blood gas taken in pressure-support mode" in capsys.readouterr().err
     assert path.read_text() == before
+
+
+def test_wean_steps_down_from_the_support_in_force_after_an_applied_change():
+    """A change to 10 cmH2O applied after the last gas (taken on 12): the effort stays the one measured on 12,
+    and the steps go down from 10."""
+    case = load_demo(DEMO)
+    case["settings"]["pressure_support_cmh2o"] = 10
+    out = engine.wean_case(case)
+    assert [s["settings"]["pressure_support_cmh2o"] for s in out["steps"]] == [8]
+    assert out["steps"][0]["change"] == "pressure support 10 -> 8 cmH2O"
+    assert out["effort_now"]["pressure_support_cmh2o"] == 12

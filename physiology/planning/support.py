@@ -100,13 +100,15 @@ def support_matching_vt(vt_ml, peep, resistance, compliance_ml, pmus, rr, ti_neu
 
 def support_step_down(model: PatientModel, fio2, peep, pressure_support_now, pmus, rr, ti_neural,
                       resistance, compliance_ml, apparatus_dead_space_ml=0.0, spo2_goal=0.88,
-                      cycle_off_fraction=CYCLE_OFF_DEFAULT) -> dict:
+                      cycle_off_fraction=CYCLE_OFF_DEFAULT, start=None) -> dict:
     """Lower pressure support by 2 cmH2O a step from ``pressure_support_now`` until the trial conditions.
 
     Returns {"now": the numbers of the current level, "steps": [SupportStep], "reached_trial_conditions":
     bool, "stopped_because": str or None, "note": str}. ``model`` is the fitted patient (one parameter set); ``pmus``, ``rr`` and
-    ``ti_neural`` the effort now (:mod:`physiology.mechanics.spontaneous`); ``resistance`` [cmH2O/L/s]
-    and ``compliance_ml`` [mL/cmH2O] the mechanics the breath model uses.
+    ``ti_neural`` the effort measured at ``pressure_support_now`` (:mod:`physiology.mechanics.spontaneous`);
+    ``resistance`` [cmH2O/L/s] and ``compliance_ml`` [mL/cmH2O] the mechanics the breath model uses;
+    ``start``: the support the steps go down from when it is not the one the effort was measured at (a
+    change applied since the last gas) [cmH2O].
     """
     series = float(np.asarray(model.mechanics.anatomic_dead_space_ml)) + float(apparatus_dead_space_ml)
     level_now = support_bounds(pressure_support_now, pressure_support_now, peep, resistance, compliance_ml, pmus, rr,
@@ -114,7 +116,7 @@ def support_step_down(model: PatientModel, fio2, peep, pressure_support_now, pmu
     now = _bound_numbers(model, fio2, peep, apparatus_dead_space_ml, level_now)
     steps = []
     stopped = None
-    ps = float(pressure_support_now)
+    ps = float(pressure_support_now if start is None else start)
     while ps > TRIAL_SUPPORT_MAX:
         new = max(ps - SUPPORT_STEP_CMH2O, TRIAL_SUPPORT_MAX if ps - SUPPORT_STEP_CMH2O < TRIAL_SUPPORT_MAX else 0.0)
         bounds = support_bounds(pressure_support_now, new, peep, resistance, compliance_ml, pmus, rr, ti_neural,
