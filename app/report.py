@@ -198,6 +198,26 @@ def report_html(case: dict, forecasts: dict, plan: dict | None = None, generated
         h.append(f"<tr><td>{escape(label)}</td>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
     h.append("</table>")
     for t, f in forecasts.items():
+        sp = f.get("spontaneous")
+        if not sp:
+            continue
+        # On pressure support or CPAP: both bounds of the patient's answer, side by side.
+        e = sp["effort_now"]
+        h.append(f"<p><b>Trial {escape(t)} on support: two bounds.</b> Now VT {e['vt_ml']:.0f} mL at "
+                 f"{e['rr_per_min']:.0f}/min (RSBI {e['rsbi']:.0f}); effort Pmus {e['pmus_cmh2o']:.1f} cmH2O "
+                 f"({escape(e['pmus_basis'])}). The rows above are the effort-unchanged bound.</p>")
+        h.append("<table border='1' cellspacing='0' cellpadding='3'><tr><th>quantity</th><th>effort unchanged</th>"
+                 "<th>drive preserved</th></tr>")
+        b1, b2 = sp["bounds"]["effort_unchanged"], sp["bounds"]["drive_preserved"]
+        for label, key, d in (("VT [mL]", "vt_ml", 0), ("rate [/min]", "rr_per_min", 0), ("RSBI [/min/L]", "rsbi", 0),
+                              ("Pmus [cmH2O]", "pmus_cmh2o", 1), ("PaCO2 [mmHg]", "paco2_mmhg", 1), ("pH", "ph", 2),
+                              ("PaO2 [mmHg]", "pao2_mmhg", 0)):
+            h.append(f"<tr><td>{escape(label)}</td><td>{_f(b1[key], d)}</td><td>{_f(b2[key], d)}</td></tr>")
+        h.append("</table>")
+        h.append("<ul>" + "".join(f"<li>{escape(words)}: {escape(sp['meaning'][name])}</li>" for name, words in
+                                  (("effort_unchanged", "effort unchanged"), ("drive_preserved", "drive preserved")))
+                 + "</ul>")
+    for t, f in forecasts.items():
         r = f.get("recheck_after_min")
         if r is not None:
             h.append(f"<p>Trial {escape(t)}: re-check a blood gas after about {max(r, 1):.0f} min at the earliest "

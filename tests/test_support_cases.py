@@ -178,3 +178,14 @@ def test_wean_steps_down_from_the_support_in_force_after_an_applied_change():
     assert [s["settings"]["pressure_support_cmh2o"] for s in out["steps"]] == [8]
     assert out["steps"][0]["change"] == "pressure support 10 -> 8 cmH2O"
     assert out["effort_now"]["pressure_support_cmh2o"] == 12
+
+
+def test_report_of_a_support_trial_shows_both_bounds():
+    from ventcast.app.report import compute_forecasts, report_html
+
+    case = load_demo(DEMO)
+    forecasts = compute_forecasts(case, {"A": ["pressure_support_cmh2o=8"]})
+    html = report_html(case, forecasts)
+    assert "two bounds" in html and "effort unchanged" in html and "drive preserved" in html
+    b = forecasts["A"]["spontaneous"]["bounds"]
+    assert f"<td>{b['drive_preserved']['vt_ml']:.0f}</td>" in html
