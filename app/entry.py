@@ -48,8 +48,9 @@ def settings_from_sets(patient: dict, sets, where: str = "--set") -> dict:
     from .engine import apply_sets
     check_patient({k: v for k, v in patient.items() if v is not None})
     given = {item.split("=", 1)[0].strip(): item.split("=", 1)[1].strip() for item in sets or () if "=" in item}
-    needed = list(REQUIRED_SETTINGS) + ["vt_ml" if given.get("mode", "volume") == "volume"
-                                        else "inspiratory_pressure_cmh2o"]
+    size = {"volume": ["vt_ml"], "pressure": ["inspiratory_pressure_cmh2o"],
+            "pressure-support": ["pressure_support_cmh2o"], "cpap": []}.get(given.get("mode", "volume"), [])
+    needed = list(REQUIRED_SETTINGS) + size
     missing = [k for k in needed if k not in given]
     if missing:
         raise CaseError(f"{where} {missing[0]}", f"required for a new case (missing: {', '.join(missing)})")

@@ -189,3 +189,21 @@ def test_report_of_a_support_trial_shows_both_bounds():
     assert "two bounds" in html and "effort unchanged" in html and "drive preserved" in html
     b = forecasts["A"]["spontaneous"]["bounds"]
     assert f"<td>{b['drive_preserved']['vt_ml']:.0f}</td>" in html
+
+
+def test_a_new_case_on_pressure_support(tmp_path, capsys):
+    """`new` takes a case on support (its support required, no VT or inspiratory pressure), and after a gas with
+    the patient's own breathing it forecasts a lower support with both bounds."""
+    path = tmp_path / "new.ventcast.json"
+    base = ["new", "--out", str(path), "--sex", "female", "--height-cm", "165", "--weight-kg", "70", "--set",
+            "mode=pressure-support", "--set", "fio2=0.4", "--set", "peep_cmh2o=5", "--set", "rr_per_min=12",
+            "--set", "inspiratory_time_s=1.0"]
+    assert main(base) == 2
+    assert "pressure_support_cmh2o: required for a new case" in capsys.readouterr().err
+    assert main(base + ["--set", "pressure_support_cmh2o=10"]) == 0
+    assert main(["add-gas", str(path), "--pao2-mmhg", "85", "--paco2-mmhg", "44", "--ph", "7.38", "--vte-ml", "420",
+                 "--spontaneous-rr-per-min", "20"]) == 0
+    capsys.readouterr()
+    assert main(["predict", str(path), "--set", "pressure_support_cmh2o=6", "--format", "json"]) == 0
+    sp = json.loads(capsys.readouterr().out)["spontaneous"]
+    assert sp["bounds"]["drive_preserved"]["rr_per_min"] > 20 > 0 and sp["vt_ml"][1] < 420
