@@ -790,6 +790,10 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
                                           f"the course's likely range"})
 
         out["course"] = course_block(course)
+        if supported is not None:  # the other bound's course, drawn beside (no likely range of its own)
+            other = simulate(result.model, current, supported["equivalents"]["drive_preserved"], minutes=minutes)
+            if other.success:
+                out["course_drive_preserved"] = course_block(other)
         out["course"].update({"pao2_low": _listed(lo_o2), "pao2_high": _listed(hi_o2), "paco2_low": _listed(lo_co2),
                               "paco2_high": _listed(hi_co2), "sao2_low": _listed(lo_sa, 4),
                               "sao2_high": _listed(hi_sa, 4), "ph_low": _listed(lo_ph, 4), "ph_high": _listed(hi_ph, 4)})

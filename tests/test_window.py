@@ -1200,6 +1200,14 @@ def test_a_case_on_pressure_support_in_the_window(qtbot, qapp):
         whats = [limits.table.item(r, 1).text() for r in range(limits.table.rowCount())]
         assert any("effort unchanged: RSBI" in t for t in whats) and any("drive preserved: rate" in t for t in whats)
         assert "course drawn is the effort-unchanged bound" in w.recheck_label.text()
+        # the other bound's course is drawn beside it (thin, dashed), as the engine computes it
+        _x, alt = w.charts["paco2"].alt.getData()
+        assert np.allclose(alt, out["course_drive_preserved"]["paco2_mmhg"])
+        assert "drive preserved" in w.outlook.key.text()
+        # every Limits row is shown whole (its wrapped text fits its height)
+        table = w.limits_panel.table
+        for r in range(table.rowCount()):
+            assert table.rowHeight(r) >= table.sizeHintForRow(r) - 1
         assert out["spontaneous"]["bounds"]["drive_preserved"]["rr_per_min"] > 22
         # back to pressure control: the support control hides, the inspiratory pressure shows
         _change(qtbot, w, "mode", "pressure")

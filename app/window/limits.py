@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from PySide6 import QtCore, QtWidgets
 
-from .common import STATUS_SYMBOL, mmhg_text_in
+from .common import STATUS_SYMBOL, _RowFitter, mmhg_text_in
 
 
 class LimitsPanel(QtWidgets.QWidget):
@@ -28,6 +28,9 @@ class LimitsPanel(QtWidgets.QWidget):
         self.table.setTextElideMode(QtCore.Qt.ElideNone)
         # Rows grow to their wrapped text whenever the column width changes (nothing cut off with "...").
         self.table.horizontalHeader().sectionResized.connect(lambda *_: self.table.resizeRowsToContents())
+        # ... and when the stretched column narrows without that signal (a vertical scroll bar appearing
+        # once the lines outgrow the panel, e.g. the effort checks of a trial on pressure support).
+        self.table.viewport().installEventFilter(_RowFitter(self.table))
         ll.addWidget(self.table, 1)
         self.goals_button = QtWidgets.QPushButton("Edit goals and limits of this case...")
         self.goals_button.clicked.connect(self.goals_requested.emit)

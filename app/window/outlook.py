@@ -30,6 +30,9 @@ class OutlookChart:
         self.min_span = min_span  # smallest y span drawn, so solver-size wiggles never fill a chart
         self.now = plot.plot(pen=_pen(NOW_STYLE[0], NOW_STYLE[1], 1))
         self.lines = {t: plot.plot(pen=_pen(c, style, 1)) for t, (c, style) in TRIAL_STYLE.items()}
+        # On pressure support: the course of the other bound (drive preserved), thin and dashed in the colour
+        # of the trial being edited.
+        self.alt = plot.plot(pen=_pen(TRIAL_STYLE["A"][0], QtCore.Qt.DashLine, 1))
         self.active = "A"
         # FillBetweenItem follows PlotCurveItems (a PlotDataItem outside a view never builds its path).
         self.low = pg.PlotCurveItem(pen=pg.mkPen(None))
@@ -58,13 +61,20 @@ class OutlookChart:
         return self.lines[self.active]
 
     def set(self, minutes, courses: dict | None = None, active: str = "A", now=None, low=None, high=None,
-            recheck=None, limit=None):
+            recheck=None, limit=None, alt=None):
         """Draw ``courses`` ({trial: values}) over ``minutes``; ``active`` is the trial being edited (drawn
-        thicker, with the band ``low``-``high``); ``now`` the current settings; ``limit`` a ceiling."""
+        thicker, with the band ``low``-``high``); ``now`` the current settings; ``limit`` a ceiling;
+        ``alt`` the active trial's other bound on pressure support (drive preserved)."""
         courses = courses or {}
         self.active = active
         self.x = np.asarray(minutes, dtype=float)
         ys = []
+        if alt is not None:
+            self.alt.setPen(_pen(TRIAL_STYLE[active][0], QtCore.Qt.DashLine, 1.2))
+            self.alt.setData(self.x, np.asarray(alt, dtype=float))
+            ys.append(np.asarray(alt, dtype=float))
+        else:
+            self.alt.setData([], [])
         for t, line in self.lines.items():
             colour, style = TRIAL_STYLE[t]
             line.setPen(_pen(colour, style, 2.5 if t == active else 1.2))
@@ -240,16 +250,23 @@ class OutlookPanel(QtWidgets.QGroupBox):
             key, now_value, scale = "sao2", 100.0 * float(g.sao2), pct
         else:
             key, now_value, scale = "pao2_mmhg", conv(float(g.pao2)), conv
+        alt = out.get("course_drive_preserved")  # on pressure support: the other bound's course
+        if alt is not None and len(alt.get("minutes", [])) != m.size:
+            alt = None
+
+        def other(k, f=lambda a: a):
+            return None if alt is None else f(_array(alt[k]))
+
         lo, hi = band_of("sao2" if oxygen_view == "sao2" else "pao2", scale)
         self.charts["oxygen"].set(m, {t: scale(_array(v[key])) for t, v in courses.items()}, active,
-                                  flat * now_value, lo, hi, recheck)
+                                  flat * now_value, lo, hi, recheck, alt=other(key, scale))
         lo, hi = band_of("paco2", conv)
         self.charts["paco2"].set(m, {t: conv(_array(v["paco2_mmhg"])) for t, v in courses.items()}, active,
-                                 flat * conv(float(g.paco2)), lo, hi, recheck)
+                                 flat * conv(float(g.paco2)), lo, hi, recheck, alt=other("paco2_mmhg", conv))
         self.charts["ph"].set(m, {t: _array(v["ph"]) for t, v in courses.items()}, active, flat * float(g.ph),
-                              recheck=recheck)
+                              recheck=recheck, alt=other("ph"))
         self.charts["vd_vt"].set(m, {t: _array(v["vd_vt"]) for t, v in courses.items() if "vd_vt" in v}, active,
-                                 flat * float(g.vd_vt), recheck=recheck)
+                                 flat * float(g.vd_vt), recheck=recheck, alt=other("vd_vt"))
         # Pressures follow a setting change at once (recruitment adds a small drift not drawn here): each
         # trial's steady-state value, from the comparison of every trial.
         for chart, key, now_p, ceiling in (("pplat", "pplat_cmh2o", float(b.pplat), goals.get("pplat_max_cmh2o")),
@@ -258,12 +275,12 @@ class OutlookPanel(QtWidgets.QGroupBox):
             values = {t: flat * float(s[key]) for t, s in compare.items()
                       if s is not None and s.get(key) is not None and t in courses}
             self.charts[chart].set(m, values, active, flat * now_p, limit=ceiling)
-        self._show_key(active, courses, missing, band is not None, units, oxygen_view)
+        self._show_key(active, courses, missing, band is not None, units, oxygen_view, alt is not None)
         self.setTitle(self.TITLE)
         self.placeholder.hide()
         self.graphics.show()
 
-    def _show_key(self, active, courses, missing, with_band, units, oxygen_view):
+    def _show_key(self, active, courses, missing, with_band, units, oxygen_view, with_alt=False):
         def item(colour, style, text, bold=False):
             body = f"<b>{escape(text)}</b>" if bold else escape(text)
             return f"<span style='color:{colour}'><b>{STYLE_GLYPH[style]}</b></span>&nbsp;{body}"
@@ -273,7 +290,11 @@ class OutlookPanel(QtWidgets.QGroupBox):
             colour, style = TRIAL_STYLE[t]
             if t in courses:
                 extra = (" (editing; band: likely range 90 %)" if with_band else " (editing)") if t == active else ""
+                if t == active and with_alt:
+                    extra = extra.replace("(editing", "(editing, effort unchanged")
                 parts.append(item(colour, style, f"Trial {t}{extra}", bold=t == active))
+                if t == active and with_alt:
+                    parts.append(item(colour, QtCore.Qt.DashLine, f"Trial {t}, drive preserved"))
             elif t in missing:
                 parts.append(f"<span style='color:#666666'>Trial {t}: {escape(missing[t])}</span>")
         parts.append("<span style='background:#d6ebe0'>&nbsp;goal&nbsp;</span>")
