@@ -516,12 +516,15 @@ def capacity_refusal(model, trial: Settings, pred) -> str:
 
 def spontaneous_now(case: dict, result) -> dict:
     """The patient's breathing and effort, on pressure support or CPAP, at the newest gas taken on it (and the
-    support then in force): the measured VT and rate, the mechanics the breath model uses (resistance fitted; compliance the chord compliance of the fitted lung
-    at the measured VT), and the peak muscle pressure Pmus that gives the measured VT at the current support
-    with those mechanics (:func:`physiology.mechanics.spontaneous.effort_from_tidal_volume`), so that the
+    support then in force): the measured VT and rate, the mechanics the breath model uses (resistance fitted;
+    compliance the chord compliance of the fitted lung at the measured VT), and the peak muscle pressure Pmus
+    that gives the measured VT at that support with those mechanics (:func:`physiology.mechanics.spontaneous.effort_from_tidal_volume`), so that the
     forecast starts from what was measured. An occlusion swing ΔPocc, when measured, gives the effort the
     Limits judge (Bertoni 2019: Pmus = -3/4 ΔPocc, ΔPL,dyn = (Ppeak - PEEP) - 2/3 ΔPocc); both are reported."""
     obs = latest_spontaneous(case)
+    if obs is None:
+        raise CaseError("observations", "no blood gas was taken on pressure support or CPAP: the patient's own "
+                                        "breathing (vte_ml and spontaneous_rr_per_min) must be measured on it first")
     s = obs["settings"]  # the effort was measured at the support in force when the gas was taken
     equivalent = to_settings(s, obs)
     pred = predict(result.model, equivalent)
@@ -1060,12 +1063,14 @@ def _wean_support(case: dict, result, goals) -> dict:
                       "steady": {"pao2_mmhg": same["pao2"], "paco2_mmhg": same["paco2"], "ph": same["ph"],
                                  "sao2": same["sao2"], "vt_ml": same["vt_ml"], "rr_per_min": same["rr_per_min"]},
                       "bounds": bounds, "breaks": list(st.breaks), "hold_min": None,
-                      "hold_basis": "watch the breathing pattern and SpO2 before the next step", "stop_if": SUPPORT_STOP_IF})
+                      "hold_basis": "watch the breathing pattern and SpO2 before the next step",
+                      "stop_if": SUPPORT_STOP_IF})
     message = (f"{len(steps)} step(s) of pressure support" + (f"; stopped {plan['stopped_because']}"
                                                               if plan["stopped_because"] else ""))
     return {"goals": goals.as_dict(), "table": None, "mode": s["mode"],
             "target": {"pressure_support_cmh2o": TRIAL_SUPPORT_MAX, "peep_cmh2o": TRIAL_PEEP_MAX},
-            "success": True, "message": message, "effort_now": {k: now[k] for k in (
-                "pmus_cmh2o", "pmus_basis", "pmus_model_cmh2o", "vt_ml", "rr_per_min", "rsbi", "pressure_support_cmh2o")},
+            "success": True, "message": message,
+            "effort_now": {k: now[k] for k in ("pmus_cmh2o", "pmus_basis", "pmus_model_cmh2o", "vt_ml", "rr_per_min",
+                                               "rsbi", "pressure_support_cmh2o")},
             "now": plan["now"], "steps": steps, "reached_target": plan["reached_trial_conditions"],
             "stopped_because": plan["stopped_because"], "note": plan["note"], "readiness": [], "caution": CAUTION}

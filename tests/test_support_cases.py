@@ -207,3 +207,14 @@ def test_a_new_case_on_pressure_support(tmp_path, capsys):
     assert main(["predict", str(path), "--set", "pressure_support_cmh2o=6", "--format", "json"]) == 0
     sp = json.loads(capsys.readouterr().out)["spontaneous"]
     assert sp["bounds"]["drive_preserved"]["rr_per_min"] > 20 > 0 and sp["vt_ml"][1] < 420
+
+
+def test_a_case_put_on_support_before_any_gas_on_it_says_what_is_missing(capsys):
+    """A controlled case whose current settings became pressure support (applied, no gas yet on support):
+    the forecast names what is needed instead of failing."""
+    case = json.loads(dumps(load_demo("postop-wean")))
+    case["settings"] = dict(case["settings"], mode="pressure-support", pressure_support_cmh2o=10,
+                            inspiratory_pressure_cmh2o=None, vt_ml=None)
+    case = validate(case)
+    with pytest.raises(CaseError, match="patient's own breathing"):
+        engine.forecast_case(case, ["pressure_support_cmh2o=8"])
