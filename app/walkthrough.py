@@ -20,8 +20,8 @@ import numpy as np
 from ventcast.physiology.scenario import EVENT_KINDS, Action, Event, Timeline
 
 from . import CAUTION
-from .casefile import (CaseError, DEMO_NAMES, load, load_demo, parse_json, read_text, schema_error, setting_words,
-                       validate)
+from .casefile import (SPONTANEOUS_MODES, CaseError, DEMO_NAMES, load, load_demo, parse_json, read_text, schema_error,
+                       setting_words, validate)
 from .engine import apply_sets, fit_case, settings_dict, to_settings
 
 FORMAT = "ventcast.walkthrough"
@@ -149,6 +149,11 @@ class Run:
         if script.get("start_settings"):
             self.case["settings"] = apply_sets(self.case, [f"{k}={v}" for k, v in script["start_settings"].items()],
                                                where="script.start_settings")
+        if self.case["settings"]["mode"] in SPONTANEOUS_MODES:
+            where = "script.start_settings" if script.get("start_settings") else "script.case"
+            raise CaseError(where, f"settings in {self.case['settings']['mode']} mode: walkthroughs follow a patient in "
+                                   f"volume or pressure control only (a patient breathing on support is forecast with "
+                                   f"ventcast predict and wean)")
         _patient, _obs, fitted = fit_case(self.case)
         self.fit = fitted
         self.duration = float(script.get("duration_min", 60.0))
