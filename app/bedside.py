@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from ventcast.physiology.bloodgas.acidbase import base_excess_van_slyke
 from ventcast.physiology.gasexchange.alveolar import alveolar_po2
+from ventcast.physiology.mechanics.spontaneous import effort_from_occlusion
 from ventcast.physiology import indices
 
 #: Respiratory exchange ratio assumed for the ideal alveolar PO2 when VCO2/VO2 are unknown.
@@ -36,8 +37,7 @@ def bedside_indices(case: dict, observation_index: int = -1) -> dict:
         "rsbi": (spontaneous / (vt / 1000.0)) if (spontaneous and vt) else None,
         "p01_cmh2o": obs.get("p01_cmh2o"),
         "delta_pocc_cmh2o": pocc,
-        # Bertoni 2019 (coefficient from memory): Pmus = -3/4 x the expiratory occlusion swing.
-        "pmus_from_pocc_cmh2o": (-0.75 * pocc) if pocc is not None else None,
+        "pmus_from_pocc_cmh2o": effort_from_occlusion(pocc)["pmus_cmh2o"] if pocc is not None else None,
         "pf_ratio_mmhg": pf,
         "alveolar_po2_mmhg": pa_o2,
         "aa_gradient_mmhg": pa_o2 - obs["pao2_mmhg"],

@@ -15,8 +15,8 @@ from ventcast.physiology.planning.search import CONSTRAINT_NAMES
 
 from . import CAUTION
 from .bedside import bedside_indices
-from .casefile import (DEMO_NAMES, SETTING_RANGES, CaseError, check_output_file, check_output_files, demo_text, load, load_demo,
-                       read_text, write_atomic)
+from .casefile import (DEMO_NAMES, SETTING_RANGES, SPONTANEOUS_MODES, CaseError, check_output_file, check_output_files,
+                       demo_text, load, load_demo, read_text, write_atomic)
 from .engine import MARGIN_LABELS, RECHECK_NOTE, ModelError, ie_text
 from .precision import rounded, sao2_text
 
@@ -117,7 +117,7 @@ def _cmd_predict(args) -> int:
         print(json.dumps(out))
         return EXIT_OK
     s = out["settings"]
-    if s["mode"] in ("pressure-support", "cpap"):
+    if s["mode"] in SPONTANEOUS_MODES:
         support = (f"pressure support {s['pressure_support_cmh2o']:g} cmH2O (cycling at "
                    f"{100 * s['cycle_off_fraction']:.0f} % of peak flow)" if s["mode"] == "pressure-support" else "CPAP")
         print(f"Trial settings: {support}, FiO2 {s['fio2']:.2f}, PEEP {s['peep_cmh2o']:g} cmH2O, backup RR "
@@ -299,7 +299,7 @@ def _cmd_wean(args) -> int:
     if args.format == "json":
         print(json.dumps(out))
         return EXIT_OK
-    if out.get("mode") in ("pressure-support", "cpap"):
+    if out.get("mode") in SPONTANEOUS_MODES:
         _print_support_wean(out)
         return EXIT_OK
     how = f"following the ARDS Network {args.table} table" if args.table else "model-driven"

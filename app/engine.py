@@ -6,6 +6,7 @@ ready for JSON, tables or the window.
 
 from __future__ import annotations
 
+import json
 import math
 import re
 import threading
@@ -28,6 +29,7 @@ from ventcast.physiology.mechanics.spontaneous import (DPL_DYN_EXCESSIVE, PMUS_E
 from ventcast.physiology.mechanics.ventilator import BEYOND_CAPACITY, NO_ALVEOLAR_VENTILATION, Settings
 from ventcast.physiology.planning.search import Goals, margins, search
 from ventcast.physiology.planning.stepdown import step_down
+from ventcast.physiology.planning.support import PH_MIN, RATE_MAX
 from ventcast.physiology.protocols import LIMITS
 
 from . import CAUTION
@@ -118,6 +120,17 @@ MODE_ONLY = {"vt_ml": "volume", "inspiratory_pressure_cmh2o": "pressure",
              "pressure_support_cmh2o": "pressure-support", "cycle_off_fraction": "pressure-support"}
 
 
+def drop_other_modes(settings: dict, keep=()) -> dict:
+    """Clear (in place) the settings of modes other than ``settings["mode"]`` (a mode change never carries them
+    over silently; the new mode's own settings are then required by the checks), except the keys in ``keep``
+    (given explicitly: those are refused by the caller instead). CPAP keeps the cycling criterion."""
+    for key, mode in MODE_ONLY.items():
+        if key not in keep and settings.get(key) is not None and settings["mode"] != mode \
+                and not (key == "cycle_off_fraction" and settings["mode"] == "cpap"):
+            settings[key] = None
+    return settings
+
+
 def apply_sets(case: dict, sets, where: str = "--set") -> dict:
     """Trial settings: the case settings with each ``KEY=VALUE`` applied and range-checked.
 
@@ -156,12 +169,7 @@ def apply_sets(case: dict, sets, where: str = "--set") -> dict:
         if mode is not None and trial["mode"] != mode:
             raise CaseError(field(key), f"applies in {mode} mode only, and the trial is in {trial['mode']} mode; "
                                         f"add mode={mode} to change the mode")
-    # A setting of the old mode that the new one does not have is dropped (never carried over silently:
-    # the new mode's own settings are required by the check below).
-    for key, mode in MODE_ONLY.items():
-        if key not in given and trial.get(key) is not None and trial["mode"] != mode \
-                and not (key == "cycle_off_fraction" and trial["mode"] == "cpap"):
-            trial[key] = None
+    drop_other_modes(trial, keep=given)
     from ventcast.physiology.indices import predicted_body_weight
     pbw = float(predicted_body_weight(case["patient"]["height_cm"], case["patient"]["sex"]))
     return check_settings("trial settings" if option else where, trial, pbw)
@@ -555,10 +563,32 @@ def spontaneous_now(case: dict, result) -> dict:
     return out
 
 
+#: Trials on support already worked out, newest last: a forecast asks for the same trial in each of its stages
+#: (steady state, course, likely range) and for every other trial drawn beside it, and each answer is a pure
+#: function of the fit, the newest gas on support and the trial (entries hold their fit, compared by identity).
+_SUPPORTED: OrderedDict = OrderedDict()
+_SUPPORTED_LOCK = threading.Lock()
+
+
 def supported_trial(case: dict, result, trial_dict: dict) -> dict:
     """A trial on pressure support or CPAP: the effort now (:func:`spontaneous_now`), both bounds of the
     patient's answer (:func:`physiology.mechanics.spontaneous.support_bounds`) and, for each, the
     volume-controlled stand-in the lung model is given (same VT, rate and neural inspiratory share)."""
+    key = (json.dumps(latest_spontaneous(case), sort_keys=True), json.dumps(case["settings"]["mode"]),
+           json.dumps(trial_dict, sort_keys=True), id(result))
+    with _SUPPORTED_LOCK:
+        hit = _SUPPORTED.get(key)
+        if hit is not None and hit[0] is result:
+            return hit[1]
+    out = _supported_trial(case, result, trial_dict)
+    with _SUPPORTED_LOCK:
+        _SUPPORTED[key] = (result, out)
+        while len(_SUPPORTED) > FIT_MEMO_SIZE:
+            _SUPPORTED.popitem(last=False)
+    return out
+
+
+def _supported_trial(case: dict, result, trial_dict: dict) -> dict:
     if not is_spontaneous(case["settings"]):
         raise CaseError("trial settings.mode", f"value {trial_dict['mode']!r}: a forecast on pressure support or CPAP "
                                                f"needs the patient's own breathing, measured on it (a blood gas with "
@@ -643,7 +673,7 @@ EFFORT_LIMITS = {
     "pmus_low": ("Pmus", 3.0, "lung- and diaphragm-protective targets, Goligher 2020, from memory"),
     "dpl_dyn": ("dynamic transpulmonary driving pressure", DPL_DYN_EXCESSIVE, "Bertoni 2019"),
     "rsbi": ("RSBI", RSBI_FAILURE, "Yang & Tobin 1991"),
-    "rate": ("rate", 35.0, "breathing-trial failure criterion, Boles 2007, from memory"),
+    "rate": ("rate", RATE_MAX, "breathing-trial failure criterion, Boles 2007, from memory"),
 }
 
 
@@ -1032,8 +1062,8 @@ def wean_case(case: dict, result=None, table: str | None = None, target_fio2: fl
 
 
 #: What to watch on each step of pressure support (common practice, from memory).
-SUPPORT_STOP_IF = ("go back one step if the rate rises above 35/min, RSBI above 105, SpO2 falls below the goal, "
-                   "pH below 7.32, or signs of distress appear")
+SUPPORT_STOP_IF = (f"go back one step if the rate rises above {RATE_MAX:g}/min, RSBI above {RSBI_FAILURE:g}, SpO2 falls "
+                   f"below the goal, pH below {PH_MIN:g}, or signs of distress appear")
 
 
 def _wean_support(case: dict, result, goals) -> dict:

@@ -206,7 +206,7 @@ def test_a_new_case_on_pressure_support(tmp_path, capsys):
     capsys.readouterr()
     assert main(["predict", str(path), "--set", "pressure_support_cmh2o=6", "--format", "json"]) == 0
     sp = json.loads(capsys.readouterr().out)["spontaneous"]
-    assert sp["bounds"]["drive_preserved"]["rr_per_min"] > 20 > 0 and sp["vt_ml"][1] < 420
+    assert sp["bounds"]["drive_preserved"]["rr_per_min"] > 20 and sp["vt_ml"][1] < 420
 
 
 def test_a_case_put_on_support_before_any_gas_on_it_says_what_is_missing(capsys):
@@ -229,3 +229,18 @@ def test_walkthroughs_refuse_a_patient_on_support_and_say_why(tmp_path, capsys):
     assert main(["walkthrough", str(path), "--headless"]) == 2
     err = capsys.readouterr().err
     assert "script.case" in err and "volume or pressure control only" in err and "Traceback" not in err
+
+
+def test_a_support_trial_is_worked_out_once_per_fit():
+    """The steady, course and range stages of one forecast ask for the same trial: the second ask is the first
+    answer; another fit (a new object) is worked out again."""
+    from dataclasses import replace
+
+    case = load_demo(DEMO)
+    _p, _o, result = engine.fit_case(case)
+    trial = engine.apply_sets(case, ["pressure_support_cmh2o=8"])
+    first = engine.supported_trial(case, result, trial)
+    assert engine.supported_trial(case, result, dict(trial)) is first
+    again = engine.supported_trial(case, replace(result), trial)
+    assert again is not first
+    assert float(again["bounds"]["drive_preserved"]["rr"]) == pytest.approx(float(first["bounds"]["drive_preserved"]["rr"]))

@@ -10,6 +10,7 @@ from html import escape
 
 from PySide6 import QtCore, QtWidgets
 
+from ..casefile import SPONTANEOUS_MODES
 from ..engine import ie_text
 from ..precision import sao2_text
 from .common import gas_text, wrapped_table
@@ -158,7 +159,7 @@ class StepDownPanel(QtWidgets.QWidget):
                 self.steps.setItem(i, j, item)
         self.steps.resizeRowsToContents()
         marks = {True: "\u2713", False: "\u2716", None: "?"}
-        if out.get("mode") in ("pressure-support", "cpap"):
+        if out.get("mode") in SPONTANEOUS_MODES:
             end = (f"\u26a0 stopped {escape(out['stopped_because'])}" if out["stopped_because"] else
                    "\u2713 the breathing-trial conditions are reached at the last step" if out["reached_target"] else "")
             self.readiness.setText(f"<b>Pressure support:</b> {end}" + (f"<br>{escape(out['note'])}" if out.get("note")

@@ -8,8 +8,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..casefile import check_settings
-from ..engine import MODE_ONLY
+from ..casefile import SPONTANEOUS_MODES, check_settings
+from ..engine import drop_other_modes
 from .common import MODES, TRIALS, TrialChange
 
 
@@ -44,10 +44,7 @@ class TrialEditing:
                 after["vt_ml"] = float(self.state.case["settings"].get("vt_ml") or 6.0 * self._pbw())
             if mode == "pressure-support" and after.get("pressure_support_cmh2o") is None:
                 after["pressure_support_cmh2o"] = float(self.state.case["settings"].get("pressure_support_cmh2o") or 10.0)
-            # The settings of the old mode that the new one does not have are dropped, as on the command line.
-            for k, only in MODE_ONLY.items():
-                if after.get(k) is not None and mode != only and not (k == "cycle_off_fraction" and mode == "cpap"):
-                    after[k] = None
+            drop_other_modes(after)  # as on the command line
         else:
             after[key] = self.trial_panel.value(key)
         if after == before:
@@ -94,7 +91,7 @@ class TrialEditing:
         pbw = self._pbw()
         if s["mode"] == "volume" and s.get("vt_ml"):
             return f"VT {s['vt_ml'] / pbw:.1f} mL/kg PBW (PBW {pbw:.1f} kg)"
-        if s["mode"] in ("pressure-support", "cpap"):
+        if s["mode"] in SPONTANEOUS_MODES:
             return (f"PBW {pbw:.1f} kg; VT and rate are the patient's: forecast between two bounds (effort unchanged, "
                     f"drive preserved); RR and Ti here are the backup")
         return f"PBW {pbw:.1f} kg; VT follows from the inspiratory pressure"
