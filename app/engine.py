@@ -700,8 +700,9 @@ def effort_limit_lines(block: dict) -> list:
     if now["dpl_dyn_cmh2o"] is not None:
         what, top, source = EFFORT_LIMITS["dpl_dyn"]
         d = now["dpl_dyn_cmh2o"]
+        basis = now["dpl_dyn_basis"].split(" (Bertoni")[0]  # the line cites its source once, at the end
         line("dpl_dyn_excessive", "effort now: \u0394PL,dyn", d, 1, "cmH2O", f"\u2264 {top:g} cmH2O", d > top,
-             "caution", source, f"{what} now {d:.1f} cmH2O, above {top:g} ({now['dpl_dyn_basis']})")
+             "caution", source, f"{what} now {d:.1f} cmH2O, above {top:g}, as {basis}")
     for bound, words in (("effort_unchanged", "effort unchanged"), ("drive_preserved", "drive preserved")):
         b = block["bounds"][bound]
         for key, code, digits, unit in (("pmus_cmh2o", "pmus_high", 1, "cmH2O"), ("rsbi", "rsbi", 0, "/min/L"),
