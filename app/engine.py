@@ -24,8 +24,9 @@ from ventcast.physiology.forecast import predict
 from ventcast.physiology.indices import oxygenation_index
 from ventcast.physiology.mechanics.motion import mean_airway_pressure, mechanical_power_simplified
 from ventcast.physiology.mechanics.recruitment import aerated_volume
-from ventcast.physiology.mechanics.spontaneous import (DPL_DYN_EXCESSIVE, PMUS_EXCESSIVE, RSBI_FAILURE,
-                                                       effort_from_occlusion, effort_from_tidal_volume, support_bounds)
+from ventcast.physiology.mechanics.spontaneous import (DPL_DYN_EXCESSIVE, NEURAL_DUTY, PMUS_EXCESSIVE, RSBI_FAILURE,
+                                                       effort_from_occlusion, effort_from_tidal_volume, support_bounds,
+                                                       volume_stand_in)
 from ventcast.physiology.mechanics.ventilator import BEYOND_CAPACITY, NO_ALVEOLAR_VENTILATION, Settings
 from ventcast.physiology.planning.search import Goals, margins, search
 from ventcast.physiology.planning.stepdown import step_down
@@ -40,10 +41,6 @@ from .precision import decimals_for, sao2_text
 SETTING_KEYS = ("mode", "fio2", "peep_cmh2o", "vt_ml", "inspiratory_pressure_cmh2o", "rr_per_min",
                 "inspiratory_time_s", "apparatus_dead_space_ml", "pressure_support_cmh2o", "cycle_off_fraction")
 MODES = ("volume", "pressure", "pressure-support", "cpap")
-#: Share of a spontaneous breath spent in neural inspiration (Ti/Ttot about 0.35-0.4 in spontaneously
-#: breathing patients; common practice). Sets the effort's timing and the inspiratory time of the
-#: volume-controlled breath that stands in for a supported one in the lung model.
-NEURAL_DUTY = 0.35
 
 
 class ModelError(RuntimeError):
@@ -66,10 +63,8 @@ def to_settings(s: dict, observation: dict | None = None) -> Settings:
             raise CaseError("observations", f"settings in {s['mode']} mode are forecast from the patient's own "
                                             f"breathing: a blood gas at them with vte_ml and spontaneous_rr_per_min "
                                             f"is needed")
-        rr = float(observation["spontaneous_rr_per_min"])
-        return Settings(mode="volume", fio2=float(s["fio2"]), peep=float(s["peep_cmh2o"]),
-                        vt_ml=float(observation["vte_ml"]), rr=rr, ti=NEURAL_DUTY * 60.0 / rr,
-                        apparatus_dead_space_ml=float(s.get("apparatus_dead_space_ml") or 0.0))
+        return volume_stand_in(observation["vte_ml"], observation["spontaneous_rr_per_min"], s["fio2"],
+                               s["peep_cmh2o"], s.get("apparatus_dead_space_ml"))
     return Settings(mode=s["mode"], fio2=float(s["fio2"]), peep=float(s["peep_cmh2o"]),
                     vt_ml=None if s.get("vt_ml") is None else float(s["vt_ml"]),
                     inspiratory_pressure=None if s.get("inspiratory_pressure_cmh2o") is None
@@ -308,7 +303,8 @@ def model_assumptions(condition: str) -> list:
 def steady_block(pred, spontaneous: bool = False) -> dict:
     """The steady-state forecast in case-file keys. ``spontaneous``: the prediction is the volume-controlled
     stand-in of a breath on pressure support or CPAP, whose mechanical power would be the ventilator doing all
-    the work: it is left out (None)."""
+    the work, and whose peak and mean airway pressures are not those of the supported breath: they are left
+    out (None; :func:`supported_steady` gives the breath's own)."""
     g, b = pred.gas, pred.breathing
     out = {
         "pao2_mmhg": _f(g.pao2), "paco2_mmhg": _f(g.paco2), "ph": _f(g.ph), "sao2": _f(g.sao2),
@@ -324,7 +320,7 @@ def steady_block(pred, spontaneous: bool = False) -> dict:
     out["rr_per_min"] = None if not vt or ve is None else 1000.0 * ve / vt
     out["pmus_cmh2o"] = out["rsbi"] = None  # a passive patient makes no effort (and RSBI is a spontaneous index)
     if spontaneous:
-        out["mechanical_power_j_min"] = None
+        out["mechanical_power_j_min"] = out["ppeak_cmh2o"] = out["mean_airway_pressure_cmh2o"] = None
     return out
 
 
@@ -335,7 +331,9 @@ def supported_steady(case: dict, result, trial_dict: dict):
     pred = predict(result.model, sup["equivalents"]["effort_unchanged"])
     steady = steady_block(pred, spontaneous=True)
     b1, b2 = sup["bounds"]["effort_unchanged"], sup["bounds"]["drive_preserved"]
-    steady.update(rr_per_min=float(b1["rr"]), pmus_cmh2o=_f(b1["breath"].pmus), rsbi=_f(b1["breath"].rsbi))
+    br = b1["breath"]
+    steady.update(rr_per_min=float(b1["rr"]), pmus_cmh2o=_f(br.pmus), rsbi=_f(br.rsbi), ppeak_cmh2o=_f(br.ppeak),
+                  mean_airway_pressure_cmh2o=_f(br.mean_paw), intrinsic_peep_cmh2o=_f(br.intrinsic_peep))
     for key, get in (("vt_ml", lambda b: float(b["breath"].vt_ml)), ("rr_per_min", lambda b: float(b["rr"])),
                      ("pmus_cmh2o", lambda b: float(b["breath"].pmus)), ("rsbi", lambda b: float(b["breath"].rsbi))):
         lo, hi = sorted((get(b1), get(b2)))

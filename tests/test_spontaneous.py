@@ -166,3 +166,23 @@ def test_support_matching_the_current_tidal_volume():
     assert support_matching_vt(vt, 5.0, 10.0, 55.0, 4.0, 20.0, 1.0) == pytest.approx(11.0, abs=0.3)
     with pytest.raises(ValueError, match="outside what pressure support 0 to 40 cmH2O gives"):
         support_matching_vt(3000.0, 5.0, 10.0, 55.0, 4.0, 20.0, 1.0)
+
+
+def test_breaths_that_never_repeat_are_flagged_and_averaged(monkeypatch):
+    """A time constant near the breath's length with weak effort gives alternating breaths (no periodic
+    breath): flagged, and the mean of the last breaths, which holds within 3 % when four times as many breaths
+    are simulated (a convergence check, ours). An ordinary breath is periodic and stops early."""
+    from ventcast.physiology.mechanics import spontaneous as sp
+    irregular = dict(pressure_support=16.9, peep=5, resistance=21.4, compliance_ml=77.7, pmus=1.16, rr=30.13,
+                     ti_neural=0.8)
+    first = sp.supported_breath(**irregular)
+    assert not bool(first.periodic)
+    monkeypatch.setattr(sp, "BREATHS", 120)
+    monkeypatch.setattr(sp, "AVERAGED", 60)
+    longer = sp.supported_breath(**irregular)
+    assert float(first.vt_ml) == pytest.approx(float(longer.vt_ml), rel=0.03)
+    ordinary = sp.supported_breath(10.0, 5.0, 10.0, 50.0, 5.0, 20.0, 1.0)
+    assert bool(ordinary.periodic)
+    monkeypatch.setattr(sp, "SETTLED_L", -1.0)  # never settled: all 120 breaths
+    forced = sp.supported_breath(10.0, 5.0, 10.0, 50.0, 5.0, 20.0, 1.0)
+    assert float(forced.vt_ml) == pytest.approx(float(ordinary.vt_ml), abs=0.2)

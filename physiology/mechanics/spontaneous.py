@@ -44,8 +44,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from .._checks import check_range
+from .ventilator import Settings
 
-__all__ = ["SupportedBreath", "pmus_waveform", "supported_breath", "effort_from_occlusion",
+__all__ = ["SupportedBreath", "ventilation_kept", "volume_stand_in", "NEURAL_DUTY", "pmus_waveform", "supported_breath", "effort_from_occlusion",
            "effort_from_tidal_volume", "support_bounds", "rsbi", "RSBI_FAILURE", "PMUS_EXCESSIVE",
            "DPL_DYN_EXCESSIVE", "CYCLE_OFF_DEFAULT"]
 
@@ -58,6 +59,10 @@ DPL_DYN_EXCESSIVE = 15.0
 #: Bertoni 2019 conversion factors from ΔPocc (from memory) [3].
 PMUS_PER_DELTA_POCC = 0.75
 DPL_PER_DELTA_POCC = 2.0 / 3.0
+#: Share of a spontaneous breath spent in neural inspiration (Ti/Ttot about 0.35-0.4 in spontaneously
+#: breathing patients; common practice). Sets the effort's timing and the inspiratory time of the
+#: volume-controlled breath that stands in for a supported one in the lung model.
+NEURAL_DUTY = 0.35
 #: Flow-cycling criterion: share of peak inspiratory flow at which inspiration ends (a common default).
 CYCLE_OFF_DEFAULT = 0.25
 #: Pmus waveform time constants as shares of neural inspiration (rise) and of expiration (relaxation);
@@ -66,9 +71,13 @@ RISE_SHARE = 0.5
 RELAX_SHARE = 0.1
 #: Longest pressure-supported inspiration before the ventilator ends it [s] (a common safety limit).
 MAX_SUPPORTED_TI_S = 3.0
-#: Integration step [s] and breaths simulated towards the periodic state.
+#: Integration step [s]; breaths simulated towards the periodic state: at most BREATHS, fewer once a breath
+#: repeats the one before it within SETTLED_L [L] (VT and end-expiratory volume).
 STEP_S = 0.01
-BREATHS = 5
+BREATHS = 30
+SETTLED_L = 1e-4
+#: Breaths averaged where the breathing never became periodic.
+AVERAGED = 10
 
 _LIMITS = {
     "pressure_support": (0.0, 40.0, "cmH2O"), "peep": (0.0, 30.0, "cmH2O"), "resistance": (2.0, 60.0, "cmH2O/L/s"),
@@ -85,7 +94,10 @@ class SupportedBreath:
     intrinsic_peep, mean_paw, pmus, dpl_dyn (VT / C: the lung's share of the chest-wall-free single
     compartment) [cmH2O]; ptp_per_min (pressure-time product of Pmus) [cmH2O s/min];
     minute_ventilation [L/min]; rsbi [breaths/min/L]; cycled (False where the inspiration ran to
-    MAX_SUPPORTED_TI_S or the breath's end without meeting the flow criterion).
+    MAX_SUPPORTED_TI_S or the breath's end without meeting the flow criterion; for a breath that never
+    repeated itself, whether most of its last breaths cycled); periodic (False where the breaths never settled
+    to one repeating breath within BREATHS, e.g. alternating large and small breaths when the time constant
+    nears the breath's length: every value is then the mean of the last AVERAGED breaths).
     """
 
     vt_ml: np.ndarray
@@ -101,6 +113,7 @@ class SupportedBreath:
     minute_ventilation: np.ndarray
     rsbi: np.ndarray
     cycled: np.ndarray
+    periodic: np.ndarray
 
 
 def pmus_waveform(t, pmus, ti_neural, t_total):
@@ -169,11 +182,19 @@ def supported_breath(pressure_support, peep, resistance, compliance_ml, pmus, rr
     ptp = np.zeros(n)
     out = {k: np.full(n, np.nan) for k in ("vt", "peak", "ti", "v_ee", "paw", "ptp", "cycled")}
     decay = np.exp(-STEP_S / tau)
-    steps = int(np.ceil(BREATHS * np.max(ttot) / STEP_S))
+    steps = int(np.ceil((BREATHS + 1) * np.max(ttot) / STEP_S))
     breaths_done = np.zeros(n, dtype=int)
+    # The effort at each step of a breath, worked out once: row i, column j is Pmus at (j + 1/2) steps from
+    # the onset (a breath restarts its step count at its onset).
+    per_breath = int(np.ceil(np.max(ttot) / STEP_S)) + 2
+    effort = pmus_waveform((np.arange(per_breath) + 0.5)[None, :] * STEP_S, a[:, None], tin[:, None], ttot[:, None])
+    rows = np.arange(n)
+    j = np.zeros(n, dtype=int)       # steps since the onset of the current breath
+    periodic = np.zeros(n, dtype=bool)
+    done = np.zeros(n, dtype=bool)
+    tail_sum = {k: np.zeros(n) for k in out}
     for _ in range(steps):
-        t_mid = t_breath + 0.5 * STEP_S
-        p_mus = pmus_waveform(t_mid, a, tin, ttot)
+        p_mus = effort[rows, j]
         p_vent = np.where(inspiring, ps, 0.0)
         drive = p_vent + p_mus
         v_inf = c * drive
@@ -185,6 +206,7 @@ def supported_breath(pressure_support, peep, resistance, compliance_ml, pmus, rr
         ptp += p_mus * STEP_S
         v = v_new
         t_breath = t_breath + STEP_S
+        j += 1
         # Flow cycling: after the flow has peaked, once it falls to the criterion; or the safety limit.
         falling = flow < flow_prev
         end_insp = (inspiring & (ps > 0)
@@ -199,15 +221,19 @@ def supported_breath(pressure_support, peep, resistance, compliance_ml, pmus, rr
             # A breath ran its course: record it, start the next at the onset of effort.
             never_cycled = new_breath & inspiring & (ps > 0)
             ti_here = np.where(ps > 0, np.where(never_cycled, ttot, ti_mech), tin)
-            out["vt"] = np.where(new_breath, v_max - v_start, out["vt"])
-            out["peak"] = np.where(new_breath, peak, out["peak"])
-            out["ti"] = np.where(new_breath, ti_here, out["ti"])
-            out["v_ee"] = np.where(new_breath, v, out["v_ee"])
-            out["paw"] = np.where(new_breath, paw_integral / ttot, out["paw"])
-            out["ptp"] = np.where(new_breath, ptp * f, out["ptp"])
-            out["cycled"] = np.where(new_breath, cycled & ~never_cycled, out["cycled"])
+            # Periodic once a breath repeats the one before it (VT and end-expiratory volume within SETTLED_L).
+            record = new_breath & ~done
+            here = {"vt": v_max - v_start, "peak": peak, "ti": ti_here, "v_ee": v, "paw": paw_integral / ttot,
+                    "ptp": ptp * f, "cycled": (cycled & ~never_cycled).astype(float)}
+            same = (np.abs(here["vt"] - out["vt"]) < SETTLED_L) & (np.abs(v - out["v_ee"]) < SETTLED_L)
+            periodic |= record & same
+            tail = record & (breaths_done >= BREATHS - AVERAGED)
+            for k, x in here.items():
+                out[k] = np.where(record, x, out[k])
+                tail_sum[k] += np.where(tail, x, 0.0)
             breaths_done += new_breath
             t_breath = np.where(new_breath, 0.0, t_breath)
+            j = np.where(new_breath, 0, j)
             inspiring = inspiring | new_breath
             peak = np.where(new_breath, 0.0, peak)
             v_start = np.where(new_breath, v, v_start)
@@ -216,8 +242,13 @@ def supported_breath(pressure_support, peep, resistance, compliance_ml, pmus, rr
             ptp = np.where(new_breath, 0.0, ptp)
             cycled = np.where(new_breath, True, cycled)
             flow_prev = np.where(new_breath, 0.0, flow_prev)
-        if np.all(breaths_done >= BREATHS):
+            done |= periodic | (breaths_done >= BREATHS)
+        if np.all(done):
             break
+    # A breath that never repeated itself (alternating or irregular breaths, as when the time constant
+    # nears the breath's length): the mean of its last AVERAGED breaths.
+    for k in out:
+        out[k] = np.where(periodic, out[k], tail_sum[k] / AVERAGED)
     vt_l = out["vt"]
     intrinsic = out["v_ee"] / c
     reshape = (lambda x: np.asarray(x).reshape(shape)) if shape else (lambda x: np.asarray(x).ravel()[0])
@@ -226,7 +257,7 @@ def supported_breath(pressure_support, peep, resistance, compliance_ml, pmus, rr
         ppeak=reshape(pe + ps), peep_total=reshape(pe + intrinsic), intrinsic_peep=reshape(intrinsic),
         mean_paw=reshape(out["paw"]), pmus=reshape(a), dpl_dyn=reshape(vt_l / c),
         ptp_per_min=reshape(out["ptp"]), minute_ventilation=reshape(f * vt_l), rsbi=reshape(rsbi(f, 1000.0 * vt_l)),
-        cycled=reshape(out["cycled"].astype(bool)),
+        cycled=reshape(out["cycled"] >= 0.5), periodic=reshape(periodic),
     )
 
 
@@ -289,10 +320,8 @@ def support_bounds(pressure_support_now, pressure_support_new, peep, resistance,
     alveolar ventilation fall. ``drive_preserved``: the alveolar ventilation of now, ``rr (VT - VD)``,
     kept by the rate, at the same effort per breath and neural inspiratory time (expiration shortens):
     with less support VT falls and the rate rises, rapid shallow breathing, and the effort per minute
-    rises with the rate. The rate is the lowest on a grid (half the rate now to ``rr_max``, leaving at
-    least 0.3 s of expiration) whose breath keeps the ventilation, interpolated. Where no rate does
-    (shorter expirations trap gas), the rate of the most ventilation is kept and the effort per breath
-    rises until the ventilation is kept; ``attainable`` is False if even 40 cmH2O does not. Each bound:
+    rises with the rate; where no rate keeps it, the effort per breath rises (:func:`ventilation_kept`).
+    Each bound:
     {"breath": SupportedBreath (its ``pmus`` is the bound's effort), "rr" [1/min],
     "alveolar_ventilation" [L/min], "attainable"}; also "now".
     """
@@ -311,26 +340,64 @@ def support_bounds(pressure_support_now, pressure_support_new, peep, resistance,
     now = breath(pressure_support_now, rr)
     va_now = float(va(now.vt_ml, rr))
     out = {"now": bound(now, rr), "effort_unchanged": bound(breath(pressure_support_new, rr), rr)}
+    out["drive_preserved"] = ventilation_kept(va_now, pressure_support_new, peep, resistance, compliance_ml, pmus, rr,
+                                              tin, series_dead_space_ml, cycle_off_fraction, rr_max)
+    return out
+
+
+def ventilation_kept(alveolar_ventilation, pressure_support, peep, resistance, compliance_ml, pmus, rr, ti_neural,
+                     series_dead_space_ml, cycle_off_fraction=CYCLE_OFF_DEFAULT, rr_max=60.0) -> dict:
+    """The breath that keeps ``alveolar_ventilation`` [L/min] at this support: the *drive preserved* answer of
+    :func:`support_bounds`. The rate is the lowest on a grid (half ``rr`` to ``rr_max``, leaving at least
+    0.3 s of expiration) whose breath at the effort ``pmus`` keeps the ventilation, interpolated; where no
+    rate does, the rate of the most ventilation is kept and the effort per breath rises until it does
+    (interpolated the same way; ``attainable`` False if even 40 cmH2O does not). Returns {"breath", "rr", "alveolar_ventilation",
+    "attainable"}."""
+    vd = float(check_range("series dead space", series_dead_space_ml, 10.0, 600.0, "mL")) / 1000.0
+    rr, tin, va_now = float(rr), float(ti_neural), float(alveolar_ventilation)
+
+    def va(vt_ml, f):
+        return f * np.maximum(np.asarray(vt_ml, dtype=float) / 1000.0 - vd, 0.0)
+
     top = min(float(rr_max), 60.0 / (tin + 0.3))
     rates = np.linspace(max(4.0, 0.5 * rr), max(top, rr), 121)
-    va_grid = va(breath(pressure_support_new, rates).vt_ml, rates)
+    va_grid = va(supported_breath(pressure_support, peep, resistance, compliance_ml, pmus, rates, tin,
+                                  cycle_off_fraction).vt_ml, rates)
     enough = np.flatnonzero(va_grid >= va_now)
     effort = float(pmus)
     if enough.size == 0:
-        # The rate alone cannot keep it: at the rate of the most ventilation, the effort rises until it does.
+        # The rate alone cannot keep it: at the rate of the most ventilation, the effort rises until it does
+        # (where the effort of now ventilates nothing beyond the dead space at any rate, the rate of the most
+        # ventilation at the greatest effort).
+        if not np.any(va_grid > 0):
+            va_grid = va(supported_breath(pressure_support, peep, resistance, compliance_ml, _LIMITS["pmus"][1], rates,
+                                          tin, cycle_off_fraction).vt_ml, rates)
         f = float(rates[int(np.argmax(va_grid))])
         grid = np.linspace(effort, _LIMITS["pmus"][1], 81)
-        va_effort = va(supported_breath(pressure_support_new, peep, resistance, compliance_ml, grid, f, tin,
+        va_effort = va(supported_breath(pressure_support, peep, resistance, compliance_ml, grid, f, tin,
                                         cycle_off_fraction).vt_ml, f)
         k = np.flatnonzero(va_effort >= va_now)
         attainable = bool(k.size)
-        effort = float(grid[k[0]]) if attainable else float(grid[-1])
+        if not attainable:
+            effort = float(grid[-1])
+        elif k[0] == 0:
+            effort = float(grid[0])
+        else:  # interpolated between the grid's levels, as the rate is
+            j = int(k[0])
+            effort = float(np.interp(va_now, va_effort[j - 1:j + 1], grid[j - 1:j + 1]))
     elif enough[0] == 0:
         f, attainable = float(rates[0]), True
     else:
         k = int(enough[0])
         f = float(np.interp(va_now, va_grid[k - 1:k + 1], rates[k - 1:k + 1]))
         attainable = True
-    kept = supported_breath(pressure_support_new, peep, resistance, compliance_ml, effort, f, tin, cycle_off_fraction)
-    out["drive_preserved"] = bound(kept, f, attainable)
-    return out
+    kept = supported_breath(pressure_support, peep, resistance, compliance_ml, effort, f, tin, cycle_off_fraction)
+    return {"breath": kept, "rr": f, "alveolar_ventilation": float(va(kept.vt_ml, f)), "attainable": attainable}
+
+
+def volume_stand_in(vt_ml, rr, fio2, peep, apparatus_dead_space_ml=0.0) -> Settings:
+    """The volume-controlled breath that stands in for a supported one in the lung model: the same VT and
+    rate (so the same alveolar ventilation), inspiratory time NEURAL_DUTY of the breath."""
+    rr = float(rr)
+    return Settings(mode="volume", fio2=float(fio2), peep=float(peep), vt_ml=float(vt_ml), rr=rr,
+                    ti=NEURAL_DUTY * 60.0 / rr, apparatus_dead_space_ml=float(apparatus_dead_space_ml or 0.0))
