@@ -417,7 +417,7 @@ def _cmd_report(args) -> int:
 
 
 def _cmd_walkthrough(args) -> int:
-    from .walkthrough import Run, apply_actions_file, load_script
+    from .walkthrough import Run, apply_actions_file, breathing_lines, load_script
     if args.new:
         if args.script or args.headless:
             raise CaseError("--new", "opens the script editor on a new file: give no SCRIPT and no --headless")
@@ -450,6 +450,10 @@ def _cmd_walkthrough(args) -> int:
         print(f"  {t['minute']:5.1f} min  {t['what']}: {t['detail']}")
     c = out["course"]
     print(f"  end: PaO2 {c['pao2_mmhg'][-1]:.0f} mmHg, PaCO2 {c['paco2_mmhg'][-1]:.1f} mmHg, pH {c['ph'][-1]:.2f}")
+    if out["breathing"]:
+        print("The patient's breathing on support:")
+        for line in breathing_lines(out):
+            print(f"  {line}")
     print(f"Score: {out['score']['met']} of {out['score']['of']}")
     for s in out["score"]["items"]:
         print(f"  [{'ok' if s['met'] else 'no'}] {s['expected']} - {s['why']}")
@@ -589,8 +593,8 @@ def _cmd_check(args) -> int:
 
 
 #: The --set help: every settings key a trial accepts, with its unit and accepted range (from the code's ranges).
-SET_HELP = ("change one setting for the trial: KEY=VALUE, repeatable. Keys: mode (volume or pressure), fio2 "
-            "(0.21-1.0), vt_ml (2-20 mL/kg PBW; volume mode), "
+SET_HELP = ("change one setting for the trial: KEY=VALUE, repeatable. Keys: mode (volume, pressure, pressure-support "
+            "or cpap), fio2 (0.21-1.0), vt_ml (2-20 mL/kg PBW; volume mode), "
             + ", ".join(f"{k} ({lo:g}-{hi:g} {unit})" for k, (lo, hi, unit) in SETTING_RANGES.items())
             + "; inspiratory_time_s shorter than the breath")
 

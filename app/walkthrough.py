@@ -17,21 +17,27 @@ from pathlib import Path
 import jsonschema
 import numpy as np
 
-from ventcast.physiology.scenario import EVENT_KINDS, Action, Event, Timeline
+from ventcast.physiology.mechanics.spontaneous import CYCLE_OFF_DEFAULT
+from ventcast.physiology.planning.support import breaks
+from ventcast.physiology.scenario import EVENT_KINDS, Action, Effort, Event, Support, Timeline
 
 from . import CAUTION
 from .casefile import (SPONTANEOUS_MODES, CaseError, DEMO_NAMES, load, load_demo, parse_json, read_text, schema_error,
                        setting_words, validate)
-from .engine import apply_sets, fit_case, settings_dict, to_settings
+from .engine import apply_sets, case_goals, fit_case, settings_text, spontaneous_now, to_settings
 
 FORMAT = "ventcast.walkthrough"
+FOLLOW_FAILED = "the walkthrough patient cannot be followed: "
 VERSION = 1
-BUILT_IN = ("hypoxaemia-needs-peep", "hypercapnia-gas-trapping", "sudden-deterioration", "slow-desaturation")
+BUILT_IN = ("hypoxaemia-needs-peep", "hypercapnia-gas-trapping", "sudden-deterioration", "slow-desaturation",
+            "breathing-trial")
 
 
 #: Each event kind in the words on screen ({v}: its value).
 EVENT_WORDS = {"shunt_up": "shunt up by {p:.0f} % of cardiac output", "lung_collapse": "{p:.0f} % of the lung collapses",
-               "compliance_down": "compliance falls to {p:.0f} %", "resistance_up": "airway resistance rises to {p:.0f} %",
+               "compliance_down": "compliance falls to {p:.0f} %", "compliance_up": "compliance rises to {p:.0f} %",
+               "resistance_up": "airway resistance rises to {p:.0f} %",
+               "resistance_down": "airway resistance falls to {p:.0f} %",
                "metabolism_up": "O2 use and CO2 production rise to {p:.0f} %",
                "cardiac_output_down": "cardiac output falls to {p:.0f} %", "circuit_leak": "circuit leak of {p:.0f} %",
                "recruitment_manoeuvre": "recruitment manoeuvre to {v:g} cmH2O"}
@@ -140,6 +146,23 @@ def resolve_case(script: dict, folder: Path | None) -> dict:
         raise CaseError(f"script.case ({ref}) {exc.field}", str(exc).split(": ", 1)[1]) from None
 
 
+def followed_course(timeline: Timeline, duration: float):
+    """The timeline's course to ``duration``; ArithmeticError (starting FOLLOW_FAILED) where it fails."""
+    c = timeline.course(duration)
+    if not bool(np.all(c.success)):
+        raise ArithmeticError(f"{FOLLOW_FAILED}{c.message}")
+    return c
+
+
+def support_of(settings: dict) -> Support:
+    """The engine's support settings from case-file settings on pressure support or CPAP."""
+    return Support(fio2=float(settings["fio2"]), peep=float(settings["peep_cmh2o"]),
+                   pressure_support=float(settings.get("pressure_support_cmh2o") or 0.0)
+                   if settings["mode"] == "pressure-support" else 0.0,
+                   cycle_off_fraction=float(settings.get("cycle_off_fraction") or CYCLE_OFF_DEFAULT),
+                   apparatus_dead_space_ml=float(settings.get("apparatus_dead_space_ml") or 0.0))
+
+
 class Run:
     """One run of a script: the clock is the caller's; everything else is here."""
 
@@ -149,40 +172,117 @@ class Run:
         if script.get("start_settings"):
             self.case["settings"] = apply_sets(self.case, [f"{k}={v}" for k, v in script["start_settings"].items()],
                                                where="script.start_settings")
-        if self.case["settings"]["mode"] in SPONTANEOUS_MODES:
-            where = "script.start_settings" if script.get("start_settings") else "script.case"
-            raise CaseError(where, f"settings in {self.case['settings']['mode']} mode: walkthroughs follow a patient in "
-                                   f"volume or pressure control only (a patient breathing on support is forecast with "
-                                   f"ventcast predict and wean)")
         _patient, _obs, fitted = fit_case(self.case)
         self.fit = fitted
         self.duration = float(script.get("duration_min", 60.0))
         self.speed = float(script.get("speed", 10.0))
         self.delay = float(script.get("draw_delay_min", 2.0))
-        self.timeline = Timeline(fitted.model, to_settings(self.case["settings"]), seed=seed)
+        start = self.case["settings"]
+        if start["mode"] in SPONTANEOUS_MODES:
+            self.timeline = Timeline(fitted.model, support_of(start), seed=seed,
+                                     effort=self._effort(fitted, script.get("patient_response", "drive_preserved")))
+        else:
+            self.timeline = Timeline(fitted.model, to_settings(start), seed=seed)
+        # The learner's settings as the case file writes them, from each minute on (the timeline holds the
+        # engine's form).
+        self.learner = [(0.0, dict(start))]
         for ev in script["events"]:
             self.timeline.add_event(Event(float(ev["minute"]), ev["kind"], float(ev["value"]), ev.get("note", "")))
         self.action_log = []
         self._course = None
+        self._last = None  # the newest event or action, for revert_last
+
+    def _effort(self, fitted, response: str) -> Effort:
+        """The patient's effort on support, from the newest gas taken on it (:func:`app.engine.spontaneous_now`:
+        the Pmus that gives the measured VT at the support then, with the fitted mechanics); the alveolar
+        ventilation then is the one a patient who keeps their drive defends."""
+        now = spontaneous_now(self.case, fitted)
+        series = float(np.asarray(fitted.model.mechanics.anatomic_dead_space_ml)) + \
+            float(self.case["settings"].get("apparatus_dead_space_ml") or 0.0)
+        va = now["rr_per_min"] * max(now["vt_ml"] - series, 0.0) / 1000.0
+        return Effort(pmus=now["pmus_model_cmh2o"], rr=now["rr_per_min"], ti_neural=now["ti_neural_s"],
+                      alveolar_ventilation=va, vt_ml=now["vt_ml"], response=response)
+
+    @property
+    def spontaneous(self) -> bool:
+        return self.timeline.spontaneous
+
+    def learner_at(self, minute: float) -> dict:
+        """The learner's settings in force at ``minute``, as case-file settings."""
+        out = self.learner[0][1]
+        for t, s in self.learner:
+            if t <= minute:
+                out = s
+        return out
 
     # -- changes --------------------------------------------------------------------------------------
-    def inject(self, minute: float, kind: str, value: float, note: str = "instructor") -> None:
+    def inject(self, minute: float, kind: str, value: float, note: str = "instructor", check: bool = True) -> None:
+        """An instructor's event at ``minute``. ``check``: on support, the course with it is worked out now and
+        a patient who cannot be followed through it refuses it (the window checks on its worker instead and calls
+        :meth:`revert_last` on a refusal)."""
         self._check_minute(minute)
-        self.timeline.add_event(Event(float(minute), kind, float(value), note, source="instructor"))
+        event = Event(float(minute), kind, float(value), note, source="instructor")
+        self.timeline.add_event(event)
+        self._last = ("event", event)
+        self._course = None
+        if check:
+            self._check_or_revert()
+
+    def _check_or_revert(self) -> None:
+        """On support, every breath and the course are worked out now (a lower support can leave a patient who
+        keeps their effort without enough ventilation to live on); a refusal undoes the change and says why."""
+        if not self.spontaneous:
+            return
+        try:
+            self.course()
+        except (ValueError, ArithmeticError) as exc:
+            self.revert_last()
+            why = str(exc).removeprefix(FOLLOW_FAILED)
+            raise CaseError("walkthrough", f"the patient on support cannot be followed after this change: {why}") \
+                from None
+
+    def revert_last(self) -> None:
+        """Undo the newest event or learner action (a change the patient cannot be followed through)."""
+        last, self._last = self._last, None
+        if last is None:
+            return
+        if last[0] == "event":
+            self.timeline.events.remove(last[1])
+        else:
+            _kind, action, entry, log = last
+            self.timeline.actions.remove(action)
+            self.learner.remove(entry)
+            self.action_log.remove(log)
         self._course = None
 
-    def act(self, minute: float, sets, where: str = "--set") -> dict:
+    def act(self, minute: float, sets, where: str = "--set", check: bool = True) -> dict:
         """The learner changes settings at ``minute`` (KEY=VALUE list or a dict of case-file settings keys);
-        ``where`` names the source in a refusal."""
+        ``where`` names the source in a refusal; ``check`` as for :meth:`inject`."""
         self._check_minute(minute)
-        current = settings_dict(self.timeline.settings_at(minute))
-        case_now = dict(self.case, settings=current)
+        case_now = dict(self.case, settings=dict(self.learner_at(minute)))
         if isinstance(sets, dict):
             sets = [f"{k}={v}" for k, v in sets.items()]
         new = apply_sets(case_now, sets, where=where)
-        self.timeline.add_action(Action(float(minute), to_settings(new), ", ".join(sets)))
-        self.action_log.append({"minute": float(minute), "settings": new, "changed": [set_words(x) for x in sets]})
+        if (new["mode"] in SPONTANEOUS_MODES) != self.spontaneous:
+            accepted = "pressure-support or cpap" if self.spontaneous else "volume or pressure"
+            why = ("the patient breathes on support in this walkthrough" if self.spontaneous else
+                   "the patient is on controlled ventilation in this walkthrough (their own effort is not known)")
+            raise CaseError(f"{where} mode" if where.startswith("--") else f"{where}.mode",
+                            f"value {new['mode']!r} is not accepted: {why}; accepted: {accepted}")
+        action = Action(float(minute), support_of(new) if self.spontaneous else to_settings(new), ", ".join(sets))
+        try:
+            self.timeline.add_action(action)
+        except (ValueError, ArithmeticError) as exc:
+            raise CaseError(where, str(exc)) from None
+        entry = (float(minute), new)
+        log = {"minute": float(minute), "settings": new, "changed": [set_words(x) for x in sets]}
+        self.learner.append(entry)
+        self.learner.sort(key=lambda x: x[0])
+        self.action_log.append(log)
+        self._last = ("action", action, entry, log)
         self._course = None
+        if check:
+            self._check_or_revert()
         return new
 
     def draw(self, minute: float) -> dict:
@@ -197,10 +297,7 @@ class Run:
     # -- reading --------------------------------------------------------------------------------------
     def course(self):
         if self._course is None:
-            c = self.timeline.course(self.duration)
-            if not bool(np.all(c.success)):
-                raise ArithmeticError(f"the walkthrough patient cannot be followed: {c.message}")
-            self._course = c
+            self._course = followed_course(self.timeline, self.duration)
         return self._course
 
     def values_at(self, minute: float) -> dict:
@@ -223,13 +320,43 @@ class Run:
                 when = "none drawn" if first is None else f"first drawn at minute {first:g}"
                 text = f"a blood gas drawn by minute {t:g} ({when})"
             else:
-                value = settings_dict(self.timeline.settings_at(t)).get(ex["setting"])
+                value = self.learner_at(t).get(ex["setting"])
                 met = value is not None and (value >= ex["value"] if ex["what"] == "setting_at_least" else value <= ex["value"])
                 word = "at least" if ex["what"] == "setting_at_least" else "at most"
                 goal = setting_words(ex["setting"], ex["value"], word)
                 was = "not set" if value is None else setting_words(ex["setting"], value)
                 text = f"{goal} by minute {t:g} (at minute {t:g}: {was})"
             out.append({"expected": text, "met": bool(met), "why": ex.get("why", "")})
+        return out
+
+    def breathing_segments(self, until: float | None = None) -> list:
+        """On support, the patient's breathing between changes up to ``until``: the support, VT, rate,
+        RSBI and Pmus of the breath, the lowest pH and SaO2 of the course over the stretch, and the
+        breathing-trial stop rules broken there (:data:`physiology.planning.support.STOP_RULES`). Empty
+        on controlled ventilation."""
+        if not self.spontaneous:
+            return []
+        until = self.duration if until is None else float(until)
+        c = self.course()
+        goal = case_goals(self.case).spo2
+        spo2_goal = 0.88 if goal is None else float(goal[0])
+        starts = sorted({0.0} | {t for t, _p, _l in self.timeline._states(until)})
+        out = []
+        for i, t0 in enumerate(starts):
+            t1 = starts[i + 1] if i + 1 < len(starts) else until
+            b = self.timeline.breathing_at(t0)
+            br = b["breath"]
+            inside = (c.minutes >= t0 - 1e-9) & (c.minutes <= t1 + 1e-9)
+            numbers = {"rr_per_min": round(float(b["rr"]), 1), "vt_ml": round(float(br.vt_ml)),
+                       "rsbi": round(float(br.rsbi)), "pmus_cmh2o": round(float(br.pmus), 1),
+                       "ppeak_cmh2o": round(float(br.ppeak), 1), "intrinsic_peep_cmh2o": round(float(br.intrinsic_peep), 1),
+                       "ph": round(float(np.min(c.ph[inside])), 3), "sao2": round(float(np.min(c.sao2[inside])), 3),
+                       "attainable": b["attainable"]}
+            numbers["breaks"] = breaks(numbers, spo2_goal)
+            if not b["attainable"]:
+                numbers["breaks"].append("the alveolar ventilation of the start cannot be kept")
+            out.append({"from_minute": t0, "to_minute": t1, "settings": settings_text(self.learner_at(t0)),
+                        **numbers})
         return out
 
     def debrief(self, until: float | None = None) -> dict:
@@ -269,7 +396,20 @@ class Run:
                            "ph": r(c.ph, 4), "sao2": r(c.sao2, 4)},
                 "score": {"items": self.score(), "met": sum(s["met"] for s in self.score()),
                           "of": len(self.score())},
+                "breathing": self.breathing_segments(until),
                 "caution": CAUTION}
+
+
+def breathing_lines(debrief: dict) -> list:
+    """The patient's breathing on support, stretch by stretch, in words (empty on controlled ventilation)."""
+    out = []
+    for b in debrief.get("breathing", []):
+        support = b["settings"].split(", FiO2")[0]
+        verdict = ("breaks: " + "; ".join(b["breaks"])) if b["breaks"] else "no breathing-trial stop rule broken"
+        out.append(f"minutes {b['from_minute']:g}-{b['to_minute']:g}, {support}: rate {b['rr_per_min']:.0f}/min, "
+                   f"VT {b['vt_ml']:.0f} mL, RSBI {b['rsbi']:.0f}, Pmus {b['pmus_cmh2o']:.1f} cmH2O, lowest pH "
+                   f"{b['ph']:.2f} — {verdict}")
+    return out
 
 
 def apply_actions_file(run: Run, text: str) -> None:

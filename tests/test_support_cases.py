@@ -220,17 +220,6 @@ def test_a_case_put_on_support_before_any_gas_on_it_says_what_is_missing(capsys)
         engine.forecast_case(case, ["pressure_support_cmh2o=8"])
 
 
-def test_walkthroughs_refuse_a_patient_on_support_and_say_why(tmp_path, capsys):
-    script = {"format": "ventcast.walkthrough", "version": 1, "title": "t", "summary": "s", "case": f"demo:{DEMO}",
-              "speed": 10, "duration_min": 20, "draw_delay_min": 2, "events": [], "checkpoints": [],
-              "expected_actions": []}
-    path = tmp_path / "x.walkthrough.json"
-    path.write_text(json.dumps(script))
-    assert main(["walkthrough", str(path), "--headless"]) == 2
-    err = capsys.readouterr().err
-    assert "script.case" in err and "volume or pressure control only" in err and "Traceback" not in err
-
-
 def test_a_support_trial_is_worked_out_once_per_fit():
     """The steady, course and range stages of one forecast ask for the same trial: the second ask is the first
     answer; another fit (a new object) is worked out again."""

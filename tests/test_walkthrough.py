@@ -85,11 +85,12 @@ def test_score_follows_the_learner():
 
 @pytest.mark.parametrize("name", BUILT_IN)
 def test_built_in_scripts_run_headless(name, capsys):
-    assert main(["walkthrough", name, "--headless", "--until", "20", "--format", "json"]) == 0
+    until = max(20.0, min(e["minute"] for e in json.loads(built_in_text(name))["events"]) + 1.0)
+    assert main(["walkthrough", name, "--headless", "--until", f"{until:g}", "--format", "json"]) == 0
     out = json.loads(capsys.readouterr().out)
-    assert set(out) >= {"events", "actions", "draws", "course", "score", "caution"}
+    assert set(out) >= {"events", "actions", "draws", "course", "score", "breathing", "caution"}
     assert set(out["course"]) == {"minutes", "pao2_mmhg", "paco2_mmhg", "ph", "sao2"}
-    assert out["course"]["minutes"][-1] == 20.0 and out["events"]
+    assert out["course"]["minutes"][-1] == until and out["events"]
     assert "no real patient" in json.loads(built_in_text(name))["summary"]
 
 

@@ -1220,3 +1220,36 @@ def test_a_case_on_pressure_support_in_the_window(qtbot, qapp):
 def test_effort_rows_are_hidden_for_a_controlled_case(window):
     assert not window.bedside.values["rsbi"].isVisible()
     assert not window.trial_panel.spins["pressure_support_cmh2o"].isVisible()
+
+
+def test_a_breathing_trial_walkthrough_shows_the_patients_own_breathing(qtbot, qapp):
+    """Issue 22: on pressure support the learner sets FiO2, PEEP and the support (no backup rate or Ti); the
+    monitor shows the patient's own rate, VT, f/VT and the occlusion swing, Ppeak = PEEP + support; a trial
+    at PS 5 shows rapid shallow breathing (rate above 35/min, f/VT above 105: Yang & Tobin 1991); a change the
+    patient cannot be followed through is undone, saying so; the debrief names the broken stop rules."""
+    from ventcast.app.walkthrough import built_in_text
+    w = win.WalkthroughWindow(json.loads(built_in_text("breathing-trial")), synchronous=True)
+    try:
+        w.show()
+        assert set(w.learner_spins) == {"fio2", "peep_cmh2o", "pressure_support_cmh2o"}
+        w.advance(2.0)
+        assert int(w.monitor.vent["ppeak"].text()) == 17 and int(w.monitor.vent["rr"].text()) == 27
+        assert int(w.monitor.vent["vte"].text()) == pytest.approx(400, abs=5)
+        w.learner_spins["pressure_support_cmh2o"].setValue(5)
+        w.apply_settings()
+        w.advance(3.0)
+        assert int(w.monitor.vent["ppeak"].text()) == 10
+        assert int(w.monitor.vent["rr"].text()) > 35 and int(w.monitor.vent["rsbi"].text()) > 105
+        assert int(w.monitor.vent["pocc"].text()) < 0
+        # The instructor stiffens the lung beyond what the breath model takes: undone, and said in the log.
+        w.inject("compliance_down", 0.2)
+        logs = [w.instructor.log.item(i).text() for i in range(w.instructor.log.count())]
+        assert "is undone" in logs[-1] and "outside the accepted range" in logs[-1], logs
+        assert [e for e in w.run.timeline.events if e.source == "instructor"] == [] and w.run._course is not None
+        w.inject("metabolism_up", 1.3)  # followable: kept
+        assert len([e for e in w.run.timeline.events if e.source == "instructor"]) == 1
+        out = w.finish()
+        lines = [w.log.item(i).text() for i in range(w.log.count())]
+        assert out["breathing"] and any("RSBI above 105" in t for t in lines), lines
+    finally:
+        _dispose_walkthrough(w, qapp)

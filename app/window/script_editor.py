@@ -42,10 +42,17 @@ class ScriptEditor(QtWidgets.QDialog):
         for w in (self.title, self.story, self.summary):
             w.textChanged.connect(self.revalidate)
         self.case.currentTextChanged.connect(self.revalidate)
+        # A patient breathing on support (a case on pressure support or CPAP) answers a change one way.
+        self.response = QtWidgets.QComboBox()
+        self.response.addItem("keeps their ventilation by breathing faster, then harder (drive preserved)",
+                              "drive_preserved")
+        self.response.addItem("keeps the same effort and rate (effort unchanged)", "effort_unchanged")
+        self.response.currentIndexChanged.connect(self.revalidate)
         form.addRow("Title *", self.title)
         form.addRow("Opening story (the learner reads it)", self.story)
         form.addRow("Teaching summary (instructor and debrief)", self.summary)
         form.addRow("Starting case", self.case)
+        form.addRow("A patient on support, as support falls", self.response)
         form.addRow("Clock speed [x real time]", self.speed)
         form.addRow("Duration [min]", self.duration)
         form.addRow("Blood-gas result delay [min]", self.delay)
@@ -141,6 +148,7 @@ class ScriptEditor(QtWidgets.QDialog):
         self.story.setPlainText(s.get("story", ""))
         self.summary.setPlainText(s.get("summary", ""))
         self.case.setCurrentText(s["case"] if isinstance(s.get("case"), str) else "demo:ards-moderate")
+        self.response.setCurrentIndex(max(self.response.findData(s.get("patient_response", "drive_preserved")), 0))
         self.speed.setValue(float(s.get("speed", 10)))
         self.duration.setValue(float(s.get("duration_min", 40)))
         self.delay.setValue(float(s.get("draw_delay_min", 2)))
@@ -202,6 +210,8 @@ class ScriptEditor(QtWidgets.QDialog):
             doc["expected_actions"].append(x)
         if not doc["story"]:
             del doc["story"]
+        if self.response.currentData() != "drive_preserved":  # the default is left implicit
+            doc["patient_response"] = self.response.currentData()
         loads_script(json.dumps(doc))
         return doc
 

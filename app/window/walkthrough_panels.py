@@ -23,7 +23,7 @@ class MonitorPanel(QtWidgets.QGroupBox):
     """What a bedside team sees: SpO2 and end-tidal CO2 as a monitor shows them (noisy, whole numbers),
     the set ventilation, and their trend; blood gases only when drawn."""
 
-    def __init__(self, duration: float, seed: int = 0, parent=None):
+    def __init__(self, duration: float, seed: int = 0, spontaneous: bool = False, parent=None):
         super().__init__("Monitor", parent)
         lay = QtWidgets.QVBoxLayout(self)
         grid = QtWidgets.QGridLayout()
@@ -38,9 +38,13 @@ class MonitorPanel(QtWidgets.QGroupBox):
             self.values[key] = value
         # Ventilator readings: peak pressure, total PEEP and exhaled VT (from the lung's mechanics, with the
         # events so far), each as the ventilator displays it.
+        # On support the rate is the patient's own, and the ventilator shows f/VT (RSBI).
         self.vent = {}
-        for i, (key, label) in enumerate((("ppeak", "Ppeak [cmH2O]"), ("peep_total", "total PEEP [cmH2O]"),
-                                          ("vte", "exhaled VT [mL]"), ("rr", "RR [/min]"))):
+        readings = [("ppeak", "Ppeak [cmH2O]"), ("peep_total", "total PEEP [cmH2O]"), ("vte", "exhaled VT [mL]"),
+                    ("rr", "RR, patient's own [/min]" if spontaneous else "RR [/min]")]
+        if spontaneous:
+            readings += [("rsbi", "f/VT [breaths/min/L]"), ("pocc", "\u0394Pocc, expiratory hold [cmH2O]")]
+        for i, (key, label) in enumerate(readings):
             name = QtWidgets.QLabel(label)
             value = QtWidgets.QLabel("-")
             value.setStyleSheet("font-size: 16px; font-weight: bold;")
@@ -82,10 +86,19 @@ class MonitorPanel(QtWidgets.QGroupBox):
                            ("vte", breathing.vt_ml)):
             self.vent[key].setText(f"{float(value):.0f}" if ok else "-")
 
+    def show_supported(self, breath):
+        """Ventilator readings of a supported breath (a SupportedBreath): Ppeak (PEEP plus support), total PEEP,
+        exhaled VT, f/VT and the occlusion swing an expiratory hold would show (ΔPocc = -4/3 Pmus, Bertoni
+        2019), whole numbers as displayed."""
+        from ventcast.physiology.mechanics.spontaneous import PMUS_PER_DELTA_POCC
+        for key, value in (("ppeak", breath.ppeak), ("peep_total", breath.peep_total), ("vte", breath.vt_ml),
+                           ("rsbi", breath.rsbi), ("pocc", -float(breath.pmus) / PMUS_PER_DELTA_POCC)):
+            self.vent[key].setText(f"{float(value):.0f}")
+
     def sample(self, minute: float, course, settings_text: str, rr: float | None = None):
         """One monitor reading at ``minute`` from the true course (plus monitor noise)."""
         if rr is not None:
-            self.vent["rr"].setText(f"{rr:g}")
+            self.vent["rr"].setText(f"{rr:.0f}")
         sao2 = float(np.interp(minute, course.minutes, course.sao2))
         petco2 = float(np.interp(minute, course.minutes, course.petco2))
         spo2 = float(np.clip(round(100.0 * sao2 + self.rng.normal(0.0, SPO2_NOISE_SD)), 0, 100))

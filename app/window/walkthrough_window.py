@@ -4,17 +4,19 @@ from __future__ import annotations
 
 from html import escape
 
-import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
 from .. import CAUTION
 from ..casefile import CaseError, setting_words, write_atomic
-from ..engine import settings_dict
 from ..precision import sao2_text
 from ..worker import EngineRunner
 from .common import APP_NAME, CONTROLS
 from .walkthrough_panels import InstructorPanel, MonitorPanel
+
+#: Controls a patient on support never answers in a walkthrough (the backup rate and Ti: the patient
+#: triggers every breath, and apnoea is not scripted).
+SUPPORT_HIDDEN = ("rr_per_min", "inspiratory_time_s")
 
 
 class WalkthroughWindow(QtWidgets.QMainWindow):
@@ -41,7 +43,8 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         self.running = False
         self.runner = EngineRunner(self, synchronous=synchronous)
         self.runner.finished.connect(self._on_result)
-        self.runner.failed.connect(lambda _r, m: self.status.setText(f"\u2716 {m}"))
+        self.runner.failed.connect(self._on_failed)
+        self.pending = None  # the learner's or instructor's change the course is being worked out with
         self.timer = QtCore.QTimer(self)
         self.timer.setInterval(self.TICK_MS)
         self.timer.timeout.connect(self._tick)
@@ -79,9 +82,9 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         learner = QtWidgets.QGroupBox("Ventilator settings")
         form = QtWidgets.QFormLayout(learner)
         self.learner_spins = {}
-        now = settings_dict(self.run.timeline.settings)
+        now = self.run.learner_at(0.0)
         for key, label, unit, lo, hi, step, dec in CONTROLS:
-            if now.get(key) is None:
+            if now.get(key) is None or (self.run.spontaneous and key in SUPPORT_HIDDEN):
                 continue
             sp = QtWidgets.QDoubleSpinBox()
             sp.setRange(lo, hi)
@@ -99,7 +102,8 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         self.log = QtWidgets.QListWidget()
         self.log.setWordWrap(True)  # whole lines in a narrow column
         lay.addWidget(self.log, 3, 0)
-        self.monitor = MonitorPanel(self.run.duration, seed=int(self.run.script.get("seed", 0) or 0))
+        self.monitor = MonitorPanel(self.run.duration, seed=int(self.run.script.get("seed", 0) or 0),
+                                    spontaneous=self.run.spontaneous)
         lay.addWidget(self.monitor, 2, 1, 2, 1)
         # The learner reads the opening story only; the teaching summary is the instructor's.
         self.prompt = QtWidgets.QLabel(self.run.script.get("story") or self.run.script["title"])
@@ -179,10 +183,15 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
 
             from ..engine import settings_text
             self.instructor.show_course(c, self.minute)
-            learner = self.run.timeline.settings_at(self.minute)
-            self.monitor.sample(self.minute, c, settings_text(settings_dict(learner)), rr=float(learner.rr))
-            patient, delivered = self.run.timeline.state_at(self.minute)
-            self.monitor.show_ventilator(breathe(delivered, patient.mechanics, pbw_kg=patient.pbw_kg))
+            learner = self.run.learner_at(self.minute)
+            breathing = self.run.timeline.breathing_at(self.minute)
+            if breathing is not None:  # the patient's own breath and rate
+                self.monitor.sample(self.minute, c, settings_text(learner), rr=float(breathing["rr"]))
+                self.monitor.show_supported(breathing["breath"])
+            else:
+                self.monitor.sample(self.minute, c, settings_text(learner), rr=float(learner["rr_per_min"]))
+                patient, delivered = self.run.timeline.state_at(self.minute)
+                self.monitor.show_ventilator(breathe(delivered, patient.mechanics, pbw_kg=patient.pbw_kg))
             self.instructor.show_upcoming(self._upcoming())
         self.clock.setText(f"Minute {self.minute:5.1f} of {self.run.duration:g}")
 
@@ -202,13 +211,14 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
             self.toggle()
         self.run = Run(self.run.script, self.run.folder, seed=self.run.seed)
         self.minute = 0.0
+        self.pending = None
         self.debrief = None
         self.log.clear()
         self.instructor.log.clear()
         self.monitor.reset()
         self.prompt.setText(self.run.script.get("story") or self.run.script["title"])
         self.start_button.setText("Start")
-        now = settings_dict(self.run.timeline.settings)
+        now = self.run.learner_at(0.0)
         for key, sp in self.learner_spins.items():
             sp.setValue(float(now[key]))
         self._recompute()
@@ -220,34 +230,48 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
             self.export_debrief(folder)
 
     # -- learner and instructor -----------------------------------------------------------------------
+    def _busy(self) -> bool:
+        """True (and said) while the course of the last change is being worked out: one change at a time, so
+        that a change the patient cannot be followed through is the one undone."""
+        if self.run._course is None:
+            self.status.setText("the course of the last change is being worked out: try again in a moment")
+            return True
+        return False
+
     def apply_settings(self):
-        now = settings_dict(self.run.timeline.settings_at(self.minute))
+        if self._busy():
+            return
+        now = self.run.learner_at(self.minute)
         sets = {k: round(sp.value(), 2) for k, sp in self.learner_spins.items()
                 if now.get(k) is None or abs(round(sp.value(), 2) - float(now[k])) > 1e-9}  # what the learner changed
         if not sets:
             self.status.setText("no setting changed")
             return
         try:
-            self.run.act(self.minute, sets)
+            self.run.act(self.minute, sets, check=False)  # checked with the course, on the worker
         except (CaseError, ValueError) as exc:
             self.status.setText(f"\u2716 {exc}")
             return
         text = f"{self.minute:5.1f} min  learner: " + ", ".join(setting_words(k, v) for k, v in sets.items())
         self.log.addItem(text)
         self.instructor.log.addItem(text)
+        self.pending = "the setting change"
         self._recompute()
 
     def inject(self, kind: str | None = None, value: float | None = None):
+        if self._busy():
+            return
         kind = kind or self.instructor.event_kind.currentData()
         value = float(self.instructor.event_value.value()) if value is None else float(value)
         try:
-            self.run.inject(self.minute, kind, value)
+            self.run.inject(self.minute, kind, value, check=False)  # checked with the course, on the worker
         except (CaseError, ValueError) as exc:
             self.status.setText(f"\u2716 {exc}")
             return
         from ..walkthrough import event_words
         # Logged now: an event at the current minute is not "due" on the next tick (that starts after it).
         self.instructor.log.addItem(f"{self.minute:5.1f} min  \u26a0 event (instructor): {event_words(kind, value)}")
+        self.pending = "the event"
         self._recompute()
 
     def draw(self):
@@ -261,23 +285,34 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
     def _recompute(self):
         """Recompute the course on the worker from a frozen copy of the timeline (the window may add events
         or actions meanwhile; only the newest request's course is used)."""
-        from ventcast.physiology.scenario import Timeline
         self.run._course = None
-        tl = self.run.timeline
-        frozen = Timeline(tl.patient, tl.settings, list(tl.events), list(tl.actions), [], tl.seed)
+        from ..walkthrough import followed_course
+        frozen = self.run.timeline.copy()
         duration = self.run.duration
 
         def work():
-            c = frozen.course(duration)
-            if not bool(np.all(c.success)):
-                raise ArithmeticError(f"the walkthrough patient cannot be followed: {c.message}")
-            return c
+            return followed_course(frozen, duration)
 
         self.status.setText("computing the patient's course...")
         self.runner.submit("walk", work)
 
+    def _on_failed(self, request, message):
+        """A course that cannot be computed: the change just made is undone (the patient cannot be followed
+        through it) and the course before it comes back; anything else is reported as it is."""
+        if request.kind == "walk" and self.pending is not None:
+            what, self.pending = self.pending, None
+            self.run.revert_last()
+            text = f"{self.minute:5.1f} min  \u2716 {what} is undone: {message}"
+            self.log.addItem(text)
+            self.instructor.log.addItem(text)
+            self.status.setText(f"\u2716 {what} is undone: {message}")
+            self._recompute()
+            return
+        self.status.setText(f"\u2716 {message}")
+
     def _on_result(self, request, result):
         if request.kind == "walk":
+            self.pending = None
             self.run._course = result
             self.status.setText("")
             self._show_clock()
@@ -285,6 +320,7 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
 
     # -- debrief --------------------------------------------------------------------------------------
     def finish(self):
+        from ..walkthrough import breathing_lines
         if self.running:
             self.toggle()
         if self.run._course is None:
@@ -296,6 +332,10 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         for s in out["score"]["items"]:
             mark = "\u2713" if s["met"] else "\u2716"
             lines.append(f"   [{mark}] {s['expected']} \u2014 {s['why']}")
+        breathing = breathing_lines(out)
+        if breathing:
+            lines.append("The patient's breathing on support:")
+            lines += [f"   {b}" for b in breathing]
         if out.get("summary"):
             lines.append(f"Teaching summary: {out['summary']}")
         for text in lines:
@@ -310,6 +350,7 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         import csv
         import io
         from ..report import chart_images, write_pdf
+        from ..walkthrough import breathing_lines
         from ..casefile import check_output_files
         try:
             folder = check_output_files("debrief folder", folder,
@@ -338,7 +379,12 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
                 f"<p>Score {out['score']['met']} of {out['score']['of']}</p><ul>"]
         html += [f"<li>{'(ok)' if s['met'] else '(missed)'} {escape(s['expected'])} \u2014 {escape(s['why'])}</li>"
                  for s in out["score"]["items"]]
-        html.append("</ul><h2>Timeline</h2><ul>")
+        html.append("</ul>")
+        if out["breathing"]:
+            html.append("<h2>The patient's breathing on support</h2><ul>")
+            html += [f"<li>{escape(b)}</li>" for b in breathing_lines(out)]
+            html.append("</ul>")
+        html.append("<h2>Timeline</h2><ul>")
         html += [f"<li>{m:.1f} min: {escape(what)} \u2014 {escape(detail)}</li>" for m, what, detail in rows]
         html.append("</ul><h2>Course</h2><p><img src='chart://pao2_mmhg' width='640'></p>"
                     "<p><img src='chart://paco2_mmhg' width='640'></p>"
