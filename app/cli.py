@@ -12,6 +12,7 @@ import sys
 from pathlib import Path
 
 from ventcast.physiology.planning.search import CONSTRAINT_NAMES
+from ventcast.physiology.mechanics.spontaneous import AVERAGED
 
 from . import CAUTION
 from .bedside import bedside_indices
@@ -133,7 +134,8 @@ def _cmd_predict(args) -> int:
     print("Model assumes: " + "; ".join(f["assumptions"]))
     print()
     width = max(len(row[0]) for row in STEADY_ROWS)
-    heading = "Forecast (steady state)" if not out.get("spontaneous") else "Forecast (effort unchanged)"
+    heading = ("Forecast (steady state)" if not out.get("spontaneous") else
+               f"Forecast ({out['spontaneous']['drawn'].replace('_', ' ')})")
     print(f"{heading:<{width + 2}} {'value':>9}  likely range (90 %)")
     rng = out["likely_range"]
     for title, key, unit, d in STEADY_ROWS:
@@ -180,6 +182,12 @@ def _print_spontaneous(sp: dict) -> None:
         print(f"  {title:<7} {_num(b1[key], d):>17} {_num(b2[key], d):>17}  {unit}")
     for name, words in (("effort_unchanged", "effort unchanged"), ("drive_preserved", "drive preserved")):
         print(f"  {words}: {sp['meaning'][name]}")
+        b = sp["bounds"][name]
+        if not b["attainable"]:
+            print(f"  \u26a0 {words}: even an effort of 40 cmH2O does not keep the alveolar ventilation of now")
+        if not b["periodic"]:
+            print(f"  \u26a0 {words}: the breaths do not settle to one repeating breath (alternating large and small "
+                  f"breaths): the numbers are the mean of the last {AVERAGED}")
 
 
 def _cmd_fit(args) -> int:

@@ -43,6 +43,10 @@ SETTING_KEYS = ("mode", "fio2", "peep_cmh2o", "vt_ml", "inspiratory_pressure_cmh
 MODES = ("volume", "pressure", "pressure-support", "cpap")
 
 
+#: The other bound of a forecast on support.
+OTHER_BOUND = {"effort_unchanged": "drive_preserved", "drive_preserved": "effort_unchanged"}
+
+
 class ModelError(RuntimeError):
     """The model could not fit or converge (exit status 3)."""
 
@@ -325,12 +329,13 @@ def steady_block(pred, spontaneous: bool = False) -> dict:
 
 
 def supported_steady(case: dict, result, trial_dict: dict):
-    """(prediction, steady block) of a trial on pressure support or CPAP: the effort-unchanged bound's, with the
-    breath's rate, Pmus and RSBI, and for VT, rate, Pmus and RSBI the span of both bounds (``<key>_bounds``)."""
+    """(prediction, steady block) of a trial on pressure support or CPAP: the drawn bound's (effort unchanged,
+    unless it has no steady state: :func:`supported_trial`), with the breath's rate, Pmus and RSBI, and for VT,
+    rate, Pmus and RSBI the span of both bounds (``<key>_bounds``)."""
     sup = supported_trial(case, result, trial_dict)
-    pred = predict(result.model, sup["equivalents"]["effort_unchanged"])
+    pred = predict(result.model, sup["equivalents"][sup["drawn"]])
     steady = steady_block(pred, spontaneous=True)
-    b1, b2 = sup["bounds"]["effort_unchanged"], sup["bounds"]["drive_preserved"]
+    b1, b2 = sup["bounds"][sup["drawn"]], sup["bounds"][OTHER_BOUND[sup["drawn"]]]
     br = b1["breath"]
     steady.update(rr_per_min=float(b1["rr"]), pmus_cmh2o=_f(br.pmus), rsbi=_f(br.rsbi), ppeak_cmh2o=_f(br.ppeak),
                   mean_airway_pressure_cmh2o=_f(br.mean_paw), intrinsic_peep_cmh2o=_f(br.intrinsic_peep))
@@ -570,8 +575,9 @@ _SUPPORTED_LOCK = threading.Lock()
 
 def supported_trial(case: dict, result, trial_dict: dict) -> dict:
     """A trial on pressure support or CPAP: the effort now (:func:`spontaneous_now`), both bounds of the
-    patient's answer (:func:`physiology.mechanics.spontaneous.support_bounds`) and, for each, the
-    volume-controlled stand-in the lung model is given (same VT, rate and neural inspiratory share)."""
+    patient's answer (:func:`physiology.mechanics.spontaneous.support_bounds`), for each the
+    volume-controlled stand-in the lung model is given (same VT, rate and neural inspiratory share), and the
+    bound the forecast draws ("drawn")."""
     key = (json.dumps(latest_spontaneous(case), sort_keys=True), json.dumps(case["settings"]["mode"]),
            json.dumps(trial_dict, sort_keys=True), id(result))
     with _SUPPORTED_LOCK:
@@ -605,14 +611,21 @@ def _supported_trial(case: dict, result, trial_dict: dict) -> dict:
         b = bounds[name]
         equivalents[name] = to_settings(dict(trial_dict), {"vte_ml": float(b["breath"].vt_ml),
                                                            "spontaneous_rr_per_min": float(b["rr"])})
-    return {"now": now, "bounds": bounds, "equivalents": equivalents}
+    # The forecast drawn is the effort-unchanged bound; where that leaves too little ventilation for any steady
+    # state (the patient cannot go on like that), the drive-preserved bound is drawn and the other is said.
+    drawn = "effort_unchanged"
+    if not bool(np.all(predict(result.model, equivalents["effort_unchanged"]).success)) \
+            and bool(np.all(predict(result.model, equivalents["drive_preserved"]).success)):
+        drawn = "drive_preserved"
+    return {"now": now, "bounds": bounds, "equivalents": equivalents, "drawn": drawn}
 
 
 def trial_engine_settings(case: dict, result, trial_dict: dict) -> Settings:
-    """Engine settings of a trial; on pressure support or CPAP the stand-in breath of the *effort unchanged*
-    bound (the forecast drawn; the other bound is in the ``spontaneous`` block)."""
+    """Engine settings of a trial; on pressure support or CPAP the stand-in breath of the drawn bound (effort
+    unchanged unless it has no steady state; the other bound is in the ``spontaneous`` block)."""
     if is_spontaneous(trial_dict):
-        return supported_trial(case, result, trial_dict)["equivalents"]["effort_unchanged"]
+        sup = supported_trial(case, result, trial_dict)
+        return sup["equivalents"][sup["drawn"]]
     return to_settings(trial_dict)
 
 
@@ -635,20 +648,22 @@ def _spontaneous_block(result, supported) -> tuple:
             "pressure_time_product_cmh2o_s_min": _f(br.ptp_per_min), "dpl_dyn_cmh2o": _f(br.dpl_dyn),
             "intrinsic_peep_cmh2o": _f(br.intrinsic_peep), "mean_airway_pressure_cmh2o": _f(br.mean_paw),
             "inspiratory_time_s": _f(br.ti_s), "alveolar_ventilation_l_min": float(b["alveolar_ventilation"]),
-            "attainable": bool(b["attainable"]), "pao2_mmhg": gas.get("pao2_mmhg"), "paco2_mmhg": gas.get("paco2_mmhg"),
+            "attainable": bool(b["attainable"]), "periodic": bool(np.all(br.periodic)), "pao2_mmhg": gas.get("pao2_mmhg"), "paco2_mmhg": gas.get("paco2_mmhg"),
             "ph": gas.get("ph"), "sao2": gas.get("sao2"), "likely_range": ranges}
 
     def span(key, ranged=False):
-        vals = []
+        vals = []  # a bound without a steady state (or draws without one) adds nothing
         for v in bounds_out.values():
             if v.get(key) is not None:
                 vals.append(v[key])
             if ranged and v["likely_range"] is not None:
                 vals += v["likely_range"][key]
+        vals = [x for x in vals if x is not None and math.isfinite(x)]
         return [min(vals), max(vals)] if vals else None
 
     now = supported["now"]
-    block = {"pmus_cmh2o": span("pmus_cmh2o"), "vt_ml": span("vt_ml"), "rr_per_min": span("rr_per_min"),
+    block = {"drawn": supported["drawn"],
+             "pmus_cmh2o": span("pmus_cmh2o"), "vt_ml": span("vt_ml"), "rr_per_min": span("rr_per_min"),
              "rsbi": span("rsbi"), "paco2_mmhg": span("paco2_mmhg", ranged=True), "bounds": bounds_out,
              "effort_now": {k: now[k] for k in ("pmus_cmh2o", "pmus_basis", "pmus_model_cmh2o", "dpl_dyn_cmh2o",
                                                  "dpl_dyn_basis", "p01_cmh2o", "delta_pocc_cmh2o", "vt_ml",
@@ -727,10 +742,11 @@ def _spontaneous_alerts(block) -> list:
     out = [{"code": ln["code"], "severity": ln["status"], "message": ln["message"]}
            for ln in effort_limit_lines(block) if ln["status"] != "ok"]
     out.append({"code": "supported_breath", "severity": "info",
-                "message": "pressure support: the forecast shown is the effort-unchanged bound; the spontaneous block "
-                           "has both bounds, and the likely range spans them. Pplat, driving pressure and mechanical "
-                           "power are those of the same VT given passively (the lung's stretch); the patient's effort "
-                           "adds the transpulmonary pressure in ΔPL,dyn"})
+                "message": f"pressure support: the forecast shown is the {block['drawn'].replace('_', '-')} bound; "
+                           f"the spontaneous block has both bounds, and the likely range spans them. Pplat and driving "
+                           f"pressure are those of the same VT given passively (the lung's stretch); mechanical power "
+                           f"is not shown (the patient does part of the work), and the patient's effort adds the "
+                           f"transpulmonary pressure in ΔPL,dyn"})
     return out
 
 
@@ -744,7 +760,7 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
     supported = None
     if is_spontaneous(trial_dict):
         pred, steady, supported = supported_steady(case, result, trial_dict)
-        trial = supported["equivalents"]["effort_unchanged"]
+        trial = supported["equivalents"][supported["drawn"]]
     else:
         trial = to_settings(trial_dict)
         pred = predict(result.model, trial)
@@ -778,6 +794,11 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
     alerts = limit_alerts(steady, case.get("goals"))
     if supported is not None:
         alerts += _spontaneous_alerts(out["spontaneous"])
+        if supported["drawn"] != "effort_unchanged":
+            alerts.append({"code": "effort_unchanged_unsustainable", "severity": "danger",
+                           "message": "with the effort and rate of now this support leaves too little alveolar "
+                                      "ventilation for any steady state (PaCO2 would keep rising): the patient must "
+                                      "breathe faster or harder; the forecast shown is the drive-preserved bound"})
     if out["likely_range"] is not None:
         # The point forecast comes from the fitted estimate, the range from the posterior draws; when the
         # estimate lies outside the draws' 90 % range it is atypical of what the data allow: say so.
@@ -822,7 +843,8 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
                                           f"the course's likely range"})
 
         out["course"] = course_block(course)
-        if supported is not None:  # the other bound's course, drawn beside (no likely range of its own)
+        if supported is not None and supported["drawn"] == "effort_unchanged":
+            # the other bound's course, drawn beside (no likely range of its own)
             other = simulate(result.model, current, supported["equivalents"]["drive_preserved"], minutes=minutes)
             if other.success:
                 out["course_drive_preserved"] = course_block(other)

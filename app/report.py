@@ -205,7 +205,9 @@ def report_html(case: dict, forecasts: dict, plan: dict | None = None, generated
         e = sp["effort_now"]
         h.append(f"<p><b>Trial {escape(t)} on support: two bounds.</b> Now VT {e['vt_ml']:.0f} mL at "
                  f"{e['rr_per_min']:.0f}/min (RSBI {e['rsbi']:.0f}); effort Pmus {e['pmus_cmh2o']:.1f} cmH2O "
-                 f"({escape(e['pmus_basis'])}). The rows above are the effort-unchanged bound.</p>")
+                 f"({escape(e['pmus_basis'])}). The rows above are the {escape(sp['drawn'].replace('_', '-'))} bound"
+                 + ("" if sp["drawn"] == "effort_unchanged" else ": with the effort unchanged there is no steady state")
+                 + ".</p>")
         h.append("<table border='1' cellspacing='0' cellpadding='3'><tr><th>quantity</th><th>effort unchanged</th>"
                  "<th>drive preserved</th></tr>")
         b1, b2 = sp["bounds"]["effort_unchanged"], sp["bounds"]["drive_preserved"]

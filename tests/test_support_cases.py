@@ -233,3 +233,32 @@ def test_a_support_trial_is_worked_out_once_per_fit():
     again = engine.supported_trial(case, replace(result), trial)
     assert again is not first
     assert float(again["bounds"]["drive_preserved"]["rr"]) == pytest.approx(float(first["bounds"]["drive_preserved"]["rr"]))
+
+
+def test_cpap_for_a_weak_patient_draws_the_drive_preserved_bound_and_says_why(tmp_path, capsys):
+    """The breathing-trial walkthrough's invented patient on CPAP: with the effort of now the VT barely clears
+    the dead space (no steady state), so the forecast drawn is the drive-preserved bound, with a danger alert;
+    that bound is rapid shallow breathing whose alveolar ventilation, rate x (VT - series dead space) (common
+    practice), equals the one of now."""
+    from ventcast.app.walkthrough import load_script
+    case = load_script("breathing-trial")[0]["case"]
+    path = tmp_path / "weak.ventcast.json"
+    path.write_text(json.dumps(case))
+    assert main(["predict", str(path), "--set", "mode=cpap", "--format", "json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    sp = out["spontaneous"]
+    assert sp["drawn"] == "drive_preserved"
+    assert sp["bounds"]["effort_unchanged"]["paco2_mmhg"] is None
+    kept = sp["bounds"]["drive_preserved"]
+    assert kept["attainable"] and kept["rr_per_min"] > RATE_MAX and kept["rsbi"] > RSBI_FAILURE
+    assert kept["pmus_cmh2o"] > PMUS_EXCESSIVE
+    assert any(a["code"] == "effort_unchanged_unsustainable" and a["severity"] == "danger" for a in out["alerts"])
+    assert all(x is not None for x in out["likely_range"]["paco2_mmhg"])
+    now = sp["effort_now"]
+    _p, _o, result = engine.fit_case(validate(case))
+    series = float(result.model.mechanics.anatomic_dead_space_ml) + case["settings"]["apparatus_dead_space_ml"]
+    va_now = now["rr_per_min"] * (now["vt_ml"] - series)
+    assert kept["rr_per_min"] * (kept["vt_ml"] - series) == pytest.approx(va_now, rel=0.03)
+    assert main(["predict", str(path), "--set", "mode=cpap"]) == 0
+    text = capsys.readouterr().out
+    assert "Forecast (drive preserved)" in text and "nan" not in text

@@ -288,10 +288,16 @@ class MainWindow(BedsideLoop, ForecastPipeline, CaseFiles, TrialEditing, QtWidge
         lines = [text] + [f"\u26a0 {m[0].upper()}{m[1:]}." for m in outside]
         if out.get("spontaneous"):  # which bound is drawn, and what the other says
             b1, b2 = out["spontaneous"]["bounds"]["effort_unchanged"], out["spontaneous"]["bounds"]["drive_preserved"]
-            lines.insert(0, f"On support the course drawn is the effort-unchanged bound (VT {b1['vt_ml']:.0f} mL at "
-                            f"{b1['rr_per_min']:.0f}/min, PaCO2 {gas_text(b1['paco2_mmhg'], self.units, 1)}); with the "
-                            f"drive preserved the patient breathes {b2['rr_per_min']:.0f}/min at VT {b2['vt_ml']:.0f} mL, "
-                            f"PaCO2 {gas_text(b2['paco2_mmhg'], self.units, 1)}.")
+            if out["spontaneous"]["drawn"] == "effort_unchanged":
+                lines.insert(0, f"On support the course drawn is the effort-unchanged bound (VT {b1['vt_ml']:.0f} mL "
+                                f"at {b1['rr_per_min']:.0f}/min, PaCO2 {gas_text(b1['paco2_mmhg'], self.units, 1)}); "
+                                f"with the drive preserved the patient breathes {b2['rr_per_min']:.0f}/min at VT "
+                                f"{b2['vt_ml']:.0f} mL, PaCO2 {gas_text(b2['paco2_mmhg'], self.units, 1)}.")
+            else:
+                lines.insert(0, f"\u26a0 On support with the effort unchanged (VT {b1['vt_ml']:.0f} mL at "
+                                f"{b1['rr_per_min']:.0f}/min) the ventilation is too little for any steady state: the "
+                                f"course drawn is the drive-preserved bound ({b2['rr_per_min']:.0f}/min at VT "
+                                f"{b2['vt_ml']:.0f} mL, PaCO2 {gas_text(b2['paco2_mmhg'], self.units, 1)}).")
         self.recheck_label.setText("\n".join(lines).strip())
 
     def _show_band(self, out):

@@ -78,6 +78,10 @@ BREATHS = 30
 SETTLED_L = 1e-4
 #: Breaths averaged where the breathing never became periodic.
 AVERAGED = 10
+#: Drive preserved beyond what the rate alone can keep: effort levels searched (the effort of now to 40
+#: cmH2O), and every how many of the rate grid's 121 rates are tried at each.
+EFFORT_LEVELS = 21
+RATE_THINNING = 3
 
 _LIMITS = {
     "pressure_support": (0.0, 40.0, "cmH2O"), "peep": (0.0, 30.0, "cmH2O"), "resistance": (2.0, 60.0, "cmH2O/L/s"),
@@ -350,8 +354,8 @@ def ventilation_kept(alveolar_ventilation, pressure_support, peep, resistance, c
     """The breath that keeps ``alveolar_ventilation`` [L/min] at this support: the *drive preserved* answer of
     :func:`support_bounds`. The rate is the lowest on a grid (half ``rr`` to ``rr_max``, leaving at least
     0.3 s of expiration) whose breath at the effort ``pmus`` keeps the ventilation, interpolated; where no
-    rate does, the rate of the most ventilation is kept and the effort per breath rises until it does
-    (interpolated the same way; ``attainable`` False if even 40 cmH2O does not). Returns {"breath", "rr", "alveolar_ventilation",
+    rate does, the least effort per breath that keeps it, at the rate that ventilates most at that effort
+    (interpolated the same way; ``attainable`` False if even 40 cmH2O does not: the effort is then 40). Returns {"breath", "rr", "alveolar_ventilation",
     "attainable"}."""
     vd = float(check_range("series dead space", series_dead_space_ml, 10.0, 600.0, "mL")) / 1000.0
     rr, tin, va_now = float(rr), float(ti_neural), float(alveolar_ventilation)
@@ -366,25 +370,23 @@ def ventilation_kept(alveolar_ventilation, pressure_support, peep, resistance, c
     enough = np.flatnonzero(va_grid >= va_now)
     effort = float(pmus)
     if enough.size == 0:
-        # The rate alone cannot keep it: at the rate of the most ventilation, the effort rises until it does
-        # (where the effort of now ventilates nothing beyond the dead space at any rate, the rate of the most
-        # ventilation at the greatest effort).
-        if not np.any(va_grid > 0):
-            va_grid = va(supported_breath(pressure_support, peep, resistance, compliance_ml, _LIMITS["pmus"][1], rates,
-                                          tin, cycle_off_fraction).vt_ml, rates)
-        f = float(rates[int(np.argmax(va_grid))])
-        grid = np.linspace(effort, _LIMITS["pmus"][1], 81)
-        va_effort = va(supported_breath(pressure_support, peep, resistance, compliance_ml, grid, f, tin,
-                                        cycle_off_fraction).vt_ml, f)
-        k = np.flatnonzero(va_effort >= va_now)
+        # The rate alone cannot keep it: the least effort per breath that keeps it, at the rate that ventilates
+        # most at that effort (efforts x rates in one batch; both interpolated between the effort levels).
+        efforts = np.linspace(effort, _LIMITS["pmus"][1], EFFORT_LEVELS)
+        coarse = rates[::RATE_THINNING]
+        va2 = va(supported_breath(pressure_support, peep, resistance, compliance_ml, efforts[:, None], coarse[None, :],
+                                  tin, cycle_off_fraction).vt_ml, coarse[None, :])
+        most, best_rate = va2.max(axis=1), coarse[np.argmax(va2, axis=1)]
+        k = np.flatnonzero(most >= va_now)
         attainable = bool(k.size)
         if not attainable:
-            effort = float(grid[-1])
+            effort, f = float(efforts[-1]), float(best_rate[-1])
         elif k[0] == 0:
-            effort = float(grid[0])
-        else:  # interpolated between the grid's levels, as the rate is
+            effort, f = float(efforts[0]), float(best_rate[0])
+        else:
             j = int(k[0])
-            effort = float(np.interp(va_now, va_effort[j - 1:j + 1], grid[j - 1:j + 1]))
+            effort = float(np.interp(va_now, most[j - 1:j + 1], efforts[j - 1:j + 1]))
+            f = float(np.interp(va_now, most[j - 1:j + 1], best_rate[j - 1:j + 1]))
     elif enough[0] == 0:
         f, attainable = float(rates[0]), True
     else:
