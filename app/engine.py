@@ -51,6 +51,15 @@ class ModelError(RuntimeError):
     """The model could not fit or converge (exit status 3)."""
 
 
+class Stopped(RuntimeError):
+    """A computation given a ``stop`` check gave up because the check said its result is no longer wanted."""
+
+
+def _check(stop) -> None:
+    if stop is not None and stop():
+        raise Stopped("stopped: a newer request replaced this one")
+
+
 def is_spontaneous(s: dict) -> bool:
     """True for settings in which the patient makes every breath (pressure support, CPAP)."""
     return s.get("mode") in SPONTANEOUS_MODES
@@ -751,11 +760,13 @@ def _spontaneous_alerts(block) -> list:
 
 
 def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0, with_course: bool = True,
-                    with_band: bool = True, with_next: bool = True) -> dict:
+                    with_band: bool = True, with_next: bool = True, stop=None) -> dict:
     """Forecast checked trial settings (case-file keys) for an already fitted case (same blocks as ``predict``).
 
     ``with_band`` adds the likely range of the course (200 parameter draws, the slowest part);
-    ``with_next`` the next best measurement. The window asks for them in a second, later pass.
+    ``with_next`` the next best measurement. The window asks for them in a second, later pass. ``stop``
+    (optional, no arguments): checked between the band's chunks and before the next best measurement;
+    once it returns True the forecast gives up with :class:`Stopped` (its result is no longer wanted).
     """
     supported = None
     if is_spontaneous(trial_dict):
@@ -823,7 +834,7 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
         course = simulate(result.model, current, trial, minutes=minutes)
         if not course.success:
             raise ModelError(course.message)
-        band = _band(result, current, trial, minutes) if with_band else None
+        band = _band(result, current, trial, minutes, stop=stop) if with_band else None
         if band is None:
             if with_band:
                 alerts.append({"code": "band_unavailable", "severity": "caution",
@@ -854,6 +865,7 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
         recheck = float(course.recheck_after_min)
         out["recheck_after_min"] = None if not math.isfinite(recheck) else round(max(recheck, 0.0), 1)
     if with_next:
+        _check(stop)
         try:
             best = next_best_measurement(result, trial)
         except (ValueError, np.linalg.LinAlgError) as exc:
@@ -893,7 +905,7 @@ def trial_course(case: dict, result, trial_dict: dict, minutes: float = 60.0) ->
 BAND_CHUNK = 25
 
 
-def _band(result, current, trial, minutes, n=200):
+def _band(result, current, trial, minutes, n=200, stop=None):
     """Courses of up to ``n`` parameter draws that have a steady state at both settings, or None.
 
     Returns ``(pao2, paco2, sao2, ph, left_out)``: arrays (draws, time) and the number of draws whose course
@@ -909,8 +921,10 @@ def _band(result, current, trial, minutes, n=200):
         return None
     # In chunks: one batch of 200 courses holds per-unit arrays of every draw at every output time
     # (about 170 MB at its peak); chunks of 25 keep the window's memory in bounds at about the same speed.
-    parts = [p for start in range(0, idx.size, BAND_CHUNK)
-             for p in _courses(draws, idx[start:start + BAND_CHUNK], current, trial, minutes)]
+    parts = []
+    for start in range(0, idx.size, BAND_CHUNK):
+        _check(stop)  # a stale band stops between chunks (``stop``: see forecast_fitted)
+        parts += _courses(draws, idx[start:start + BAND_CHUNK], current, trial, minutes)
     kept = sum(p[0].size for p in parts)
     if kept < 50:
         return None

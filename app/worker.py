@@ -18,7 +18,8 @@ from PySide6 import QtCore
 
 @dataclass(frozen=True)
 class Request:
-    """A frozen unit of work: ``kind`` ('fit', 'forecast', 'band'), an id, and a callable with no arguments."""
+    """A frozen unit of work: ``kind`` ('fit', 'forecast', 'band'), an id, and a callable with no arguments
+    (a stoppable request's is bound to its stop check)."""
 
     id: int
     kind: str
@@ -83,13 +84,18 @@ class EngineRunner(QtCore.QObject):
         self._signals.done.connect(self._on_done, QtCore.Qt.QueuedConnection)
         self._signals.failed.connect(self._on_failed, QtCore.Qt.QueuedConnection)
 
-    def submit(self, kind: str, work) -> Request:
+    def submit(self, kind: str, work, stoppable: bool = False) -> Request:
+        """Run ``work()``; with ``stoppable``, ``work(stop)``, where ``stop()`` turns True once the request
+        is no longer the newest of its kind or was cancelled: long work checks it between its parts and
+        gives up (raising), so a stale computation stops instead of running on for nothing."""
         request = Request(next(self._ids), kind, work)
         self._latest[kind] = request.id
         self._cancelled.discard(kind)
+        if stoppable:
+            request = Request(request.id, kind, lambda: work(lambda: not self.is_current(request)))
         if self.synchronous:
             try:
-                result = work()
+                result = request.work()
             except Exception as exc:
                 self.failed.emit(request, _describe(exc))
             else:
@@ -101,10 +107,16 @@ class EngineRunner(QtCore.QObject):
     def cancel(self, kind: str) -> None:
         """Forget the newest request of ``kind``: its result, when it comes, is dropped.
 
-        A computation already running is not interrupted (numpy cannot be stopped midway); it
-        finishes in the background and its result is discarded.
+        A computation already running is not interrupted midway (numpy cannot be); a stoppable one gives
+        up at its next check, any other finishes in the background and its result is discarded.
         """
         self._cancelled.add(kind)
+
+    def cancel_all(self) -> None:
+        """Cancel every kind and drop the requests still queued (closing the window): a stoppable computation
+        already running stops at its next check."""
+        self._cancelled.update(self._latest)
+        self.pool.clear()
 
     def is_current(self, request: Request) -> bool:
         return self._latest.get(request.kind) == request.id and request.kind not in self._cancelled

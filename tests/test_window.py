@@ -447,11 +447,11 @@ def test_rapid_changes_never_block_and_the_newest_wins(window, qtbot, monkeypatc
     engine_threads = []
     submit = window.runner.submit
 
-    def recording_submit(kind, work):
-        def run():
+    def recording_submit(kind, work, stoppable=False):
+        def run(*stop):
             engine_threads.append(threading.get_ident())
-            return work()
-        return submit(kind, run)
+            return work(*stop)
+        return submit(kind, run, stoppable=stoppable)
 
     monkeypatch.setattr(window.runner, "submit", recording_submit)
     heartbeat, gaps = start_heartbeat()
@@ -643,6 +643,49 @@ def test_runner_drops_stale_results_and_reports_failures(qtbot):
     assert "internal error" in failed[0] and "KeyError" in failed[0]
     runner.wait()
     runner.deleteLater()
+
+
+def test_a_stale_band_stops_at_its_next_check_and_close_drops_queued_work(qtbot):
+    """A stoppable request learns it is stale (a newer one of its kind, or cancel_all) through its stop
+    check and gives up; cancel_all also drops requests still queued. The engine's band checks between
+    chunks: a forecast asked to stop raises Stopped before any course is integrated."""
+    import threading
+    import time
+
+    from ventcast.app import engine
+    runner = win.EngineRunner()
+    seen, stopped_after = [], []
+    runner.finished.connect(lambda r, x: seen.append(x))
+    started = threading.Event()
+
+    def long(stop):
+        started.set()
+        t0 = time.monotonic()
+        while not stop():
+            if time.monotonic() - t0 > 20:
+                return "ran to the end"
+            time.sleep(0.005)
+        stopped_after.append(time.monotonic() - t0)
+        raise engine.Stopped("stopped")
+
+    runner.submit("band", long, stoppable=True)
+    assert started.wait(10)
+    runner.submit("band", lambda stop: "newest", stoppable=True)
+    qtbot.waitUntil(lambda: seen == ["newest"], timeout=10_000)
+    assert stopped_after and stopped_after[0] < 5
+    started.clear()
+    runner.submit("band", long, stoppable=True)
+    assert started.wait(10)
+    ran = []
+    runner.submit("plan", lambda: ran.append(1))  # queued behind the running band (one thread)
+    runner.cancel_all()
+    assert runner.wait(10_000)
+    assert ran == [] and len(stopped_after) == 2
+    runner.deleteLater()
+    case = load_demo("ards-moderate")
+    _p, _o, result = engine.fit_case(case)
+    with pytest.raises(engine.Stopped):
+        engine.forecast_fitted(case, result, engine.apply_sets(case, ["peep_cmh2o=12"]), stop=lambda: True)
 
 
 def _recovery_files():

@@ -112,7 +112,8 @@ class ForecastPipeline:
     def _request_band(self, forecast):
         case, result = copy.deepcopy(self.state.case), self.fit_result
         trial = forecast["trial_settings"]
-        self.runner.submit("band", lambda: forecast_fitted(case, result, trial, with_band=True, with_next=True))
+        self.runner.submit("band", lambda stop: forecast_fitted(case, result, trial, with_band=True, with_next=True,
+                                                               stop=stop), stoppable=True)
 
     # --- results ------------------------------------------------------------------------------------
     def _on_result(self, request, result):

@@ -387,8 +387,7 @@ class MainWindow(BedsideLoop, ForecastPipeline, CaseFiles, TrialEditing, QtWidge
         self.debounce.stop()
         self.undo_stack.cleanChanged.disconnect(self._on_clean_changed)  # it fires while being destroyed
         self._drop_recovery()
-        self.runner.cancel("fit")
-        self.runner.cancel("draws")
+        self.runner.cancel_all()  # queued work is dropped; a band running stops at its next chunk
         self.runner.wait(60000)
         super().closeEvent(event)
 

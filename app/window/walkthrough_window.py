@@ -402,5 +402,6 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
 
     def closeEvent(self, event):
         self.timer.stop()
+        self.runner.cancel_all()
         self.runner.wait(60000)
         super().closeEvent(event)
