@@ -43,7 +43,7 @@ class MonitorPanel(QtWidgets.QGroupBox):
         readings = [("ppeak", "Ppeak [cmH2O]"), ("peep_total", "total PEEP [cmH2O]"), ("vte", "exhaled VT [mL]"),
                     ("rr", "RR, patient's own [/min]" if spontaneous else "RR [/min]")]
         if spontaneous:
-            readings += [("rsbi", "f/VT [breaths/min/L]"), ("pocc", "\u0394Pocc, expiratory hold [cmH2O]")]
+            readings += [("rsbi", "RSBI, f/VT [breaths/min/L]"), ("pocc", "\u0394Pocc, expiratory hold [cmH2O]")]
         for i, (key, label) in enumerate(readings):
             name = QtWidgets.QLabel(label)
             value = QtWidgets.QLabel("-")
