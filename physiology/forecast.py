@@ -123,16 +123,17 @@ def _masked(result, ok):
 
 
 def predict(patient: PatientModel, settings: Settings, start: dict | None = None,
-            tol: float = 1e-4, units: str = "full") -> Prediction:
+            tol: float = 1e-4, units: str = "full", mechanics_tol: float = 1e-10) -> Prediction:
     """Steady-state mechanics and blood gases for ``settings`` in ``patient`` (batched).
 
     A case fails (``success`` False, NaN numbers, a reason in ``message``) when its mechanics do
     not settle, the tidal volume does not fit, or the lung has no physiological steady state.
     ``start``: a Newton starting state for the lung (:func:`physiology.gasexchange.compartments.warm_start`
     of an earlier prediction's ``gas`` with the same batch shape); it changes the work, not the answer.
-    ``tol``: the lung solver's Newton-step tolerance (:func:`physiology.gasexchange.compartments.solve_steady_state`).
+    ``tol``: the lung solver's Newton-step tolerance (:func:`physiology.gasexchange.compartments.solve_steady_state`);
+    ``mechanics_tol``: the mechanics loop's, on the open fraction (:func:`physiology.mechanics.ventilator.breathe`).
     """
-    br = breathe(settings, patient.mechanics, pbw_kg=patient.pbw_kg)
+    br = breathe(settings, patient.mechanics, pbw_kg=patient.pbw_kg, tol=mechanics_tol)
     recruitable = np.asarray(patient.mechanics.recruitable, dtype=float)
     closed = np.nan_to_num(1.0 - br.open_fraction, nan=0.0)
     shunt = np.clip(np.asarray(patient.shunt_fixed) + np.asarray(patient.recruitable_shunt_ratio)

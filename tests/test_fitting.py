@@ -273,3 +273,26 @@ def test_an_impossible_rq_is_named():
     for rq in (0.6, 1.35):
         w = rq_warning(rq)
         assert f"{rq:.2f}" in w and "McClave" in w and "0.65-1.2" in w
+
+
+def test_sampler_mechanics_tolerance_moves_the_gases_by_under_one_percent_of_their_sd():
+    """The sampler's densities solve the mechanics loop to SAMPLER_MECHANICS_TOL: over 2,000 patients drawn
+    from the priors at random settings, PaO2, PaCO2 and pH differ from the forecasts' tolerance by under 1 %
+    of the smallest measurement SD of each (physiology.measurement), and the same cases succeed."""
+    from ventcast.physiology.fitting.fit import SAMPLER_MECHANICS_TOL
+    from ventcast.physiology.measurement import SD
+
+    rng = np.random.default_rng(8)
+    n = 2000
+    prior = population_defaults(PT)
+    values = {k: _from_z(k, rng.normal(_to_z(k, prior["mean"][k]), prior["sd"][k], n)) for k in PARAMETERS}
+    values["vco2"] = values["rq"] * values["vo2"]
+    model = build_model(PT, values, 10.0)
+    settings = Settings(mode="volume", fio2=rng.uniform(0.3, 0.9, n), peep=rng.uniform(5, 16, n),
+                        vt_ml=rng.uniform(320, 480, n), rr=rng.uniform(14, 28, n), ti=rng.uniform(0.7, 1.0, n))
+    exact = predict(model, settings)
+    loose = predict(model, settings, mechanics_tol=SAMPLER_MECHANICS_TOL)
+    assert np.array_equal(exact.success, loose.success) and exact.success.mean() > 0.9
+    ok = exact.success
+    for q in ("pao2", "paco2", "ph"):
+        assert np.max(np.abs(getattr(exact.gas, q)[ok] - getattr(loose.gas, q)[ok])) < 0.01 * SD[q][0], q
