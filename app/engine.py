@@ -657,7 +657,8 @@ def _spontaneous_block(result, supported) -> tuple:
             "pressure_time_product_cmh2o_s_min": _f(br.ptp_per_min), "dpl_dyn_cmh2o": _f(br.dpl_dyn),
             "intrinsic_peep_cmh2o": _f(br.intrinsic_peep), "mean_airway_pressure_cmh2o": _f(br.mean_paw),
             "inspiratory_time_s": _f(br.ti_s), "alveolar_ventilation_l_min": float(b["alveolar_ventilation"]),
-            "attainable": bool(b["attainable"]), "periodic": bool(np.all(br.periodic)), "pao2_mmhg": gas.get("pao2_mmhg"), "paco2_mmhg": gas.get("paco2_mmhg"),
+            "attainable": bool(b["attainable"]), "periodic": bool(np.all(br.periodic)),
+            "pao2_mmhg": gas.get("pao2_mmhg"), "paco2_mmhg": gas.get("paco2_mmhg"),
             "ph": gas.get("ph"), "sao2": gas.get("sao2"), "likely_range": ranges}
 
     def span(key, ranged=False):

@@ -349,7 +349,8 @@ class Run:
             inside = (c.minutes >= t0 - 1e-9) & (c.minutes <= t1 + 1e-9)
             numbers = {"rr_per_min": round(float(b["rr"]), 1), "vt_ml": round(float(br.vt_ml)),
                        "rsbi": round(float(br.rsbi)), "pmus_cmh2o": round(float(br.pmus), 1),
-                       "ppeak_cmh2o": round(float(br.ppeak), 1), "intrinsic_peep_cmh2o": round(float(br.intrinsic_peep), 1),
+                       "ppeak_cmh2o": round(float(br.ppeak), 1),
+                       "intrinsic_peep_cmh2o": round(float(br.intrinsic_peep), 1),
                        "ph": round(float(np.min(c.ph[inside])), 3), "sao2": round(float(np.min(c.sao2[inside])), 3),
                        "attainable": b["attainable"]}
             numbers["breaks"] = breaks(numbers, spo2_goal)

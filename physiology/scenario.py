@@ -10,10 +10,11 @@ Events (each changes the patient from its minute on; amounts accumulate):
 fraction of the lung that collapses and can be recruited again: atelectasis), ``compliance_down``
 (factor on the aerated-lung compliance), ``compliance_up`` (factor: recovery, oedema clearing),
 ``resistance_up`` (factor on airway resistance, and blood flow moved to low-V/Q units: bronchospasm),
-``resistance_down`` (factor: secretions cleared, bronchodilation; the low-V/Q flow moves back), ``metabolism_up`` (factor on VO2 and VCO2: fever), ``cardiac_output_down`` (factor:
-bleeding), ``circuit_leak`` (fraction of the set VT lost — in pressure control, of the inspiratory
-pressure), ``recruitment_manoeuvre`` (pressure held, cmH2O: lung opened up to it stays open above
-its closing pressure).
+``resistance_down`` (factor: secretions cleared, bronchodilation; the low-V/Q flow moves back),
+``metabolism_up`` (factor on VO2 and VCO2: fever), ``cardiac_output_down`` (factor: bleeding),
+``circuit_leak`` (fraction of the set VT lost — in pressure control, of the inspiratory pressure),
+``recruitment_manoeuvre`` (pressure held, cmH2O: lung opened up to it stays open above its closing
+pressure).
 
 A patient breathing on pressure support or CPAP makes every breath: the learner sets :class:`Support`
 and the patient's :class:`Effort` answers it. At each change the breath follows from the support, the
@@ -89,9 +90,9 @@ class Support:
 class Effort:
     """The breathing of a patient on support: peak muscle pressure per breath ``pmus`` [cmH2O], own rate
     ``rr`` [1/min] and neural inspiratory time ``ti_neural`` [s] (at the start), the alveolar ventilation
-    the patient defends under ``drive_preserved`` [L/min] at the start's CO2 production (it follows the CO2
-    production: the drive keeps PaCO2, as after ``metabolism_up``), the VT at the start [mL] (where the search for
-    each breath begins) and the ``response`` (one of RESPONSES)."""
+    the patient defends under ``drive_preserved`` [L/min] at the start's CO2 production (it follows the
+    CO2 production: the drive keeps PaCO2, as after ``metabolism_up``), the VT at the start [mL] (where
+    the search for each breath begins) and the ``response`` (one of RESPONSES)."""
 
     pmus: float
     rr: float
@@ -170,10 +171,9 @@ class Timeline:
         if action.minute < 0:
             raise ValueError(f"action minute {action.minute} is outside the accepted range 0 or more")
         if isinstance(action.settings, Support) != self.spontaneous:
-            raise ValueError("a patient breathing on support stays on support in a walkthrough, and a patient on "
-                             "controlled ventilation stays on it" if self.spontaneous else
-                             "a patient on controlled ventilation stays on it in a walkthrough (the effort of a "
-                             "patient on support is not known)")
+            raise ValueError("a patient breathing on support stays on support in a walkthrough" if self.spontaneous
+                             else "a patient on controlled ventilation stays on it in a walkthrough (the effort of "
+                                  "a patient on support is not known)")
         action.settings.validated(self.patient.pbw_kg)
         self.actions.append(action)
         self.actions.sort(key=lambda a: a.minute)
@@ -255,8 +255,8 @@ class Timeline:
         """The patient's breath on ``support`` with the lung ``p``: {"breath": SupportedBreath, "rr",
         "attainable" (False when the defended ventilation is out of reach even at 40 cmH2O of effort),
         "compliance_ml" (the chord compliance of the lung at this VT), "settings": the stand-in}. The
-        compliance and the breath are solved together (damped fixed point on VT); one that does not
-        settle within 1 mL raises ArithmeticError."""
+        compliance and the breath are solved together (secant steps on VT); one that does not settle
+        within 1 mL raises ArithmeticError, a VT below what the lung model follows raises ValueError."""
         key = (support, tuple(float(np.asarray(v)) for v in _patient_fields(p).values()))
         hit = self._breaths.get(key)
         if hit is not None:

@@ -46,7 +46,8 @@ import numpy as np
 from .._checks import check_range
 from .ventilator import Settings
 
-__all__ = ["SupportedBreath", "ventilation_kept", "volume_stand_in", "NEURAL_DUTY", "pmus_waveform", "supported_breath", "effort_from_occlusion",
+__all__ = ["SupportedBreath", "ventilation_kept", "volume_stand_in", "NEURAL_DUTY",
+            "pmus_waveform", "supported_breath", "effort_from_occlusion",
            "effort_from_tidal_volume", "support_bounds", "rsbi", "RSBI_FAILURE", "PMUS_EXCESSIVE",
            "DPL_DYN_EXCESSIVE", "CYCLE_OFF_DEFAULT"]
 
@@ -355,7 +356,8 @@ def ventilation_kept(alveolar_ventilation, pressure_support, peep, resistance, c
     :func:`support_bounds`. The rate is the lowest on a grid (half ``rr`` to ``rr_max``, leaving at least
     0.3 s of expiration) whose breath at the effort ``pmus`` keeps the ventilation, interpolated; where no
     rate does, the least effort per breath that keeps it, at the rate that ventilates most at that effort
-    (interpolated the same way; ``attainable`` False if even 40 cmH2O does not: the effort is then 40). Returns {"breath", "rr", "alveolar_ventilation",
+    (interpolated the same way; ``attainable`` False if even 40 cmH2O does not: the effort is then 40).
+    Returns {"breath", "rr", "alveolar_ventilation",
     "attainable"}."""
     vd = float(check_range("series dead space", series_dead_space_ml, 10.0, 600.0, "mL")) / 1000.0
     rr, tin, va_now = float(rr), float(ti_neural), float(alveolar_ventilation)
