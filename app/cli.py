@@ -462,9 +462,10 @@ def _cmd_walkthrough(args) -> int:
         print("The patient's breathing on support:")
         for line in breathing_lines(out):
             print(f"  {line}")
-    print(f"Score: {out['score']['met']} of {out['score']['of']}")
+    later = out["score"]["not_yet_due"]
+    print(f"Score: {out['score']['met']} of {out['score']['of']}" + (f" ({later} not yet due)" if later else ""))
     for s in out["score"]["items"]:
-        print(f"  [{'ok' if s['met'] else 'no'}] {s['expected']} - {s['why']}")
+        print(f"  [{'--' if s['met'] is None else 'ok' if s['met'] else 'no'}] {s['expected']} - {s['why']}")
     print()
     print(CAUTION)
     return EXIT_OK

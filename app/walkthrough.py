@@ -310,10 +310,19 @@ class Run:
                 "checkpoints": [c for c in self.script.get("checkpoints", []) if start < c["minute"] <= end],
                 "results": [d for d in self.timeline.draws if start < d.ready_at <= end]}
 
-    def score(self) -> list:
+    def score(self, until: float | None = None) -> list:
+        """Each expected action met or not; with ``until`` (a run stopped early), one due after it is
+        neither (``met`` None): the learner still had time for it."""
         out = []
         for ex in self.script.get("expected_actions", []):
             t = float(ex["by_minute"])
+            if until is not None and t > until + 1e-9:
+                goal = ("a blood gas drawn" if ex["what"] == "draw" else
+                        setting_words(ex["setting"], ex["value"], "at least" if ex["what"] == "setting_at_least"
+                                      else "at most"))
+                out.append({"expected": f"{goal} by minute {t:g} (not yet due: the run stopped at minute "
+                                        f"{until:g})", "met": None, "why": ex.get("why", "")})
+                continue
             if ex["what"] == "draw":
                 first = min((d.minute for d in self.timeline.draws), default=None)
                 met = first is not None and first <= t
@@ -369,6 +378,7 @@ class Run:
         def r(a, d):
             return [round(float(x), d) for x in np.asarray(a)[keep]]
 
+        score = self.score(until)
         events = [e for e in self.timeline.events if e.minute <= until]
         draws = [d for d in self.timeline.draws if d.minute <= until]
         timeline = [{"minute": e.minute, "what": f"event ({e.source})",
@@ -395,8 +405,9 @@ class Run:
                           for d in draws],
                 "course": {"minutes": r(c.minutes, 3), "pao2_mmhg": r(c.pao2, 2), "paco2_mmhg": r(c.paco2, 2),
                            "ph": r(c.ph, 4), "sao2": r(c.sao2, 4)},
-                "score": {"items": self.score(), "met": sum(s["met"] for s in self.score()),
-                          "of": len(self.score())},
+                "score": {"items": score, "met": sum(s["met"] is True for s in score),
+                          "of": sum(s["met"] is not None for s in score),
+                          "not_yet_due": sum(s["met"] is None for s in score)},
                 "breathing": self.breathing_segments(until),
                 "caution": CAUTION}
 

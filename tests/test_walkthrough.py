@@ -217,3 +217,15 @@ def test_new_script_command_opens_the_editor_and_refuses_bad_paths(tmp_path, cap
     assert "--new" in capsys.readouterr().err
     assert main(["walkthrough", "hypoxaemia-needs-peep", "--new", str(tmp_path / "b.walkthrough.json")]) == 2
     assert main(["walkthrough"]) == 2
+
+
+def test_a_run_stopped_early_scores_only_what_was_due():
+    """Finishing at minute 12 of a script that expects a draw by minute 10 and PEEP by minute 15: the PEEP
+    item is not yet due (neither met nor missed), and the score counts the due item only."""
+    run = Run(_script(duration_min=30))
+    run.draw(8.0)
+    out = run.debrief(12.0)
+    items = out["score"]["items"]
+    assert [s["met"] for s in items] == [True, None] and "not yet due" in items[1]["expected"]
+    assert (out["score"]["met"], out["score"]["of"], out["score"]["not_yet_due"]) == (1, 1, 1)
+    assert [s["met"] for s in run.score()] == [True, False]  # the whole run: the PEEP was never set

@@ -328,9 +328,11 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         out = self.run.debrief(self.minute if self.minute > 0 else None)
         # The debrief is for both: the score, why each expected action was met or missed, and now the
         # teaching summary the learner did not see during the run.
-        lines = [f"Debrief: score {out['score']['met']} of {out['score']['of']}"]
+        later = out["score"]["not_yet_due"]
+        lines = [f"Debrief: score {out['score']['met']} of {out['score']['of']}"
+                 + (f" ({later} not yet due)" if later else "")]
         for s in out["score"]["items"]:
-            mark = "\u2713" if s["met"] else "\u2716"
+            mark = "\u00b7" if s["met"] is None else "\u2713" if s["met"] else "\u2716"
             lines.append(f"   [{mark}] {s['expected']} \u2014 {s['why']}")
         breathing = breathing_lines(out)
         if breathing:
@@ -377,7 +379,8 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         html = [f"<h1>Walkthrough debrief: {escape(out['title'])}</h1><p><b>{escape(CAUTION)}</b></p>",
                 f"<h2>Teaching summary</h2><p>{escape(out['summary'])}</p>",
                 f"<p>Score {out['score']['met']} of {out['score']['of']}</p><ul>"]
-        html += [f"<li>{'(ok)' if s['met'] else '(missed)'} {escape(s['expected'])} \u2014 {escape(s['why'])}</li>"
+        html += [f"<li>{'(not yet due)' if s['met'] is None else '(ok)' if s['met'] else '(missed)'} "
+                 f"{escape(s['expected'])} \u2014 {escape(s['why'])}</li>"
                  for s in out["score"]["items"]]
         html.append("</ul>")
         if out["breathing"]:
