@@ -1154,6 +1154,28 @@ def test_script_editor_builds_a_script_that_loads_and_runs_to_the_same_course(qt
         qapp.processEvents()
 
 
+def test_script_editor_writes_the_response_of_a_patient_on_support(qtbot, qapp, tmp_path):
+    """Issue 22: a script on the pressure-support demo says how its patient answers; the default (drive
+    preserved) is left implicit, the other is written, and the preview runs the patient on support."""
+    from ventcast.app.window.script_editor import ScriptEditor
+
+    ed = ScriptEditor(path=str(tmp_path / "trial.walkthrough.json"))
+    try:
+        ed.title.setText("Support trial")
+        ed.case.setCurrentText("demo:support-trial")
+        ed.duration.setValue(20)
+        assert ed.document is not None and "patient_response" not in ed.document, ed.error.text()
+        ed.response.setCurrentIndex(ed.response.findData("effort_unchanged"))
+        assert ed.document["patient_response"] == "effort_unchanged"
+        out = ed.preview()
+        assert out is not None and out["breathing"] and out["breathing"][0]["vt_ml"] > 0
+    finally:
+        ed.close()
+        ed.deleteLater()
+        QtCore.QCoreApplication.sendPostedEvents(None, QtCore.QEvent.DeferredDelete)
+        qapp.processEvents()
+
+
 def test_monitor_shows_the_ventilator_readings_an_event_changes(qtbot, qapp):
     """Issue 18: the learner's monitor shows peak pressure, total PEEP and exhaled VT as the ventilator
     would; after the scripted bronchospasm (airway resistance x1.3 at minute 3 in the COPD script) the
