@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from importlib import resources
 from pathlib import Path
 
@@ -28,6 +29,8 @@ from .engine import apply_sets, case_goals, fit_case, settings_text, spontaneous
 
 FORMAT = "ventcast.walkthrough"
 FOLLOW_FAILED = "the walkthrough patient cannot be followed: "
+#: The field of a refusal of a change the patient cannot be followed through.
+NOT_FOLLOWED = "walkthrough"
 VERSION = 1
 BUILT_IN = ("hypoxaemia-needs-peep", "hypercapnia-gas-trapping", "sudden-deterioration", "slow-desaturation",
             "breathing-trial")
@@ -178,6 +181,9 @@ class Run:
         self.speed = float(script.get("speed", 10.0))
         self.delay = float(script.get("draw_delay_min", 2.0))
         start = self.case["settings"]
+        if "patient_response" in script and start["mode"] not in SPONTANEOUS_MODES:
+            raise CaseError("script.patient_response", f"value {script['patient_response']!r} applies to a patient on "
+                                                       f"pressure support or CPAP; this case is in {start['mode']} mode")
         if start["mode"] in SPONTANEOUS_MODES:
             self.timeline = Timeline(fitted.model, support_of(start), seed=seed,
                                      effort=self._effort(fitted, script.get("patient_response", "drive_preserved")))
@@ -238,7 +244,7 @@ class Run:
         except (ValueError, ArithmeticError) as exc:
             self.revert_last()
             why = str(exc).removeprefix(FOLLOW_FAILED)
-            raise CaseError("walkthrough", f"the patient on support cannot be followed after this change: {why}") \
+            raise CaseError(NOT_FOLLOWED, f"the patient on support cannot be followed after this change: {why}") \
                 from None
 
     def revert_last(self) -> None:
@@ -267,7 +273,8 @@ class Run:
             accepted = "pressure-support or cpap" if self.spontaneous else "volume or pressure"
             why = ("the patient breathes on support in this walkthrough" if self.spontaneous else
                    "the patient is on controlled ventilation in this walkthrough (their own effort is not known)")
-            raise CaseError(f"{where} mode" if where.startswith("--") else f"{where}.mode",
+            option = re.fullmatch(r"--[a-z-]+", where) is not None  # as apply_sets names fields
+            raise CaseError(f"{where} mode" if option else f"{where}.mode",
                             f"value {new['mode']!r} is not accepted: {why}; accepted: {accepted}")
         action = Action(float(minute), support_of(new) if self.spontaneous else to_settings(new), ", ".join(sets))
         try:
@@ -435,7 +442,9 @@ def apply_actions_file(run: Run, text: str) -> None:
         try:
             return fn(*args, **kwargs)
         except CaseError as exc:
-            field = exc.field if exc.field.startswith(prefix) else f"{prefix}.{exc.field}"
+            # A change the patient cannot be followed through is named by the action itself.
+            field = (prefix if exc.field == NOT_FOLLOWED else exc.field if exc.field.startswith(prefix)
+                     else f"{prefix}.{exc.field}")
             raise CaseError(field, str(exc).split(": ", 1)[1]) from None
         except ValueError as exc:
             raise CaseError(prefix, str(exc)) from None

@@ -96,7 +96,7 @@ def test_spontaneous_inputs_are_refused_with_their_ranges():
         supported_breath(45.0, 5.0, 10.0, 50.0, 5.0, 20.0, 1.0)
     with pytest.raises(ValueError, match="neural inspiratory time = 3 s is outside"):
         supported_breath(8.0, 5.0, 10.0, 50.0, 5.0, 30.0, 3.0)
-    with pytest.raises(ValueError, match=r"cycle off fraction"):
+    with pytest.raises(ValueError, match=r"cycle_off_fraction"):
         supported_breath(8.0, 5.0, 10.0, 50.0, 5.0, 20.0, 1.0, cycle_off_fraction=0.95)
 
 

@@ -140,3 +140,27 @@ def test_headless_text_says_the_breathing_and_the_verdict(tmp_path, capsys):
     assert main(["walkthrough", "breathing-trial", "--headless", "--until", "20", "--actions", str(path)]) == 0
     out = capsys.readouterr().out
     assert "The patient's breathing on support:" in out and "RSBI above 105" in out and "Caution" in out
+
+
+@pytest.mark.parametrize("action,field,words", [
+    ({"minute": 5, "set": {"mode": "volume", "vt_ml": 400}}, "--actions[0].set.mode", "pressure-support or cpap"),
+    ({"minute": 5, "set": {"pressure_support_cmh2o": 45}}, "--actions[0].set.pressure_support_cmh2o", "0 to 40"),
+    ({"minute": 5, "event": {"kind": "compliance_down", "value": 0.2}}, "--actions[0].event:",
+     "compliance = 4.9"),
+])
+def test_refused_actions_name_the_action_the_value_and_what_is_accepted(tmp_path, capsys, action, field, words):
+    path = tmp_path / "actions.json"
+    path.write_text(json.dumps([action]))
+    assert main(["walkthrough", "breathing-trial", "--headless", "--actions", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert field in err and words in err and "Traceback" not in err
+
+
+def test_a_response_for_a_controlled_patient_is_refused(tmp_path, capsys):
+    from ventcast.app.walkthrough import built_in_text
+    script = dict(json.loads(built_in_text("hypoxaemia-needs-peep")), patient_response="effort_unchanged")
+    path = tmp_path / "x.walkthrough.json"
+    path.write_text(json.dumps(script))
+    assert main(["walkthrough", str(path), "--headless"]) == 2
+    err = capsys.readouterr().err
+    assert "script.patient_response" in err and "'effort_unchanged'" in err and "volume mode" in err

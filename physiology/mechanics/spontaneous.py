@@ -136,9 +136,15 @@ def pmus_waveform(t, pmus, ti_neural, t_total):
     return np.where(t <= ti_neural, rise, relax)
 
 
+#: The inputs' names in refusals.
+_LABELS = {"pressure_support": "pressure support", "peep": "PEEP", "resistance": "resistance",
+           "compliance_ml": "compliance", "pmus": "Pmus", "rr": "rate", "ti_neural": "neural inspiratory time",
+           "cycle_off_fraction": "cycling criterion (cycle_off_fraction)"}
+
+
 def _checked(name, value):
     lo, hi, unit = _LIMITS[name]
-    return np.asarray(check_range(name.replace("_", " "), value, lo, hi, unit), dtype=float)
+    return np.asarray(check_range(_LABELS[name], value, lo, hi, unit), dtype=float)
 
 
 def supported_breath(pressure_support, peep, resistance, compliance_ml, pmus, rr, ti_neural,
