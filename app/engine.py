@@ -17,8 +17,8 @@ import numpy as np
 from ventcast.physiology.bloodgas.acidbase import ph_invivo
 from ventcast.physiology.bloodgas.oxygen import saturation
 from ventcast.physiology.dynamics.course import simulate
-from ventcast.physiology.fitting.fit import (Observation, Patient, fit, likely_range, measured_at, sample_posterior,
-                                             model_error_factors, next_best_measurement)
+from ventcast.physiology.fitting.fit import (Observation, Patient, SamplerStopped, fit, likely_range, measured_at,
+                                             model_error_factors, next_best_measurement, sample_posterior)
 from ventcast.physiology.fitting.priors import CONDITION_LABELS, structure
 from ventcast.physiology.forecast import predict
 from ventcast.physiology.indices import oxygenation_index
@@ -247,14 +247,18 @@ def fit_case(case: dict, sample: bool = True):
     return patient, observations, result
 
 
-def sample_fit(result):
+def sample_fit(result, stop=None):
     """The posterior draws of a fit made with ``sample=False`` (:func:`physiology.fitting.fit.sample_posterior`);
-    a sampler that cannot finish is a :class:`ModelError`, as in :func:`fit_case`."""
+    a sampler that cannot finish is a :class:`ModelError`, as in :func:`fit_case`; one whose ``stop`` check
+    turns True gives up with :class:`Stopped`."""
     key = _fit_key(result.patient, result.observations, result.n_draws, result.seed)
     done = _remembered(key) if key is not None else None
     if done is not None:
         return done
-    result = sample_posterior(result)
+    try:
+        result = sample_posterior(result, stop)
+    except SamplerStopped:
+        raise Stopped("stopped: the draws are no longer wanted") from None
     if not result.success:
         raise ModelError(result.message)
     if key is not None:

@@ -296,3 +296,19 @@ def test_sampler_mechanics_tolerance_moves_the_gases_by_under_one_percent_of_the
     ok = exact.success
     for q in ("pao2", "paco2", "ph"):
         assert np.max(np.abs(getattr(exact.gas, q)[ok] - getattr(loose.gas, q)[ok])) < 0.01 * SD[q][0], q
+
+
+def test_a_stopped_sampler_gives_up_and_never_returns_draws():
+    """A sampler whose stop check turns True (the window asked for newer draws) raises SamplerStopped at its
+    next step; it does not return draws (not even the estimate repeated, which a failed sampler returns)."""
+    from ventcast.physiology.fitting.fit import SamplerStopped, sample_posterior
+    estimate = fit(PT, [observe(vc(0.5, 10))], sample=False)
+    calls = []
+
+    def stop():
+        calls.append(1)
+        return len(calls) > 3
+    with pytest.raises(SamplerStopped):
+        sample_posterior(estimate, stop)
+    assert len(calls) == 4
+    assert sample_posterior(estimate, lambda: False).draws is not None

@@ -181,7 +181,8 @@ class ForecastPipeline:
         """Start the posterior draws of the estimate shown (once), after its first forecast."""
         estimate, self._draws_for = getattr(self, "_draws_for", None), None
         if estimate is not None and estimate is self.fit_result:
-            self.runner.submit("draws", lambda: {"estimate": estimate, "result": sample_fit(estimate)})
+            self.runner.submit("draws", lambda stop: {"estimate": estimate, "result": sample_fit(estimate, stop)},
+                               stoppable=True)
 
     def _show_refused(self, why: str):
         """No forecast for the trial: clear every number, curve and Limits line computed from the trial

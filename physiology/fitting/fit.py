@@ -548,18 +548,24 @@ def fit(patient: Patient, observations, n_draws: int = 200, seed: int = 0, max_n
     return sample_posterior(result) if sample else result
 
 
-def sample_posterior(result: FitResult) -> FitResult:
+class SamplerStopped(RuntimeError):
+    """The sampler gave up because its ``stop`` check said the draws are no longer wanted."""
+
+
+def sample_posterior(result: FitResult, stop=None) -> FitResult:
     """The fit with its posterior draws and parameter ranges (:func:`_posterior_draws`), from a fit made
     with ``sample=False`` (the estimate alone, shown first while the draws are computed). The same
     seed gives the same draws as ``fit(..., sample=True)``. A sampler that cannot finish leaves
-    ``success`` False and says so in ``message``; the draws are then the estimate repeated."""
+    ``success`` False and says so in ``message``; the draws are then the estimate repeated. ``stop``
+    (optional, no arguments) is checked before each of the sampler's steps; once it returns True the
+    sampler raises :class:`SamplerStopped` (nothing is returned)."""
     if result.draws is not None:
         return result
     patient = result.patient
     problem = _Problem(patient, result.observations, result.free, {}, population_defaults(patient))
     rng = np.random.default_rng(result.seed)
     try:
-        Zd, sampler = _posterior_draws(problem, result.covariance, result.n_draws, rng)
+        Zd, sampler = _posterior_draws(problem, result.covariance, result.n_draws, rng, stop)
         sampled = ""
     except ArithmeticError as exc:  # no likely range can be given: say so, never a made-up one
         Zd, sampled, sampler = np.repeat(result.z_hat[None, :], result.n_draws, axis=0), str(exc), {}
@@ -618,7 +624,7 @@ def _next_beta(beta, increment, target_ess):
     return max(lo, beta + 1e-6)
 
 
-def _posterior_draws(problem: "_Problem", cov, n_draws, rng):
+def _posterior_draws(problem: "_Problem", cov, n_draws, rng, stop=None):
     """Draws from the posterior by a likelihood-tempered sequential Monte Carlo sampler.
 
     The draws start as exact draws from the prior and travel to the posterior through the tempered
@@ -656,6 +662,10 @@ def _posterior_draws(problem: "_Problem", cov, n_draws, rng):
     """
     p = problem.pm.size
     Z = problem.pm + rng.standard_normal((n_draws, p)) * problem.ps
+
+    def check():
+        if stop is not None and stop():
+            raise SamplerStopped("the posterior sampler was stopped: its draws are no longer wanted")
 
     def log_prior(Zs):
         return -0.5 * np.sum(((Zs - problem.pm) / problem.ps) ** 2, axis=1)
@@ -732,6 +742,7 @@ def _posterior_draws(problem: "_Problem", cov, n_draws, rng):
         for move in range(n_moves):
             if beta >= 1.0 and move >= MOVES_PER_STAGE and move >= _moves_needed(acceptance[-move:]):
                 break
+            check()
             prop, independent, hastings = propose(mean, *shape)
             lprior_new = log_prior(prop)
             loglik_new = problem.log_posterior(prop, start=states, units="coarse") - lprior_new
@@ -766,6 +777,7 @@ def _posterior_draws(problem: "_Problem", cov, n_draws, rng):
         if move >= CORRECTION_MOVES_MIN and move >= _moves_needed(final + acceptance[len(acceptance) - move:],
                                                                    share=duplicated):
             break
+        check()
         prop, independent, hastings = propose(mean, *shape)
         lprior_new = log_prior(prop)
         coarse_new = problem.log_posterior(prop, start=states, units="coarse") - lprior_new
