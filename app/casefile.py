@@ -23,6 +23,8 @@ import jsonschema
 
 from ventcast.physiology.gasexchange.alveolar import alveolar_po2
 from ventcast.physiology.indices import predicted_body_weight
+# The flow-cycling criterion when a pressure-support case does not give one [fraction of peak flow].
+from ventcast.physiology.mechanics.spontaneous import CYCLE_OFF_DEFAULT, INPUT_LIMITS
 
 FORMAT = "ventcast.case"
 VERSION = 3  # 2 adds settings_history; 3 the pressure-support and cpap modes and effort measurements (older files read unchanged)
@@ -35,8 +37,6 @@ PATIENT_DEFAULTS = {"temperature_c": 37.0, "barometric_mmhg": 760.0, "hb_g_dl": 
 SETTINGS_DEFAULTS = {"apparatus_dead_space_ml": 0.0, "vt_ml": None, "inspiratory_pressure_cmh2o": None}
 #: Modes in which the patient breathes: every breath is the patient's, supported (or not, on CPAP).
 SPONTANEOUS_MODES = ("pressure-support", "cpap")
-#: Flow-cycling criterion when a pressure-support case does not give one [fraction of peak flow].
-CYCLE_OFF_DEFAULT = 0.25
 
 # (low, high, unit) accepted in code, after the schema.
 SETTING_RANGES = {
@@ -45,8 +45,9 @@ SETTING_RANGES = {
     "inspiratory_time_s": (0.2, 5.0, "s"),
     "inspiratory_pressure_cmh2o": (1.0, 50.0, "cmH2O"),
     "apparatus_dead_space_ml": (0.0, 300.0, "mL"),
-    "pressure_support_cmh2o": (0.0, 40.0, "cmH2O"),
-    "cycle_off_fraction": (0.05, 0.8, "(fraction of peak flow)"),
+    # The breath model's own ranges (physiology.mechanics.spontaneous).
+    "pressure_support_cmh2o": INPUT_LIMITS["pressure_support"],
+    "cycle_off_fraction": (*INPUT_LIMITS["cycle_off_fraction"][:2], "(fraction of peak flow)"),
 }
 #: Settings in the words on screen: (name, unit with its leading space).
 SETTING_WORDS = {"mode": ("mode", ""), "fio2": ("FiO2", ""), "peep_cmh2o": ("PEEP", " cmH2O"), "vt_ml": ("VT", " mL"),

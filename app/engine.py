@@ -346,7 +346,7 @@ def supported_steady(case: dict, result, trial_dict: dict):
     unless it has no steady state: :func:`supported_trial`), with the breath's rate, Pmus and RSBI, and for VT,
     rate, Pmus and RSBI the span of both bounds (``<key>_bounds``)."""
     sup = supported_trial(case, result, trial_dict)
-    pred = predict(result.model, sup["equivalents"][sup["drawn"]])
+    pred = sup["predictions"][sup["drawn"]]
     steady = steady_block(pred, spontaneous=True)
     b1, b2 = sup["bounds"][sup["drawn"]], sup["bounds"][OTHER_BOUND[sup["drawn"]]]
     br = b1["breath"]
@@ -589,8 +589,8 @@ _SUPPORTED_LOCK = threading.Lock()
 def supported_trial(case: dict, result, trial_dict: dict) -> dict:
     """A trial on pressure support or CPAP: the effort now (:func:`spontaneous_now`), both bounds of the
     patient's answer (:func:`physiology.mechanics.spontaneous.support_bounds`), for each the
-    volume-controlled stand-in the lung model is given (same VT, rate and neural inspiratory share), and the
-    bound the forecast draws ("drawn")."""
+    volume-controlled stand-in the lung model is given (same VT, rate and neural inspiratory share) with its
+    steady-state prediction ("predictions"), and the bound the forecast draws ("drawn")."""
     key = (json.dumps(latest_spontaneous(case), sort_keys=True), json.dumps(case["settings"]["mode"]),
            json.dumps(trial_dict, sort_keys=True), id(result))
     with _SUPPORTED_LOCK:
@@ -626,11 +626,10 @@ def _supported_trial(case: dict, result, trial_dict: dict) -> dict:
                                                            "spontaneous_rr_per_min": float(b["rr"])})
     # The forecast drawn is the effort-unchanged bound; where that leaves too little ventilation for any steady
     # state (the patient cannot go on like that), the drive-preserved bound is drawn and the other is said.
-    drawn = "effort_unchanged"
-    if not bool(np.all(predict(result.model, equivalents["effort_unchanged"]).success)) \
-            and bool(np.all(predict(result.model, equivalents["drive_preserved"]).success)):
-        drawn = "drive_preserved"
-    return {"now": now, "bounds": bounds, "equivalents": equivalents, "drawn": drawn}
+    predictions = {name: predict(result.model, eq) for name, eq in equivalents.items()}
+    ok = {name: bool(np.all(p.success)) for name, p in predictions.items()}
+    drawn = "drive_preserved" if ok["drive_preserved"] and not ok["effort_unchanged"] else "effort_unchanged"
+    return {"now": now, "bounds": bounds, "equivalents": equivalents, "predictions": predictions, "drawn": drawn}
 
 
 def trial_engine_settings(case: dict, result, trial_dict: dict) -> Settings:
@@ -649,7 +648,7 @@ def _spontaneous_block(result, supported) -> tuple:
         b = supported["bounds"][name]
         br = b["breath"]
         eq = supported["equivalents"][name]
-        pred = predict(result.model, eq)
+        pred = supported["predictions"][name]
         gas = steady_block(pred) if bool(np.all(pred.success)) else {}
         ranges = None
         if result.sampled:

@@ -356,7 +356,7 @@ class Run:
         c = self.course()
         goal = case_goals(self.case).spo2
         spo2_goal = 0.88 if goal is None else float(goal[0])
-        starts = sorted({0.0} | {t for t, _p, _l in self.timeline._states(until)})
+        starts = sorted({0.0, *self.timeline.change_minutes(until)})
         out = []
         for i, t0 in enumerate(starts):
             t1 = starts[i + 1] if i + 1 < len(starts) else until

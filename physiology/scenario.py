@@ -35,7 +35,8 @@ import numpy as np
 
 from .dynamics.course import Change, Course, simulate
 from .forecast import PatientModel
-from .mechanics.spontaneous import (CYCLE_OFF_DEFAULT, supported_breath, ventilation_kept, volume_stand_in)
+from .mechanics.spontaneous import (CYCLE_OFF_DEFAULT, INPUT_LIMITS, supported_breath, ventilation_kept,
+                                    volume_stand_in)
 from .mechanics.ventilator import SETTING_LIMITS, VT_PER_KG_LIMITS, Settings, breathe
 from ._checks import check_fio2, check_range
 
@@ -63,8 +64,6 @@ ANALYSER_SD = {"pao2": (2.0, 0.02), "paco2": (1.0, 0.01), "ph": (0.005, 0.0), "s
 
 #: How a patient on support answers a change (see the module doc).
 RESPONSES = ("drive_preserved", "effort_unchanged")
-#: Accepted support settings: (low, high, unit).
-SUPPORT_LIMITS = {"pressure_support": (0.0, 40.0, "cmH2O"), "cycle_off_fraction": (0.05, 0.8, "")}
 
 
 @dataclass(frozen=True)
@@ -81,8 +80,8 @@ class Support:
     def validated(self, pbw_kg=None) -> None:
         check_fio2(self.fio2)
         check_range("PEEP", self.peep, *SETTING_LIMITS["peep"])
-        check_range("pressure support", self.pressure_support, *SUPPORT_LIMITS["pressure_support"])
-        check_range("cycling criterion", self.cycle_off_fraction, *SUPPORT_LIMITS["cycle_off_fraction"])
+        check_range("pressure support", self.pressure_support, *INPUT_LIMITS["pressure_support"])
+        check_range("cycling criterion", self.cycle_off_fraction, *INPUT_LIMITS["cycle_off_fraction"])
         check_range("apparatus dead space", self.apparatus_dead_space_ml, *SETTING_LIMITS["apparatus_dead_space_ml"])
 
 
@@ -226,6 +225,10 @@ class Timeline:
                     p = p.replace(pressure_history=float(e.value))
             states.append((t, p, leak))
         return states
+
+    def change_minutes(self, until: float) -> list:
+        """The minutes of every event or action before ``until``, in order."""
+        return [t for t, _p, _leak in self._states(until)]
 
     def _state(self, minute: float):
         """(patient, leak) in force at ``minute``."""

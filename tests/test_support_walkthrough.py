@@ -62,7 +62,7 @@ def test_a_defended_ventilation_is_kept_by_the_reported_breath(script):
     (common practice) equals the one defended at the start, at every support the patient can manage."""
     run = Run(script)
     effort = run.timeline.effort
-    series = float(np.asarray(run.fit.model.mechanics.anatomic_dead_space_ml)) + 50.0  # the case's apparatus
+    series = float(np.asarray(run.fit.model.mechanics.anatomic_dead_space_ml)) + run.case["settings"]["apparatus_dead_space_ml"]
     for ps in (12.0, 8.0, 6.0):
         run.act(5.0, {"pressure_support_cmh2o": ps})
         b = run.timeline.breathing_at(6.0)
@@ -98,10 +98,11 @@ def test_effort_unchanged_patient_keeps_rate_and_loses_volume(script):
 
 def test_more_co2_production_raises_the_rate_of_a_patient_who_keeps_their_drive(script):
     run = Run(script)
+    series = float(np.asarray(run.fit.model.mechanics.anatomic_dead_space_ml)) + run.case["settings"]["apparatus_dead_space_ml"]
     before = run.timeline.breathing_at(0.0)
     run.inject(10.0, "metabolism_up", 1.4)
     after = run.timeline.breathing_at(11.0)
-    va = [b["rr"] * (float(b["breath"].vt_ml) - 170.0) for b in (before, after)]
+    va = [b["rr"] * (float(b["breath"].vt_ml) - series) for b in (before, after)]
     assert after["rr"] > before["rr"] and va[1] > 1.2 * va[0]
 
 

@@ -84,7 +84,8 @@ AVERAGED = 10
 EFFORT_LEVELS = 21
 RATE_THINNING = 3
 
-_LIMITS = {
+#: Accepted inputs of the breath model: (low, high, unit).
+INPUT_LIMITS = {
     "pressure_support": (0.0, 40.0, "cmH2O"), "peep": (0.0, 30.0, "cmH2O"), "resistance": (2.0, 60.0, "cmH2O/L/s"),
     "compliance_ml": (5.0, 200.0, "mL/cmH2O"), "pmus": (0.0, 40.0, "cmH2O"), "rr": (4.0, 60.0, "/min"),
     "ti_neural": (0.3, 3.0, "s"), "cycle_off_fraction": (0.05, 0.8, ""),
@@ -143,7 +144,7 @@ _LABELS = {"pressure_support": "pressure support", "peep": "PEEP", "resistance":
 
 
 def _checked(name, value):
-    lo, hi, unit = _LIMITS[name]
+    lo, hi, unit = INPUT_LIMITS[name]
     return np.asarray(check_range(_LABELS[name], value, lo, hi, unit), dtype=float)
 
 
@@ -302,7 +303,7 @@ def effort_from_tidal_volume(vt_ml, pressure_support, peep, resistance, complian
     patient is over-assisted, or the mechanics are off); a VT beyond 40 cmH2O of effort is refused.
     Returns {"pmus_cmh2o", "basis", "vt_passive_ml"}."""
     target = float(check_range("measured VT", vt_ml, 50.0, 2000.0, "mL"))
-    hi = _LIMITS["pmus"][1]
+    hi = INPUT_LIMITS["pmus"][1]
 
     def vts(grid):
         return np.atleast_1d(supported_breath(pressure_support, peep, resistance, compliance_ml, grid, rr, ti_neural,
@@ -380,7 +381,7 @@ def ventilation_kept(alveolar_ventilation, pressure_support, peep, resistance, c
     if enough.size == 0:
         # The rate alone cannot keep it: the least effort per breath that keeps it, at the rate that ventilates
         # most at that effort (efforts x rates in one batch; both interpolated between the effort levels).
-        efforts = np.linspace(effort, _LIMITS["pmus"][1], EFFORT_LEVELS)
+        efforts = np.linspace(effort, INPUT_LIMITS["pmus"][1], EFFORT_LEVELS)
         coarse = rates[::RATE_THINNING]
         va2 = va(supported_breath(pressure_support, peep, resistance, compliance_ml, efforts[:, None], coarse[None, :],
                                   tin, cycle_off_fraction).vt_ml, coarse[None, :])

@@ -24,8 +24,7 @@ import numpy as np
 
 from ..forecast import PatientModel, predict
 from ..mechanics.spontaneous import (CYCLE_OFF_DEFAULT, PMUS_EXCESSIVE, RSBI_FAILURE, supported_breath,
-                                     support_bounds)
-from ..mechanics.ventilator import Settings
+                                     support_bounds, volume_stand_in)
 
 __all__ = ["SupportStep", "support_step_down", "support_matching_vt", "STOP_RULES", "breaks"]
 
@@ -64,14 +63,9 @@ class SupportStep:
 
 
 def _gas(model: PatientModel, fio2, peep, apparatus_dead_space_ml, breath, rr):
-    """Blood gases of a supported breath: the lung given the same VT, rate and inspiratory time as a
-    volume-controlled breath (its alveolar ventilation and mean airway pressure follow from them)."""
-    vt = float(breath.vt_ml)
-    ttot = 60.0 / rr
-    ti = float(np.clip(breath.ti_s, 0.3, 0.8 * ttot))
-    s = Settings(mode="volume", fio2=fio2, peep=peep, vt_ml=vt, rr=rr, ti=ti,
-                 apparatus_dead_space_ml=apparatus_dead_space_ml)
-    p = predict(model, s)
+    """Blood gases of a supported breath: the lung given its volume-controlled stand-in (the same VT and rate,
+    :func:`physiology.mechanics.spontaneous.volume_stand_in`, as every forecast on support)."""
+    p = predict(model, volume_stand_in(breath.vt_ml, rr, fio2, peep, apparatus_dead_space_ml))
     g = p.gas
     return {"pao2": float(g.pao2), "paco2": float(g.paco2), "ph": float(g.ph), "sao2": float(g.sao2)}
 
