@@ -195,44 +195,38 @@ def test_warm_start_reaches_the_same_state_in_fewer_iterations():
         solve_steady_state(LungParameters(**{k: v[:2] for k, v in moved.items()}), start=warm_start(before))
 
 
-def test_active_set_passes_equal_one_pass():
-    """Cases left unsettled by a pass continue from their last iterate: the same states as one pass that
-    carries every case to the last iteration."""
+def test_chunks_and_continued_states_equal_one_pass():
+    """A batch solved in chunks equals one chunk, and a case stopped early continues from its last
+    iterate to the state it reaches alone. Cases with and without a high-V/Q mode mixed (70 and 50
+    unit columns): a 50-column case continued from a 70-column state uses its main units and blood."""
     from ventcast.physiology.gasexchange import compartments as c
 
     cases = _random_lungs(400, 13)
-    a, _ = LungParameters(**cases).arrays()
-    passes = c._solve_batch(a, 1e-4, 80, None)
-    one = c._solve_batch(a, 1e-4, 80, None, settle=1.0)
-    assert np.array_equal(passes["ok"], one["ok"]) and passes["ok"].sum() > 300
-    ok = passes["ok"]
-    assert np.max(np.abs(passes["pao2"][ok] - one["pao2"][ok])) < 1e-6
-    assert np.max(np.abs(passes["paco2"][ok] - one["paco2"][ok])) < 1e-6
-    # A high-V/Q mode in a fifth of the cases (70 unit columns) and passes that stop at half settled: the
-    # cases continued without the mode have 50 columns; results and unit arrays are the same.
     rng = np.random.default_rng(14)
     cases["high_vq_fraction"] = np.where(rng.uniform(size=400) < 0.2, rng.uniform(0.05, 0.3, 400), 0.0)
     a, _ = LungParameters(**cases).arrays()
-    passes = c._solve_batch(a, 1e-4, 80, None, settle=0.5)
-    one = c._solve_batch(a, 1e-4, 80, None, settle=1.0)
-    assert np.array_equal(passes["ok"], one["ok"]) and passes["unit_vq"].shape == one["unit_vq"].shape == (400, 70)
-    ok = passes["ok"]
+    chunk = c.CHUNK
+    try:
+        c.CHUNK = 64
+        chunked = c._solve_batch(a, 1e-4, 80, None)
+    finally:
+        c.CHUNK = chunk
+    one = c._solve_arrays(a, 1e-4, 80, None)
+    assert np.array_equal(chunked["ok"], one["ok"]) and chunked["ok"].sum() > 300
+    assert chunked["unit_vq"].shape == one["unit_vq"].shape == (400, 70)
+    ok = one["ok"]
     for q in ("pao2", "paco2", "unit_po2"):
-        assert np.nanmax(np.abs(passes[q][ok] - one[q][ok])) < 1e-6, q
-    # Continuing only cases without the mode (50 units) inside a 70-column result, as a pass whose
-    # unsettled cases all lack it does: the state is continued from its main units and blood columns.
+        assert np.nanmax(np.abs(chunked[q][ok] - one[q][ok])) < 1e-12, q
     first = c._solve_arrays(a, 1e-4, 3, None)
     plain = np.flatnonzero((cases["high_vq_fraction"] == 0) & (first["reasons"] == c._NOT_CONVERGED))
     assert plain.size > 20 and first["unit_vq"].shape[1] == 70
     sub = {k: v[plain] for k, v in a.items()}
     redo = c._solve_arrays(sub, 1e-4, 77, {k: v[plain] for k, v in first["_state"].items()})
     assert redo["unit_vq"].shape[1] == 50
-    c._place(first, plain, redo)
     alone = c._solve_arrays(sub, 1e-4, 80, None)
-    done = alone["ok"] & first["ok"][plain]
+    done = alone["ok"] & redo["ok"]
     assert done.sum() > 0.8 * plain.size
-    assert np.max(np.abs(first["pao2"][plain][done] - alone["pao2"][done])) < 1e-6
-    assert np.all(first["unit_vq"][plain][:, 50:] == 0) and first["_state"]["p"].shape[1] == 72
+    assert np.max(np.abs(redo["pao2"][done] - alone["pao2"][done])) < 1e-6
 
 
 def test_sampler_tolerance_moves_the_gases_by_under_one_percent_of_their_sd():

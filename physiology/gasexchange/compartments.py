@@ -23,9 +23,10 @@ by Fick with VO2, VCO2 and cardiac output given.
 Numerics: one Newton iteration updates every unit's (PO2, PCO2) and the two
 mixed-venous contents together. The Jacobian is block-diagonal per unit with a
 two-column border for the mixed-venous unknowns; the border is eliminated by a
-Schur complement, so each iteration costs a handful of vectorised operations on
-arrays of shape (batch, units) — no loop over units or over the batch.
-Content derivatives are analytic. The small dependence of capillary pH on
+Schur complement, so each iteration costs a few operations per unit. The loop is
+compiled (numba, :mod:`._newton`) and runs case by case, each case stopping as soon
+as it has settled; the set-up before it and the results after it are vectorised
+numpy. Content derivatives are analytic. The small dependence of capillary pH on
 saturation (oxylabile term) is lagged one iteration; at convergence it is
 exact.
 
@@ -52,8 +53,8 @@ import numpy as np
 
 from .._checks import check_fio2, check_range
 from ..bloodgas.acidbase import _ph_invivo
-from ..bloodgas.carbon_dioxide import MMOL_TO_ML_DL
-from ..bloodgas.oxygen import _SEV_A, _SEV_B, HUFNER_DEFAULT, O2_SOLUBILITY, _ellis, _sev
+from ..bloodgas.oxygen import HUFNER_DEFAULT, O2_SOLUBILITY, _ellis, _sev
+from ._newton import _BOHR, _LN10, _LN20, _LN40, content_terms, newton
 from .alveolar import btps_factor, water_vapour_pressure_antoine
 
 __all__ = ["LungParameters", "SteadyState", "solve_steady_state", "DOMAIN",
@@ -250,13 +251,6 @@ _PH40_SBE0 = float(_ph_invivo(np.array(40.0), np.array(0.0)))
 
 # --- blood contents with analytic derivatives --------------------------------------------
 
-_LN10 = np.log(10.0)
-_LN20 = np.log(20.0)
-_LN40 = np.log(40.0)
-_BOHR = 0.40 * _LN10  # Kelman: d ln(virtual PO2) / d pH
-_DLNX_DC = _BOHR * 0.2741 + 0.06  # -d ln(virtual PO2) / d ln PCO2 along the buffer line
-
-
 class _Blood:
     """Per-case blood constants, shaped (B, 1) to broadcast over units."""
 
@@ -272,61 +266,12 @@ class _Blood:
         self.dpk_dp = 0.042 + 0.00139 * (38.0 - temperature)
 
     def contents(self, p, c, s_guess, derivatives=True):
-        """O2 and CO2 contents [mL/dL] at PO2 ``p``, PCO2 ``c`` [mmHg], with derivatives.
-
-        Capillary pH depends on saturation (oxylabile term) and saturation on pH
-        (Bohr): this loop is closed by one Newton correction from ``s_guess``
-        (contraction ~0.03, so the remaining error is ~1e-3 of the guess error);
-        derivatives are implicit, so the outer Newton stays quadratic.
-        """
-        lnc = np.log(c)
-        oxy = 0.003 * self.hb
-        ph_base = 7.59 + self.offset + oxy - 0.2741 * (lnc - _LN20)
-        ph = ph_base - oxy * s_guess
-        lx = np.log(p) + self.log_kelman_t + _BOHR * (ph - 7.4) + 0.06 * (_LN40 - lnc)
-        x = np.exp(lx)
-        x2 = x * x
-        q = x * (x2 + _SEV_B)
-        den = q + _SEV_A
-        fx = _SEV_A * (3.0 * x2 + _SEV_B) * x / (den * den)  # dS/d ln x
-        kappa = fx * _BOHR * oxy
-        s_new = s_guess + (q / den - s_guess) / (1.0 + kappa)
-        ph = ph_base - oxy * s_new
-        x = x * (1.0 - _BOHR * oxy * (s_new - s_guess))  # exp(z) to first order; z -> 0 at convergence
-        x2 = x * x
-        q = x * (x2 + _SEV_B)
-        den = q + _SEV_A
-        s = q / den
-        o2 = self.cap * s + O2_SOLUBILITY * p
-        # Kelman 1967 CO2
-        pp = 7.4 - ph
-        pk = 6.086 + 0.042 * pp + (38.0 - self.t) * (0.00472 + 0.00139 * pp)
-        dox = 0.590 + 0.2913 * pp - 0.0844 * pp * pp
-        dr = 0.664 + 0.2275 * pp - 0.0938 * pp * pp
-        ddd = dox + (dr - dox) * (1.0 - s)
-        e = np.exp(_LN10 * (ph - pk))
-        cp = self.sol * c * (1.0 + e)
-        mix = self.hct * ddd + (1.0 - self.hct)
-        co2 = MMOL_TO_ML_DL * mix * cp
-        if not derivatives:
-            return o2, co2, s, ph
-        fx = _SEV_A * (3.0 * x2 + _SEV_B) * x / (den * den)
-        inv = 1.0 / (1.0 + fx * _BOHR * oxy)
-        ds_dp = fx * inv / p
-        ds_dc = -fx * inv * _DLNX_DC / c
-        do2_dp = self.cap * ds_dp + O2_SOLUBILITY
-        do2_dc = self.cap * ds_dc
-        dpp_dp = oxy * ds_dp
-        dpp_dc = 0.2741 / c + oxy * ds_dc
-        ddox = 0.2913 - 0.1688 * pp
-        dddd_dpp = ddox + ((0.2275 - 0.1876 * pp) - ddox) * (1.0 - s)
-        dddd_ds = -(dr - dox)
-        dcp_dpp = -self.sol * c * e * _LN10 * (1.0 + self.dpk_dp)
-        hcp = self.hct * cp
-        dco2_dp = MMOL_TO_ML_DL * (hcp * (dddd_dpp * dpp_dp + dddd_ds * ds_dp) + mix * dcp_dpp * dpp_dp)
-        dco2_dc = MMOL_TO_ML_DL * (hcp * (dddd_dpp * dpp_dc + dddd_ds * ds_dc)
-                                   + mix * (self.sol * (1.0 + e) + dcp_dpp * dpp_dc))
-        return o2, co2, s, ph, do2_dp, do2_dc, dco2_dp, dco2_dc
+        """O2 and CO2 contents [mL/dL] at PO2 ``p``, PCO2 ``c`` [mmHg]: (O2, CO2, S, pH), then with
+        ``derivatives`` dO2/dp, dO2/dc, dCO2/dp, dCO2/dc (:func:`._newton.content_terms`, the same
+        equations the compiled Newton loop uses)."""
+        terms = content_terms(p, c, s_guess, self.hb, self.hct, self.t, self.offset, self.cap, self.sol,
+                              self.log_kelman_t, self.dpk_dp)
+        return terms if derivatives else terms[:4]
 
     def saturation_guess(self, p, c):
         """Saturation from the buffer line at S = 0.75 (within ~1e-2 of the coupled value)."""
@@ -416,8 +361,7 @@ def _distribution(a, units="full"):
     return vq, weights, perfusion, perfusion * vq
 
 
-def _solve_arrays(a: dict, tol: float, max_iter: int, start: dict | None = None, settle: float = 1.0,
-                  units: str = "full") -> dict:
+def _solve_arrays(a: dict, tol: float, max_iter: int, start: dict | None = None, units: str = "full") -> dict:
     """Solve one chunk of validated, broadcast inputs; return per-case arrays.
 
     Work arrays have N + 2 columns: the N units, then the arterial and the mixed-venous
@@ -427,8 +371,8 @@ def _solve_arrays(a: dict, tol: float, max_iter: int, start: dict | None = None,
     ``start`` (optional) holds a Newton state to start from instead of the standard guesses:
     ``p``, ``c`` (n, N + 2) [mmHg], ``cvo2``, ``cvco2`` (n,) [mL/dL]; rows with any non-finite
     value start from the standard guesses. The returned ``"_state"`` is the last iterate in that
-    form (a case not yet converged can be continued from it). The loop stops when every case
-    has settled (converged or failed), or, with ``settle`` below 1, once that share of them has.
+    form (a case not yet converged can be continued from it). The iterations are
+    :func:`._newton.newton`'s: each case stops as soon as it has settled (converged or failed).
     """
     n = a["fio2"].shape[0]
     t = a["temperature"]
@@ -448,9 +392,6 @@ def _solve_arrays(a: dict, tol: float, max_iter: int, start: dict | None = None,
     fick_o2 = a["vo2"] / (10.0 * a["cardiac_output"])
     fick_co2 = a["vco2"] / (10.0 * a["cardiac_output"])
     ko2 = (1.0 - fio2) * (k_flux / vq)
-    a21_const = -pio2 / pdry - (1.0 - fio2)
-    a22_const = -pio2 / pdry
-    wn = w * ns[:, None]
 
     # Start: arterial PCO2 from the alveolar ventilation equation; mixed venous from a Riley
     # (ideal alveolus + shunt) estimate through Fick, on the standard curves.
@@ -492,114 +433,33 @@ def _solve_arrays(a: dict, tol: float, max_iter: int, start: dict | None = None,
         s_lag = np.where(warm[:, None], blood.saturation_guess(p, c), 0.9)
     else:
         s_lag = np.full_like(p, 0.9)
-    p_cap = np.concatenate([np.broadcast_to(pio2 + 1.0, pu.shape),
-                            np.broadcast_to(pio2 + 1.0, (n, 2))], axis=1)
+    o2 = np.empty_like(p)
+    co2 = np.empty_like(p)
+    s = np.empty_like(p)
+    dpu = np.empty_like(vq)
+    dcu = np.empty_like(vq)
+    deriv = np.empty((n, 4, nu))
+    bderiv = np.empty((n, 4, 2))
+    flags = np.zeros((n, 7))
+    case = np.stack([k_flux[:, 0], pdry[:, 0], a["fio2"], ns, shunt, fick_o2, fick_co2, 0.02 * blood.cap[:, 0]],
+                    axis=1)
+    chem = np.concatenate([np.broadcast_to(x, (n, 1)) for x in (blood.hb, blood.hct, blood.t, blood.offset,
+                                                                blood.cap, blood.sol, blood.log_kelman_t,
+                                                                blood.dpk_dp)], axis=1)
+    p, c = np.ascontiguousarray(p, dtype=float), np.ascontiguousarray(c, dtype=float)
+    cvo2, cvco2 = np.array(cvo2, dtype=float), np.array(cvco2, dtype=float)
+    s_lag = np.ascontiguousarray(s_lag, dtype=float)
+    newton(np.ascontiguousarray(vq), np.ascontiguousarray(w), case, chem, p, c, cvo2, cvco2, s_lag,
+           float(tol), int(max_iter), o2, co2, s, dpu, dcu, deriv, bderiv, flags)
+    dv1, dv2 = flags[:, 0], flags[:, 1]
+    it = int(flags[:, 3].max()) if n else 0
+    converged, collapsed = flags[:, 4] == 1.0, flags[:, 6] == 1.0
+    uo2p, uo2c, uco2p, uco2c = deriv[:, 0], deriv[:, 1], deriv[:, 2], deriv[:, 3]
+    b11, b12, b21, b22 = bderiv[:, 0], bderiv[:, 1], bderiv[:, 2], bderiv[:, 3]
 
-    converged = np.zeros(n, dtype=bool)
-    collapse_count = np.zeros(n, dtype=int)
-    collapsed = np.zeros(n, dtype=bool)
-    bad_numbers = np.zeros(n, dtype=bool)
-    dp = np.empty_like(p)
-    dc = np.empty_like(c)
-    state = None
-    it = 0
-    for it in range(1, max_iter + 1):
-        o2, co2, s, _ph, do2_dp, do2_dc, dco2_dp, dco2_dc = blood.contents(p, c, s_lag)
-        uo2, uco2 = o2[:, :nu], co2[:, :nu]
-        cu = c[:, :nu]
-        # Unit residuals (West 1969 balances) and Fick closure.
-        e1 = vq * cu - k_flux * (cvco2[:, None] - uco2)
-        e2 = pio2 * (1.0 - (p[:, :nu] + cu) / pdry) - (1.0 - fio2) * p[:, :nu] - ko2 * (uo2 - cvo2[:, None])
-        mean_o2 = np.sum(w * uo2, axis=1)
-        mean_co2 = np.sum(w * uco2, axis=1)
-        g1 = ns * (mean_o2 - cvo2) - fick_o2
-        g2 = ns * (cvco2 - mean_co2) - fick_co2
-        # Unit Jacobian A = [[a11, a12], [a21, a22]] in (p, c), inverted in closed form.
-        uo2p, uo2c, uco2p, uco2c = do2_dp[:, :nu], do2_dc[:, :nu], dco2_dp[:, :nu], dco2_dc[:, :nu]
-        a11 = k_flux * uco2p
-        a12 = vq + k_flux * uco2c
-        a21 = a21_const - ko2 * uo2p
-        a22 = a22_const - ko2 * uo2c
-        inv_det = 1.0 / (a11 * a22 - a12 * a21)
-        i11, i12, i21, i22 = a22 * inv_det, -a12 * inv_det, -a21 * inv_det, a11 * inv_det
-        # Border columns (cvo2, cvco2): d e1 = [0, -K], d e2 = [ko2, 0]; A^-1 times them and A^-1 E.
-        m1p, m1c = i12 * ko2, i22 * ko2
-        m2p, m2c = -k_flux * i11, -k_flux * i21
-        uep = i11 * e1 + i12 * e2
-        uec = i21 * e1 + i22 * e2
-        # Fick rows: dg1/d(p,c) = ns w dO2; dg2/d(p,c) = -ns w dCO2. Schur complement on (cvo2, cvco2).
-        c1p, c1c = wn * uo2p, wn * uo2c
-        c2p, c2c = wn * uco2p, wn * uco2c
-        s11 = -ns - np.sum(c1p * m1p + c1c * m1c, axis=1)
-        s12 = -np.sum(c1p * m2p + c1c * m2c, axis=1)
-        s21 = np.sum(c2p * m1p + c2c * m1c, axis=1)
-        s22 = ns + np.sum(c2p * m2p + c2c * m2c, axis=1)
-        r1 = -g1 + np.sum(c1p * uep + c1c * uec, axis=1)
-        r2 = -g2 - np.sum(c2p * uep + c2c * uec, axis=1)
-        sdet = s11 * s22 - s12 * s21
-        dv1 = (s22 * r1 - s12 * r2) / sdet
-        dv2 = (-s21 * r1 + s11 * r2) / sdet
-        # Damp the whole step of a case whose mixed-venous contents would fall below 30 % of
-        # their value (keeps the Newton direction; the solution has positive contents).
-        over1 = dv1 < -0.7 * cvo2
-        over2 = dv2 < -0.7 * cvco2
-        if over1.any() or over2.any():
-            lam = np.minimum(np.where(over1, -0.7 * cvo2 / np.where(over1, dv1, -1.0), 1.0),
-                             np.where(over2, -0.7 * cvco2 / np.where(over2, dv2, -1.0), 1.0))
-            dv1 = lam * dv1
-            dv2 = lam * dv2
-        else:
-            lam = np.ones(n)
-        lam2 = lam[:, None]
-        dpu = -(lam2 * uep + m1p * dv1[:, None] + m2p * dv2[:, None])
-        dcu = -(lam2 * uec + m1c * dv1[:, None] + m2c * dv2[:, None])
-        # Arterial and mixed-venous blood: Newton on their content equations (targets held).
-        ca_o2 = ns * mean_o2 + shunt * cvo2
-        ca_co2 = ns * mean_co2 + shunt * cvco2
-        rb1 = o2[:, nu:] - np.stack([ca_o2, cvo2], axis=1)
-        rb2 = co2[:, nu:] - np.stack([ca_co2, cvco2], axis=1)
-        b11, b12, b21, b22 = do2_dp[:, nu:], do2_dc[:, nu:], dco2_dp[:, nu:], dco2_dc[:, nu:]
-        bdet = b11 * b22 - b12 * b21
-        dpb = -(b22 * rb1 - b12 * rb2) / bdet
-        dcb = -(-b21 * rb1 + b11 * rb2) / bdet
-        # Safeguards: stay positive and below inspired PO2; limit large jumps.
-        dp[:, :nu] = dpu
-        dp[:, nu:] = dpb
-        dc[:, :nu] = dcu
-        dc[:, nu:] = dcb
-        p_try = p + dp
-        c_try = c + dc
-        p_new = np.clip(p_try, 0.3 * p, np.minimum(2.5 * p + 30.0, p_cap))
-        c_new = np.clip(c_try, 0.3 * c, 2.5 * c + 20.0)
-        full_step = (lam == 1.0) & np.all(p_new == p_try, axis=1) & np.all(c_new == c_try, axis=1)
-        step = np.maximum(np.max(np.abs(dp) / (1.0 + p), axis=1), np.max(np.abs(dc) / (1.0 + c), axis=1))
-        step_v = np.maximum(np.abs(dv1), np.abs(dv2)) / (1.0 + np.maximum(cvo2, cvco2))
-        ds = np.max(np.abs(s - s_lag), axis=1)
-        resid = np.maximum(np.max(np.abs(e1) / (1.0 + vq * cu), axis=1), np.max(np.abs(e2) / (1.0 + pio2), axis=1))
-        resid = np.maximum(resid, np.abs(g1) + np.abs(g2))
-        state = (p_new, c_new, cvo2 + dv1, cvco2 + dv2, resid, dpu, dcu, dv1, dv2,
-                 uo2p, uo2c, uco2p, uco2c, b11, b12, b21, b22)
-        p, c, s_lag = p_new, c_new, s
-        cvo2 = cvo2 + dv1
-        cvco2 = cvco2 + dv2
-        bad_numbers = ~(np.isfinite(step) & np.isfinite(step_v))
-        # Stop after a full Newton step below tol: in the quadratic regime the state it reaches is
-        # accurate to about tol squared.
-        converged = full_step & (step < tol) & (step_v < tol) & (ds < max(1e-4, tol)) & ~bad_numbers
-        # Mixed-venous O2 content driven towards zero (below 2 % saturation-equivalent) for three
-        # iterations running: VO2 cannot be delivered, there is no physiological steady state.
-        collapse_count = np.where(cvo2 < 0.02 * blood.cap[:, 0], collapse_count + 1, 0)
-        collapsed = collapse_count >= 3
-        done = converged | bad_numbers | collapsed
-        if np.all(done) or (settle < 1.0 and np.mean(done) >= settle):
-            break
-
-    # The accepted state is the one reached by the last (small, full) Newton step. The residuals
-    # at its start must be small too: the safeguarded steps must not hide a non-solution.
-    (p, c, cvo2, cvco2, resid, dpu, dcu, dv1, dv2,
-     uo2p, uo2c, uco2p, uco2c, b11, b12, b21, b22) = state
+    # The accepted state is the one reached by the last (small, full) Newton step, whose start had small
+    # residuals (RESIDUAL_MAX).
     last_iterate = {"p": p, "c": c, "cvo2": cvo2, "cvco2": cvco2}
-    converged &= resid < 1e-3
     # Contents at the accepted state, to first order from the last derivatives (error ~ step^2).
     uo2 = o2[:, :nu] + uo2p * dpu + uo2c * dcu
     uco2 = co2[:, :nu] + uco2p * dpu + uco2c * dcu
@@ -660,12 +520,6 @@ def _solve_arrays(a: dict, tol: float, max_iter: int, start: dict | None = None,
 
 
 _NOT_CONVERGED = "did not converge within the iteration limit"
-#: A pass of the Newton loop over a batch stops once this share of its cases has settled; the rest
-#: go on from their last iterate in a smaller batch (an active set: the settled cases are not carried
-#: through the iterations of the slowest, which matters when warm starts make most cases quick).
-SETTLE_SHARE = 0.9
-
-
 def _concatenate(parts: list) -> dict:
     """Join chunk results; a chunk without a high-V/Q mode has fewer unit columns, pad it with zeros."""
     width = max(pt["unit_vq"].shape[1] for pt in parts)
@@ -693,50 +547,13 @@ def _widen_state(x, width: int):
     return np.concatenate([x[:, :-2], np.full((x.shape[0], missing), np.nan), x[:, -2:]], axis=1)
 
 
-def _place(r: dict, rows, redo: dict) -> None:
-    """Write the results of a continued pass (``redo``, for ``rows`` of ``r``) into ``r``. The continued
-    cases may have fewer unit columns (none of them has the high-V/Q mode): unit arrays are padded with
-    zeros, as :func:`_concatenate` does, and states keep their blood columns last."""
-    width = r["unit_vq"].shape[1]
-    for k, v in redo.items():
-        if k == "it":
-            continue
-        if k == "_state":
-            for j, x in v.items():
-                r[k][j][rows] = x if x.ndim == 1 else _widen_state(x, width)
-            continue
-        if v.ndim == 2 and v.shape[1] < width:
-            v = np.pad(v, ((0, 0), (0, width - v.shape[1])))
-        r[k][rows] = v
-
-
-def _solve_batch(a: dict, tol: float, max_iter: int, start: dict | None, settle: float = SETTLE_SHARE,
-                 units: str = "full") -> dict:
-    """Chunks of at most CHUNK cases, each pass stopping once ``settle`` of its cases have settled;
-    the unsettled ones continue together from their last iterate until ``max_iter`` iterations in all."""
-    def run(sub, budget, st):
-        m = sub["fio2"].shape[0]
-        parts = [_solve_arrays({k: v[lo:lo + CHUNK] for k, v in sub.items()}, tol, budget,
-                               None if st is None else {k: v[lo:lo + CHUNK] for k, v in st.items()}, settle,
-                               units)
-                 for lo in range(0, m, CHUNK)]
-        return parts[0] if len(parts) == 1 else _concatenate(parts)
-
-    r = run(a, max_iter, start)
-    used = int(r["it"])
-    while used < max_iter:
-        st = r["_state"]
-        # A case whose numbers broke down (non-finite iterate) has failed for good; a case whose state
-        # cannot be continued (another unit count) starts again from the standard guesses.
-        finite = np.isfinite(st["cvo2"]) & np.isfinite(st["cvco2"])
-        again = np.flatnonzero((r["reasons"] == _NOT_CONVERGED) & finite)
-        if not again.size:
-            break
-        redo = run({k: v[again] for k, v in a.items()}, max_iter - used, {k: v[again] for k, v in st.items()})
-        used += int(redo["it"])
-        _place(r, again, redo)
-    r["it"] = np.int64(used)
-    return r
+def _solve_batch(a: dict, tol: float, max_iter: int, start: dict | None, units: str = "full") -> dict:
+    """Chunks of at most CHUNK cases (bounded work arrays), joined."""
+    n = a["fio2"].shape[0]
+    parts = [_solve_arrays({k: v[lo:lo + CHUNK] for k, v in a.items()}, tol, max_iter,
+                           None if start is None else {k: v[lo:lo + CHUNK] for k, v in start.items()}, units)
+             for lo in range(0, n, CHUNK)]
+    return parts[0] if len(parts) == 1 else _concatenate(parts)
 
 
 def warm_start(previous: "SteadyState") -> dict:
@@ -751,8 +568,7 @@ def warm_start(previous: "SteadyState") -> dict:
             "cvco2": np.atleast_1d(np.asarray(previous.cvco2, dtype=float))}
 
 
-#: Cases per chunk: keeps the (chunk x units) work arrays cache-sized and lets a chunk whose
-#: cases have all converged stop early.
+#: Cases per chunk: keeps the (chunk x units) work arrays of a large batch cache-sized.
 CHUNK = 512
 
 
