@@ -322,3 +322,24 @@ def test_coarse_unit_grid_is_close_to_the_full_one():
         assert np.median(error) < 0.1 and np.percentile(error, 99) < 1.0, q
     with pytest.raises(ValueError, match="units"):
         solve_steady_state(cases, units="fine")
+
+
+def test_compiled_contents_equal_the_numpy_ones():
+    """The Newton kernel's blood contents (compiled by numba, cached) and the same function run by numpy
+    on arrays agree to rounding over the domain, derivatives included. Numba's cache does not see a change
+    of the constants it froze in from other modules (Severinghaus's, O2 solubility, ...): a stale cache
+    fails here."""
+    from ventcast.physiology.gasexchange import _newton as k
+    from ventcast.physiology.gasexchange.compartments import blood_chemistry
+
+    rng = np.random.default_rng(31)
+    n = 2000
+    blood = blood_chemistry(rng.uniform(4, 20, n), rng.uniform(32, 41, n), rng.uniform(-20, 20, n),
+                            rng.uniform(1.30, 1.40, n))
+    p, c, s = rng.uniform(5, 700, n), rng.uniform(10, 150, n), rng.uniform(0.05, 1.0, n)
+    consts = (blood.hb, blood.hct, blood.t, blood.offset, blood.cap, blood.sol, blood.log_kelman_t, blood.dpk_dp)
+    arrays = k.content_terms(p, c, s, *consts)
+    compiled = np.array([k._contents(p[i], c[i], s[i], *(float(x[i]) for x in consts)) for i in range(0, n, 7)])
+    for j, name in enumerate(("O2", "CO2", "S", "pH", "dO2/dp", "dO2/dc", "dCO2/dp", "dCO2/dc")):
+        want = arrays[j][::7]
+        assert np.allclose(compiled[:, j], want, rtol=1e-12, atol=1e-14), name

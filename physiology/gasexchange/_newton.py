@@ -9,7 +9,11 @@ sizes (200 cases, 17 or 52 columns) the array version spent most of its time in 
 overhead. ``nogil``: the window's worker thread does not hold the interpreter lock while it solves.
 
 Compiled on first use and cached beside this file (``cache=True``), so only the first run after an
-install pays the compile (a few seconds; see DEVELOPERS.md).
+install pays the compile (a few seconds; see DEVELOPERS.md). Numba's cache is invalidated by an edit of
+this file only: everything it compiles lives here, and the constants it takes from other modules
+(Severinghaus's, O2 solubility, the CO2 unit factor, Kelman's Bohr factor) are frozen into the cached code, so a test checks
+the compiled contents against :func:`content_terms` run by numpy (a stale cache fails it; delete
+``__pycache__``). Imported by ``compartments`` at the first solve, so the engine imports without numba.
 """
 
 from __future__ import annotations
@@ -21,13 +25,10 @@ from numba import njit
 
 from ..bloodgas.carbon_dioxide import MMOL_TO_ML_DL
 from ..bloodgas.oxygen import _SEV_A, _SEV_B, O2_SOLUBILITY
+from .compartments import _BOHR, _LN10, _LN20, _LN40
 
-_LN10 = math.log(10.0)
-_LN20 = math.log(20.0)
-_LN40 = math.log(40.0)
 #: Largest scaled residual (unit balances, Fick) at the start of the accepted step.
 RESIDUAL_MAX = 1e-3
-_BOHR = 0.40 * _LN10  # Kelman: d ln(virtual PO2) / d pH
 _DLNX_DC = _BOHR * 0.2741 + 0.06  # -d ln(virtual PO2) / d ln PCO2 along the buffer line
 
 

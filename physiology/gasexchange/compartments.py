@@ -54,7 +54,6 @@ import numpy as np
 from .._checks import check_fio2, check_range
 from ..bloodgas.acidbase import _ph_invivo
 from ..bloodgas.oxygen import HUFNER_DEFAULT, O2_SOLUBILITY, _ellis, _sev
-from ._newton import _BOHR, _LN10, _LN20, _LN40, content_terms, newton
 from .alveolar import btps_factor, water_vapour_pressure_antoine
 
 __all__ = ["LungParameters", "SteadyState", "solve_steady_state", "DOMAIN",
@@ -251,6 +250,12 @@ _PH40_SBE0 = float(_ph_invivo(np.array(40.0), np.array(0.0)))
 
 # --- blood contents with analytic derivatives --------------------------------------------
 
+_LN10 = np.log(10.0)
+_LN20 = np.log(20.0)
+_LN40 = np.log(40.0)
+_BOHR = 0.40 * _LN10  # Kelman: d ln(virtual PO2) / d pH
+
+
 class _Blood:
     """Per-case blood constants, shaped (B, 1) to broadcast over units."""
 
@@ -269,6 +274,8 @@ class _Blood:
         """O2 and CO2 contents [mL/dL] at PO2 ``p``, PCO2 ``c`` [mmHg]: (O2, CO2, S, pH), then with
         ``derivatives`` dO2/dp, dO2/dc, dCO2/dp, dCO2/dc (:func:`._newton.content_terms`, the same
         equations the compiled Newton loop uses)."""
+        from ._newton import content_terms  # numba comes with it: at the first solve, not with the engine
+
         terms = content_terms(p, c, s_guess, self.hb, self.hct, self.t, self.offset, self.cap, self.sol,
                               self.log_kelman_t, self.dpk_dp)
         return terms if derivatives else terms[:4]
@@ -449,6 +456,8 @@ def _solve_arrays(a: dict, tol: float, max_iter: int, start: dict | None = None,
     p, c = np.ascontiguousarray(p, dtype=float), np.ascontiguousarray(c, dtype=float)
     cvo2, cvco2 = np.array(cvo2, dtype=float), np.array(cvco2, dtype=float)
     s_lag = np.ascontiguousarray(s_lag, dtype=float)
+    from ._newton import newton  # numba: imported at the first solve, not with the engine (DEVELOPERS.md)
+
     newton(np.ascontiguousarray(vq), np.ascontiguousarray(w), case, chem, p, c, cvo2, cvco2, s_lag,
            float(tol), int(max_iter), o2, co2, s, dpu, dcu, deriv, bderiv, flags)
     dv1, dv2 = flags[:, 0], flags[:, 1]
@@ -458,7 +467,7 @@ def _solve_arrays(a: dict, tol: float, max_iter: int, start: dict | None = None,
     b11, b12, b21, b22 = bderiv[:, 0], bderiv[:, 1], bderiv[:, 2], bderiv[:, 3]
 
     # The accepted state is the one reached by the last (small, full) Newton step, whose start had small
-    # residuals (RESIDUAL_MAX).
+    # residuals (_newton.RESIDUAL_MAX).
     last_iterate = {"p": p, "c": c, "cvo2": cvo2, "cvco2": cvco2}
     # Contents at the accepted state, to first order from the last derivatives (error ~ step^2).
     uo2 = o2[:, :nu] + uo2p * dpu + uo2c * dcu
