@@ -36,6 +36,13 @@ def check_range(name: str, value, low: float, high: float, unit: str = "",
     The message reads, for example, ``PEEP = 35 cmH2O is outside the accepted
     range 0 to 30 cmH2O``.
     """
+    if type(value) is np.ndarray and value.dtype == np.float64 and value.size and np.isfinite(low) and np.isfinite(high):
+        # Fast path for float arrays (the batched engine checks the same arrays many times): NaN fails both
+        # comparisons and infinities fail the finite bounds, so anything not clearly inside falls through
+        # to the checks below, which word the message.
+        lo_v, hi_v = value.min(), value.max()
+        if (lo_v >= low if low_inclusive else lo_v > low) and (hi_v <= high if high_inclusive else hi_v < high):
+            return value
     arr = as_array(name, value)
     too_low = arr < low if low_inclusive else arr <= low
     too_high = arr > high if high_inclusive else arr >= high

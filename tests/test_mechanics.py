@@ -320,3 +320,35 @@ def test_waterfall_formula_limits():
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # a trapped volume beyond capacity stays infinite, without warnings
         assert np.all(np.isinf(waterfall_total_peep(np.array([5.0, 5.0]), np.inf, np.array([1.0, 0.0]))))
+
+
+def test_compiled_breath_helpers_equal_the_array_forms():
+    """The breathing loop's compiled one-case forms (physiology/mechanics/_breath.py) of the pressure-volume
+    curve, the opening and closing of recruitable lung (normal distribution function), the waterfall and the
+    square-wave pressure-control breath give the array forms' numbers over their domain. Numba's cache does
+    not see a change of the waterfall constants it froze in: a stale cache fails here too."""
+    from scipy.special import ndtr
+
+    from ventcast.physiology.mechanics import _breath as k
+    from ventcast.physiology.mechanics.motion import pressure_control_volumes
+    from ventcast.physiology.mechanics.recruitment import aerated_pressure, aerated_volume
+    from ventcast.physiology.mechanics.ventilator import waterfall_total_peep
+
+    rng = np.random.default_rng(41)
+    n = 400
+    p, c, infl, width = rng.uniform(0, 60, n), rng.uniform(0.01, 0.1, n), rng.uniform(8, 45, n), rng.uniform(1, 20, n)
+    v = aerated_volume(p, c, infl, width) * rng.uniform(0.5, 1.2, n)
+    x = rng.uniform(-8, 8, n)
+    peep, pi0, fl = rng.uniform(0, 30, n), rng.uniform(0, 20, n), rng.choice([0.0, 0.3, 1.0], n)
+    for i in range(n):
+        assert k.aerated_volume(p[i], c[i], infl[i], width[i]) == pytest.approx(float(aerated_volume(p[i], c[i], infl[i], width[i])), rel=1e-12)
+        assert k.aerated_pressure(v[i], c[i], infl[i], width[i]) == pytest.approx(float(aerated_pressure(v[i], c[i], infl[i], width[i])), rel=1e-12)
+        assert k.ndtr(x[i]) == pytest.approx(float(ndtr(x[i])), rel=1e-12, abs=1e-15)
+        assert k.waterfall_total_peep(peep[i], pi0[i], fl[i]) == pytest.approx(float(waterfall_total_peep(peep[i], pi0[i], fl[i])), rel=1e-12)
+    # The pressure-control breath inside one cycle, against motion.pressure_control_volumes (lung fully open,
+    # linear part of the curve: chord compliance = Cmax).
+    for dpi, r, cmax, ti, te in ((15.0, 10.0, 0.05, 1.0, 2.0), (25.0, 25.0, 0.03, 0.8, 1.0), (8.0, 5.0, 0.08, 1.2, 3.8)):
+        g = k._cycle(1.0, cmax, False, 0.0, dpi, 0.0, ti, te, ti / (ti + te), r, cmax, 45.0, 5.0, 0.0, 0.0,
+                     20.0, 5.0, 5.0, 3.0, 0.0, False)
+        vt, trapped = pressure_control_volumes(dpi, cmax, r * cmax, ti, te)
+        assert g[3] == pytest.approx(float(vt), rel=1e-12) and g[4] == pytest.approx(float(trapped), rel=1e-12)

@@ -9,8 +9,8 @@ alveolar ventilation for the gas-exchange engine.
 
 The nonlinear loop (compliance depends on recruitment and on the plateau, the
 plateau on compliance, intrinsic PEEP on the time constant) is closed by
-fixed-point iteration on arrays; a case that does not settle, or whose tidal
-volume would not fit into the lung, fails with a reason.
+a Newton iteration, compiled and case by case (:mod:`._breath`); a case that does not
+settle, or whose tidal volume would not fit into the lung, fails with a reason.
 """
 
 from __future__ import annotations
@@ -21,8 +21,8 @@ import numpy as np
 
 from .._checks import check_fio2, check_range
 from .motion import (mean_airway_pressure, mechanical_power_gattinoni, mechanical_power_pressure_control,
-                     mechanical_power_simplified, pressure_control_volumes)
-from .recruitment import aerated_pressure, aerated_volume, open_fraction
+                     mechanical_power_simplified)
+from .recruitment import aerated_volume
 
 __all__ = ["Settings", "Mechanics", "Breathing", "breathe", "SETTING_LIMITS"]
 
@@ -265,80 +265,23 @@ def breathe(settings: Settings, mechanics: Mechanics, pbw_kg=None, max_iter: int
     infl, width, peep = b["inflection"], b["width"], b["peep"]
     lr = b["recruitable"]
     volume_mode = settings.mode == "volume"
-    limited = bool(np.any(b["flow_limitation"] > 0))
-
-    def pressure(volume, aer):
-        return aerated_pressure(volume / aer, cmax, infl, width)
 
     def volume(p, aer):
         return aer * aerated_volume(p, cmax, infl, width)
 
-    hist0 = b["pressure_history"]
-    vt_set = b["vt_ml"] / 1000.0 if volume_mode else None
-    dpi = None if volume_mode else b["inspiratory_pressure"]
+    # The loop (open fraction and chord compliance set the breath, the breath sets them): compiled, case by
+    # case (physiology/mechanics/_breath.py, where its equations and the Newton iteration are described).
+    from ._breath import settle  # numba: imported at the first breath, not with the engine
 
-    def cycle(f_ee, c_chord):
-        """One pass of the loop: open fraction and chord compliance in, the same out (plus the breath)."""
-        aer = 1.0 - lr * (1.0 - f_ee)
-        v_peep = volume(peep, aer)
-        if volume_mode:
-            vt = vt_set
-            tau = r * c_chord  # the chord compliance of the breath sets the expiratory time constant
-            bexp = np.exp(-te / tau)
-            trapped = vt * bexp / (1.0 - bexp)
-        else:
-            v_top = volume(peep + dpi, aer) - v_peep  # what a long inspiration would deliver
-            c_top = np.maximum(v_top / dpi, 1e-5)
-            vt, trapped = pressure_control_volumes(dpi, c_top, r * c_top, ti, te)
-        if limited:
-            # Intrinsic PEEP the trapped volume would hold at zero PEEP, then the waterfall (flow-limited
-            # lungs): external PEEP below ~80 % of it leaves total PEEP and the lung volume unchanged.
-            v0 = volume(np.zeros_like(peep), aer)
-            p_i0 = pressure(v0 + trapped, aer)
-            peep_tot = waterfall_total_peep(peep, p_i0, b["flow_limitation"])
-            v_ee = volume(peep_tot, aer)
-        else:
-            v_ee = v_peep + trapped
-            peep_tot = pressure(v_ee, aer)
-        pplat = pressure(v_ee + vt, aer)
-        finite = np.isfinite(pplat)
-        history = np.maximum(hist0, np.where(finite, pplat, 0.0))
-        f_eff, f_ee_new = open_fraction(history, peep_tot, duty, b["mu_open"], b["sd_open"], b["mu_close"],
-                                        b["sd_close"])
-        with np.errstate(invalid="ignore"):  # inf plateaus (volume beyond capacity) are masked by `finite`
-            c_new = np.where(finite, vt / np.maximum(pplat - peep_tot, 1e-4), c_chord)
-        return f_ee_new, c_new, (aer, vt, trapped, peep_tot, pplat, f_eff, finite)
-
-    # Newton on the two-variable fixed point x = cycle(x), Jacobian by forward differences
-    # (three cycles per iteration), from a fully open lung; plain iteration where Newton misbehaves.
-    f_ee = np.ones(n)
-    c_chord = cmax.copy()
-    converged = np.zeros(n, dtype=bool)
-    for _ in range(max_iter):
-        g1, g2, extra = cycle(f_ee, c_chord)
-        r1, r2 = g1 - f_ee, g2 - c_chord
-        finite = extra[-1]
-        converged = finite & (np.abs(r1) < tol) & (np.abs(r2) < tol * 1e-3)
-        if np.all(converged | ~finite):
-            break
-        h1, h2 = 1e-7, 1e-7 * c_chord
-        a1, a2, _e = cycle(f_ee + h1, c_chord)
-        b1, b2, _e = cycle(f_ee, c_chord + h2)
-        j11, j21 = (a1 - g1) / h1 - 1.0, (a2 - g2) / h1
-        j12, j22 = (b1 - g1) / h2, (b2 - g2) / h2 - 1.0
-        det = j11 * j22 - j12 * j21
-        with np.errstate(invalid="ignore", divide="ignore"):
-            d1 = -(j22 * r1 - j12 * r2) / det
-            d2 = -(-j21 * r1 + j11 * r2) / det
-        good = np.isfinite(d1) & np.isfinite(d2)
-        f_new = np.where(good, f_ee + d1, g1)
-        c_new = np.where(good, c_chord + d2, g2)
-        # Keep within bounds; fall back to the plain step when Newton leaves them.
-        out_of_bounds = (f_new < 0) | (f_new > 1) | (c_new <= 0.1 * c_chord) | (c_new > 10 * c_chord)
-        f_ee = np.where(out_of_bounds, g1, f_new)
-        c_chord = np.where(out_of_bounds, g2, c_new)
-    aer, vt, trapped, peep_tot, pplat, f_eff, finite = extra
-    f_ee = g1
+    zeros = np.zeros(n)
+    case = np.stack([b["vt_ml"] / 1000.0 if volume_mode else zeros,
+                     zeros if volume_mode else b["inspiratory_pressure"],
+                     peep, ti, te, duty, r, cmax, infl, width, lr, b["pressure_history"], b["mu_open"],
+                     b["sd_open"], b["mu_close"], b["sd_close"], b["flow_limitation"]], axis=1)
+    loop = np.empty((n, 8))
+    settle(volume_mode, case, float(tol), int(max_iter), loop)
+    f_ee, aer, vt, trapped, peep_tot, pplat, f_eff = (loop[:, k] for k in range(7))
+    converged = loop[:, 7] == 1.0
 
     reasons = np.full(n, "", dtype=object)
     reasons[~converged] = "the mechanics did not settle within the iteration limit"
