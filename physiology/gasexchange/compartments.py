@@ -158,6 +158,17 @@ class LungParameters:
             x = np.array(values, dtype=float)
             if np.all(np.isfinite(x) & (x >= _LOW) & (x <= _HIGH)):
                 return {name: x[i:i + 1].copy() for i, name in enumerate(_FIELD_NAMES)}, ()
+        else:
+            # Fast path for a batch: every field broadcast into one (fields, B) array and checked at once
+            # (NaN fails both comparisons); on any failure, the field-by-field checks below word the message.
+            try:
+                columns = np.broadcast_arrays(*(np.asarray(v, dtype=float) for v in values))
+            except (TypeError, ValueError):
+                columns = None
+            if columns is not None and columns[0].ndim == 1:
+                x = np.stack(columns)
+                if np.all((x >= _LOW[:, None]) & (x <= _HIGH[:, None])):
+                    return dict(zip(_FIELD_NAMES, x)), columns[0].shape
         out = {}
         for f in fields(self):
             lo, hi, unit = DOMAIN[f.name]
