@@ -32,10 +32,11 @@ RESIDUAL_MAX = 1e-3
 _DLNX_DC = _BOHR * 0.2741 + 0.06  # -d ln(virtual PO2) / d ln PCO2 along the buffer line
 
 
-def content_terms(p, c, s_guess, hb, hct, t, offset, cap, sol, log_kelman_t, dpk_dp):
+def content_terms(p, c, s_guess, hb, hct, t, offset, cap, sol, log_kelman_t, dpk_dp, values_only=None):
     """O2 and CO2 contents [mL/dL] of blood at PO2 ``p``, PCO2 ``c`` [mmHg], with their derivatives.
 
-    Returns (O2, CO2, saturation, pH, dO2/dp, dO2/dc, dCO2/dp, dCO2/dc). Works on scalars (compiled,
+    Returns (O2, CO2, saturation, pH, dO2/dp, dO2/dc, dCO2/dp, dCO2/dc), or the first four alone when
+    ``values_only`` is given (the ``is None`` test lets numba drop that branch). Works on scalars (compiled,
     inside :func:`newton`) and on numpy arrays (``compartments._Blood.contents``): one set of
     equations for both. Capillary pH depends on saturation (oxylabile term) and saturation on pH
     (Bohr): this loop is closed by one Newton correction from ``s_guess`` (contraction ~0.03, so the
@@ -72,6 +73,8 @@ def content_terms(p, c, s_guess, hb, hct, t, offset, cap, sol, log_kelman_t, dpk
     cp = sol * c * (1.0 + e)
     mix = hct * ddd + (1.0 - hct)
     co2 = MMOL_TO_ML_DL * mix * cp
+    if values_only is not None:
+        return o2, co2, s, ph
     fx = _SEV_A * (3.0 * x2 + _SEV_B) * x / (den * den)
     inv = 1.0 / (1.0 + fx * _BOHR * oxy)
     ds_dp = fx * inv / p

@@ -287,9 +287,8 @@ class _Blood:
         equations the compiled Newton loop uses)."""
         from ._newton import content_terms  # numba comes with it: at the first solve, not with the engine
 
-        terms = content_terms(p, c, s_guess, self.hb, self.hct, self.t, self.offset, self.cap, self.sol,
-                              self.log_kelman_t, self.dpk_dp)
-        return terms if derivatives else terms[:4]
+        return content_terms(p, c, s_guess, self.hb, self.hct, self.t, self.offset, self.cap, self.sol,
+                             self.log_kelman_t, self.dpk_dp, values_only=None if derivatives else True)
 
     def saturation_guess(self, p, c):
         """Saturation from the buffer line at S = 0.75 (within ~1e-2 of the coupled value)."""
