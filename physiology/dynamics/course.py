@@ -221,10 +221,10 @@ def _fluxes(x, u, derivatives):
     ns = 1.0 - shunt
     q = ns * u["co"] * u["w"]
     blood = u["blood"]
-    # One content evaluation for the units and the two tissue compartments together.
-    both = blood.contents_from_scratch(np.concatenate([P, TP], axis=1), np.concatenate([C, TC], axis=1), True)
-    uo = tuple(z[:, :N] for z in both)
-    to = tuple(z[:, N:] for z in both)
+    # The units' contents (their derivatives only for the Jacobian) and the two tissue compartments'
+    # (always with derivatives: their mass matrix sets the tissue rates).
+    uo = blood.contents_from_scratch(P, C, derivatives)
+    to = blood.contents_from_scratch(TP, TC, True)
     o2, co2 = uo[0], uo[1]
     g = 10.0 * u["k"] * q / u["pdry"]
     d_o2 = o2 - cvo2
