@@ -13,3 +13,10 @@ from pathlib import Path
 
 # The reference solver and the benchmark harness live in tests/benchmarks.
 sys.path.insert(0, str(Path(__file__).resolve().parent / "benchmarks"))
+
+
+def pytest_collection_modifyitems(config, items):
+    """The long statistical checks (marked ``slow``) run first, so that with ``-n auto`` each worker starts
+    one at once and the short tests fill in around them (started last, a two-minute check left one core
+    idle at the end of the run). Otherwise the collected order is kept."""
+    items.sort(key=lambda item: item.get_closest_marker("slow") is None)
