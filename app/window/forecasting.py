@@ -11,6 +11,7 @@ import copy
 from html import escape
 
 import numpy as np
+from PySide6 import QtCore
 
 from ventcast.physiology.forecast import predict
 
@@ -143,16 +144,15 @@ class ForecastPipeline:
             self._show_steady(result)
             self.status.setText(f"Trial {result['active']}: steady state shown; computing the course...")
             self.steady_shown.emit(result)
-            self._request_course(result)
+            self._after_paint(lambda: self._request_course(result) if result is self.last_steady else None)
         elif request.kind == "course":
             self.last_forecast = result
             self.last_band = None
             self._show_forecast(result)
             self.forecast_shown.emit(result)
-            self._submit_draws()
+            self._after_paint(lambda: self._next_after_course(result))
             if self.fit_result is not None and self.fit_result.sampled:
                 self.status.setText(f"Trial {result['active']}: course shown; computing its likely range...")
-                self._request_band(result)
             else:
                 self.status.setText(f"Trial {result['active']}: forecast from the fitted estimate shown; computing "
                                     f"the likely ranges (posterior draws)...")
@@ -176,6 +176,25 @@ class ForecastPipeline:
             self._show_band(result)
             self.status.setText("forecast and likely range shown")
             self.band_shown.emit(result)
+
+    def _after_paint(self, fn):
+        """Run ``fn`` (the next stage's request) once the window has drawn the result it was just given: the
+        worker's next stage shares the interpreter with the paint, whose many Qt calls would each wait for
+        it (window_event_gap_ms). A zero-delay timer fires after the posted repaints. Synchronous windows
+        (tests, screenshots) go on at once."""
+        if self.runner.synchronous:
+            fn()
+        else:
+            QtCore.QTimer.singleShot(0, self, fn)
+
+    def _next_after_course(self, forecast):
+        """After a course is drawn: the posterior draws (once), then the likely range of that course, unless a
+        newer forecast has replaced it meanwhile."""
+        if forecast is not self.last_forecast:
+            return
+        self._submit_draws()
+        if self.fit_result is not None and self.fit_result.sampled:
+            self._request_band(forecast)
 
     def _submit_draws(self):
         """Start the posterior draws of the estimate shown (once), after its first forecast."""
