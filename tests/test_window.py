@@ -276,6 +276,33 @@ def test_spo2_view_in_percent_with_its_likely_range(window, qtbot):
     window.sao2_action.setChecked(False)
 
 
+def test_ph_chart_draws_its_likely_range(window, qtbot):
+    """The pH chart carries the band of the trial being edited like PaO2 and PaCO2 (the course band has
+    pH's range: each draw's pH from its PaCO2 at its base excess); its end agrees with the steady-state
+    likely range of pH (fit.likely_range, computed apart over the same draws) within 0.01."""
+    from ventcast.physiology.fitting.fit import likely_range
+
+    with qtbot.waitSignal(window.band_shown, timeout=WAIT_MS):
+        window.set_trial_value("peep_cmh2o", 14)
+    chart = window.charts["ph"]
+    assert chart.band.isVisible()
+    _x, low = chart.low.getData()
+    _x, high = chart.high.getData()
+    assert np.all(low <= high) and np.all((low > 6.8) & (high < 7.8))
+    ranges, _t, _ok = likely_range(window.fit_result, to_settings(window.state.trials["A"]))
+    assert low[-1] == pytest.approx(ranges["ph"][0], abs=0.01)
+    assert high[-1] == pytest.approx(ranges["ph"][1], abs=0.01)
+
+
+def test_a_synchronous_window_ends_with_the_likely_range_shown(qtbot, qapp):
+    """A synchronous window (screenshots, tests) runs each stage at once: its status line ends on the last
+    stage (the band), not on an earlier stage's "computing" message."""
+    w = win.MainWindow(load_demo("ards-moderate"), synchronous=True)
+    assert w.last_band is not None
+    assert w.status.text() == "forecast and likely range shown"
+    _close(w, qapp)
+
+
 def test_hover_reads_out_the_trial_curve(window, qtbot):
     chart = window.charts["paco2"]
     x, y = chart.trial.getData()

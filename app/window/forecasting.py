@@ -150,12 +150,12 @@ class ForecastPipeline:
             self.last_band = None
             self._show_forecast(result)
             self.forecast_shown.emit(result)
-            self._after_paint(lambda: self._next_after_course(result))
             if self.fit_result is not None and self.fit_result.sampled:
                 self.status.setText(f"Trial {result['active']}: course shown; computing its likely range...")
             else:
                 self.status.setText(f"Trial {result['active']}: forecast from the fitted estimate shown; computing "
                                     f"the likely ranges (posterior draws)...")
+            self._after_paint(lambda: self._next_after_course(result))
         elif request.kind == "export":
             self._stop_busy()
             self._finish_export(result)

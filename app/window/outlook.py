@@ -263,8 +263,9 @@ class OutlookPanel(QtWidgets.QGroupBox):
         lo, hi = band_of("paco2", conv)
         self.charts["paco2"].set(m, {t: conv(_array(v["paco2_mmhg"])) for t, v in courses.items()}, active,
                                  flat * conv(float(g.paco2)), lo, hi, recheck, alt=other("paco2_mmhg", conv))
+        lo, hi = band_of("ph", lambda a: a)
         self.charts["ph"].set(m, {t: _array(v["ph"]) for t, v in courses.items()}, active, flat * float(g.ph),
-                              recheck=recheck, alt=other("ph"))
+                              lo, hi, recheck=recheck, alt=other("ph"))
         self.charts["vd_vt"].set(m, {t: _array(v["vd_vt"]) for t, v in courses.items() if "vd_vt" in v}, active,
                                  flat * float(g.vd_vt), recheck=recheck, alt=other("vd_vt"))
         # Pressures follow a setting change at once (recruitment adds a small drift not drawn here): each
