@@ -348,7 +348,7 @@ def test_compiled_breath_helpers_equal_the_array_forms():
     # The pressure-control breath inside one cycle, against motion.pressure_control_volumes (lung fully open,
     # linear part of the curve: chord compliance = Cmax).
     for dpi, r, cmax, ti, te in ((15.0, 10.0, 0.05, 1.0, 2.0), (25.0, 25.0, 0.03, 0.8, 1.0), (8.0, 5.0, 0.08, 1.2, 3.8)):
-        g = k._cycle(1.0, cmax, False, 0.0, dpi, 0.0, ti, te, ti / (ti + te), r, cmax, 45.0, 5.0, 0.0, 0.0,
-                     20.0, 5.0, 5.0, 3.0, 0.0, False)
+        row = np.array([0.0, dpi, 0.0, ti, te, ti / (ti + te), r, cmax, 45.0, 5.0, 0.0, 0.0, 20.0, 5.0, 5.0, 3.0, 0.0])
+        g = k._cycle(1.0, cmax, False, row)
         vt, trapped = pressure_control_volumes(dpi, cmax, r * cmax, ti, te)
         assert g[3] == pytest.approx(float(vt), rel=1e-12) and g[4] == pytest.approx(float(trapped), rel=1e-12)

@@ -68,11 +68,14 @@ def waterfall_total_peep(peep, intrinsic_at_zeep, flow_limitation):
 
 
 @njit(cache=True, nogil=True)
-def _cycle(f_ee, c_chord, volume_mode, vt_set, dpi, peep, ti, te, duty, r, cmax, infl, width, lr, hist0,
-           mu_open, sd_open, mu_close, sd_close, flow_limitation, limited):
+def _cycle(f_ee, c_chord, volume_mode, row):
     """One pass of the loop (``cycle`` in :func:`.ventilator.breathe`): open fraction and chord compliance
     in, the same out, with the breath: (f_ee, c_chord, aerated, VT, trapped, total PEEP, Pplat,
-    effective open fraction)."""
+    effective open fraction). ``row``: one case's inputs (see :func:`settle`)."""
+    (vt_set, dpi, peep, ti, te, duty, r, cmax, infl, width, lr, hist0,
+     mu_open, sd_open, mu_close, sd_close, flow_limitation) = (
+        row[0], row[1], row[2], row[3], row[4], row[5], row[6], row[7], row[8], row[9], row[10], row[11],
+        row[12], row[13], row[14], row[15], row[16])
     aer = 1.0 - lr * (1.0 - f_ee)
     v_peep = aer * aerated_volume(peep, cmax, infl, width)
     if volume_mode:
@@ -89,7 +92,7 @@ def _cycle(f_ee, c_chord, volume_mode, vt_set, dpi, peep, ti, te, duty, r, cmax,
         v_ee = full * (1.0 - a) * b / (1.0 - a * b)
         vt = full * (1.0 - a) / (1.0 - a * b) - v_ee
         trapped = v_ee
-    if limited:
+    if flow_limitation > 0.0:
         v0 = aer * aerated_volume(0.0, cmax, infl, width)
         p_i0 = aerated_pressure((v0 + trapped) / aer, cmax, infl, width)
         peep_tot = waterfall_total_peep(peep, p_i0, flow_limitation)
@@ -115,17 +118,11 @@ def settle(volume_mode, case, tol, max_iter, out):
     mean and SD, flow limitation). ``out`` rows: end-expiratory open fraction, aerated share, VT [L],
     trapped volume [L], total PEEP, Pplat, effective open fraction, converged (1.0 or 0.0)."""
     for i in range(case.shape[0]):
-        (vt_set, dpi, peep, ti, te, duty, r, cmax, infl, width, lr, hist0,
-         mu_open, sd_open, mu_close, sd_close, flow_limitation) = (
-            case[i, 0], case[i, 1], case[i, 2], case[i, 3], case[i, 4], case[i, 5], case[i, 6], case[i, 7],
-            case[i, 8], case[i, 9], case[i, 10], case[i, 11], case[i, 12], case[i, 13], case[i, 14],
-            case[i, 15], case[i, 16])
-        limited = flow_limitation > 0.0
+        row = case[i]
         f_ee = 1.0
-        c_chord = cmax
+        c_chord = row[7]  # Cmax: a fully open lung
         converged = False
-        g = _cycle(f_ee, c_chord, volume_mode, vt_set, dpi, peep, ti, te, duty, r, cmax, infl, width, lr, hist0,
-                   mu_open, sd_open, mu_close, sd_close, flow_limitation, limited)
+        g = _cycle(f_ee, c_chord, volume_mode, row)
         for _ in range(max_iter):
             g1, g2 = g[0], g[1]
             r1, r2 = g1 - f_ee, g2 - c_chord
@@ -134,10 +131,8 @@ def settle(volume_mode, case, tol, max_iter, out):
             if converged or not finite:
                 break
             h1, h2 = 1e-7, 1e-7 * c_chord
-            a = _cycle(f_ee + h1, c_chord, volume_mode, vt_set, dpi, peep, ti, te, duty, r, cmax, infl, width, lr,
-                       hist0, mu_open, sd_open, mu_close, sd_close, flow_limitation, limited)
-            b = _cycle(f_ee, c_chord + h2, volume_mode, vt_set, dpi, peep, ti, te, duty, r, cmax, infl, width, lr,
-                       hist0, mu_open, sd_open, mu_close, sd_close, flow_limitation, limited)
+            a = _cycle(f_ee + h1, c_chord, volume_mode, row)
+            b = _cycle(f_ee, c_chord + h2, volume_mode, row)
             j11, j21 = (a[0] - g1) / h1 - 1.0, (a[1] - g2) / h1
             j12, j22 = (b[0] - g1) / h2, (b[1] - g2) / h2 - 1.0
             det = j11 * j22 - j12 * j21
@@ -152,13 +147,8 @@ def settle(volume_mode, case, tol, max_iter, out):
                 f_ee, c_chord = g1, g2
             else:
                 f_ee, c_chord = f_new, c_new
-            g = _cycle(f_ee, c_chord, volume_mode, vt_set, dpi, peep, ti, te, duty, r, cmax, infl, width, lr,
-                       hist0, mu_open, sd_open, mu_close, sd_close, flow_limitation, limited)
+            g = _cycle(f_ee, c_chord, volume_mode, row)
         out[i, 0] = g[0]
-        out[i, 1] = g[2]
-        out[i, 2] = g[3]
-        out[i, 3] = g[4]
-        out[i, 4] = g[5]
-        out[i, 5] = g[6]
-        out[i, 6] = g[7]
+        for k in range(2, 8):
+            out[i, k - 1] = g[k]
         out[i, 7] = 1.0 if converged else 0.0
