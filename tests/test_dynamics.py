@@ -239,3 +239,38 @@ def test_bad_course_arguments(kw, needle):
 def test_change_outside_the_course_is_refused():
     with pytest.raises(ValueError, match="outside the course"):
         simulate(PATIENT, pc(), Change(90.0, settings=pc(fio2=0.5)), minutes=60)
+
+
+def test_block_solve_of_the_newton_matrix_equals_a_general_sparse_lu():
+    """Independent calculation: the stiff solver's Newton matrix I - cJ solved by its blocks (6 x 6 body
+    stores and transit per case, then 2 x 2 per unit) gives SuperLU's answer, for breathing and apnoeic
+    segments (whose Jacobian has exact zeros); a matrix with an entry outside those blocks is handed to
+    SuperLU rather than solved wrongly."""
+    from scipy import sparse
+    from scipy.sparse.linalg import spsolve
+
+    from ventcast.physiology.dynamics import course as K
+    from ventcast.physiology.forecast import predict
+
+    rng = np.random.default_rng(3)
+    b = 7
+    draws = PATIENT.replace(shunt_fixed=rng.uniform(0.03, 0.2, b), log_sd=rng.uniform(0.4, 1.0, b),
+                            recruitable=rng.uniform(0.0, 0.2, b))
+    target = predict(draws, pc(fio2=0.6, peep=10))
+    for apnoea in (False, True):
+        u = K._segment(target, draws, K.BodyStores(), draws.pbw_kg, apnoea)
+        x = K._steady_state_vector(predict(draws, pc()), u)
+        J = K._jacobian(x, u, K._jacobian_structure(b))
+        blocks = K._BlockLU(b)
+        for c in (0.01, 0.3, 2.0):
+            A = sparse.identity(b * K.S, format="csc") - c * J
+            r = rng.standard_normal(b * K.S)
+            lu = blocks.factor(A)
+            assert lu[0] == "blocks"
+            np.testing.assert_allclose(blocks.solve(lu, r), spsolve(A, r), rtol=1e-9, atol=1e-12)
+    outside = A.tolil()
+    outside[0, K.I_TP] = 0.5  # unit 0's PO2 row leaning on a tissue state: not in the block structure
+    outside = outside.tocsc()
+    lu = blocks.factor(outside)
+    assert lu[0] == "superlu"
+    np.testing.assert_allclose(blocks.solve(lu, r), spsolve(outside, r), rtol=1e-9, atol=1e-12)

@@ -58,7 +58,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import sparse
-from scipy.integrate import solve_ivp
+from scipy.sparse.linalg import splu
+from scipy.integrate import BDF, solve_ivp
 from scipy.special import erfinv
 
 from ..bloodgas.acidbase import _ph_invivo
@@ -374,6 +375,106 @@ def _jacobian(x, u, structure):
     return sparse.csc_matrix((data, (rows, cols)), shape=(b * S, b * S))
 
 
+class _BlockLU:
+    """Exact solves of the stiff solver's Newton matrix ``A = I - c J`` by its block structure.
+
+    Within a case the Jacobian (:func:`_jacobian_structure`) couples each unit's PO2 and PCO2 only to
+    each other and to the two transit contents, and the six body-store and transit states only to each
+    other; the open fraction and the exhaled CO2 stand alone. So ``A y = r`` is solved exactly by a
+    6 x 6 solve per case (tissue and transit), then a 2 x 2 solve per unit with the transit part moved
+    to the right-hand side: O(B N) work, where a general sparse LU (SuperLU) spent most of a batch
+    course's time. Any entry of ``A`` outside these blocks (a Jacobian of another shape) sends the
+    factorisation to SuperLU, so the answer never rests on the assumption.
+    """
+
+    GLOBAL = np.arange(I_TP, I_CVCO2 + 1)  # TP fast, TP slow, TC fast, TC slow, transit O2, transit CO2
+
+    def __init__(self, b):
+        self.b = b
+        base = (np.arange(b) * S)[:, None]
+        units = np.arange(N)[None, :]
+        p_rows, c_rows = base + units, base + N + units
+        pos = [(p_rows, p_rows), (p_rows, c_rows), (c_rows, p_rows), (c_rows, c_rows),
+               (p_rows, base + I_CVO2), (p_rows, base + I_CVCO2), (c_rows, base + I_CVO2), (c_rows, base + I_CVCO2)]
+        g = base[:, :, None] + self.GLOBAL[None, :, None] + 0 * self.GLOBAL[None, None, :]
+        pos.append((g, np.swapaxes(g, 1, 2)))  # (b, 6, 6): row i, column j
+        pos += [(base + I_OPEN, base + I_OPEN), (base + I_EXH, base + I_EXH)]
+        self.shapes = [np.broadcast_shapes(r.shape, c.shape) for r, c in pos]
+        self.rows = np.concatenate([np.broadcast_to(r, sh).ravel() for (r, _c), sh in zip(pos, self.shapes)])
+        self.cols = np.concatenate([np.broadcast_to(c, sh).ravel() for (_r, c), sh in zip(pos, self.shapes)])
+        self.pattern = None
+
+    def _gather(self, A):
+        """The block entries of CSC ``A`` (zero where ``A`` has none), or None if ``A`` has others."""
+        A = A.tocsc()
+        if not A.has_sorted_indices:
+            A.sort_indices()
+        n = A.shape[0]
+        if (self.pattern is None or not np.array_equal(self.pattern[0], A.indptr)
+                or not np.array_equal(self.pattern[1], A.indices)):
+            keys = np.repeat(np.arange(n, dtype=np.int64), np.diff(A.indptr)) * n + A.indices
+            want = self.cols.astype(np.int64) * n + self.rows
+            at = np.minimum(np.searchsorted(keys, want), max(keys.size - 1, 0))
+            found = keys[at] == want if keys.size else np.zeros(want.size, dtype=bool)
+            complete = int(np.count_nonzero(found)) == A.nnz
+            self.pattern = (A.indptr.copy(), A.indices.copy(), at, found, complete)
+        _ip, _ix, at, found, complete = self.pattern
+        if not complete:
+            return None
+        return np.where(found, A.data[at], 0.0)
+
+    def factor(self, A):
+        vals = self._gather(A)
+        if vals is None:
+            return ("superlu", splu(sparse.csc_matrix(A)))
+        parts, start = [], 0
+        for shape in self.shapes:
+            size = int(np.prod(shape))
+            parts.append(vals[start:start + size].reshape(shape))
+            start += size
+        pp, pc, cp, cc, p_o2, p_co2, c_o2, c_co2, g, a_open, a_exh = parts
+        det = pp * cc - pc * cp
+        if not (np.all(np.isfinite(det)) and np.all(det != 0) and np.all(a_open != 0) and np.all(a_exh != 0)):
+            raise np.linalg.LinAlgError("the stiff solver's Newton matrix is singular in a lung unit")
+        return ("blocks", (pp / det, pc / det, cp / det, cc / det, p_o2, p_co2, c_o2, c_co2, np.linalg.inv(g),
+                           a_open, a_exh))
+
+    def solve(self, lu, r):
+        kind, f = lu
+        if kind == "superlu":
+            return f.solve(r)
+        ipp, ipc, icp, icc, p_o2, p_co2, c_o2, c_co2, ginv, a_open, a_exh = f
+        R = r.reshape(self.b, S)
+        y = np.empty_like(R)
+        yg = np.einsum("kij,kj->ki", ginv, R[:, I_TP:I_CVCO2 + 1])
+        y[:, I_TP:I_CVCO2 + 1] = yg
+        y_o2, y_co2 = yg[:, 4:5], yg[:, 5:6]
+        rp = R[:, :N] - p_o2 * y_o2 - p_co2 * y_co2
+        rc = R[:, N:2 * N] - c_o2 * y_o2 - c_co2 * y_co2
+        y[:, :N] = icc * rp - ipc * rc
+        y[:, N:2 * N] = -icp * rp + ipp * rc
+        y[:, I_OPEN:I_OPEN + 1] = R[:, I_OPEN:I_OPEN + 1] / a_open
+        y[:, I_EXH:I_EXH + 1] = R[:, I_EXH:I_EXH + 1] / a_exh
+        return y.ravel()
+
+
+def _block_bdf(b):
+    """scipy's BDF with its sparse LU replaced by :class:`_BlockLU` (same steps, same Newton iteration)."""
+    blocks = _BlockLU(b)
+
+    class BlockBDF(BDF):
+        def __init__(self, *args, **kwargs):
+            super().__init__(*args, **kwargs)
+
+            def lu(A):
+                self.nlu += 1
+                return blocks.factor(A)
+
+            self.lu, self.solve_lu = lu, blocks.solve
+
+    return BlockBDF
+
+
 # --- initial state and outputs ---------------------------------------------------------------------
 
 def _steady_state_vector(pred: Prediction, u: dict) -> np.ndarray:
@@ -486,7 +587,8 @@ def simulate(patient: PatientModel, settings_now: Settings, changes=(), minutes:
     weight_kg : float or array
         Body weight for the stores [kg]; defaults to the patient's PBW.
     method : str
-        ``solve_ivp`` method; a stiff-capable one (BDF, Radau, LSODA) is expected.
+        ``solve_ivp`` method; a stiff-capable one (BDF, Radau, LSODA) is expected. "BDF" (the default)
+        solves its Newton systems by the Jacobian's blocks (:class:`_BlockLU`).
     **solver_options
         Passed straight to ``scipy.integrate.solve_ivp`` (rtol, atol, max_step, ...).
     """
@@ -551,7 +653,8 @@ def simulate(patient: PatientModel, settings_now: Settings, changes=(), minutes:
         if t_eval.size == 0 or t_eval[0] > t0:
             t_eval = np.concatenate([[t0], t_eval])
         try:
-            sol = solve_ivp(lambda t, y, u=u: rhs(t, y, u), (t0, t1), x, method=method, t_eval=t_eval,
+            sol = solve_ivp(lambda t, y, u=u: rhs(t, y, u), (t0, t1), x, t_eval=t_eval,
+                            method=_block_bdf(b) if method == "BDF" else method,
                             jac=(lambda t, y, u=u: _jacobian(y, u, structure)) if method in ("BDF", "Radau") else None,
                             **opts)
         except (RuntimeError, np.linalg.LinAlgError) as exc:  # e.g. a singular Newton matrix in the stiff solver
