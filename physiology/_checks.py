@@ -8,6 +8,8 @@ to the user unchanged.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 __all__ = ["as_array", "check_range", "check_fio2", "check_fraction", "check_positive"]
@@ -36,6 +38,9 @@ def check_range(name: str, value, low: float, high: float, unit: str = "",
     The message reads, for example, ``PEEP = 35 cmH2O is outside the accepted
     range 0 to 30 cmH2O``.
     """
+    if type(value) is float and math.isfinite(value) and low <= value <= high and (low_inclusive or value > low) and (
+            high_inclusive or value < high):
+        return np.asarray(value)  # a plain finite number inside the range
     if type(value) is np.ndarray and value.dtype == np.float64 and value.size and np.isfinite(low) and np.isfinite(high):
         # Fast path for float arrays (the batched engine checks the same arrays many times): NaN fails both
         # comparisons and infinities fail the finite bounds, so anything not clearly inside falls through

@@ -307,3 +307,26 @@ def test_a_very_short_course_warns_nothing(recwarn):
         warnings.simplefilter("error")
         course = simulate(PatientModel(), s, [Change(0.0, settings=replace(s, peep=8.0))], minutes=0.01)
     assert bool(np.all(course.success)) and np.isnan(course.co2_balance_error)
+
+
+def test_the_engine_range_check_fast_paths_agree_with_its_general_path():
+    """check_range takes shortcuts for a plain float and a float array inside the range; NaN, infinities,
+    values on an open bound and values outside must still be refused with the general path's words."""
+    import numpy as np
+
+    from ventcast.physiology._checks import check_range
+
+    def outcome(value, low, high, li, hi):
+        try:
+            return float(np.max(check_range("PEEP", value, low, high, "cmH2O", li, hi)))
+        except ValueError as exc:
+            return str(exc)
+
+    values = [0.0, 5.0, 30.0, 30.000001, -1e-9, float("nan"), float("inf"), -float("inf")]
+    for low, high in ((0.0, 30.0), (0.0, float("inf"))):
+        for li in (True, False):
+            for hi in (True, False):
+                for v in values:
+                    general = outcome([v], low, high, li, hi)  # a list never takes a shortcut
+                    assert outcome(v, low, high, li, hi) == general
+                    assert outcome(np.array([5.0, v]), low, high, li, hi) == outcome([5.0, v], low, high, li, hi)

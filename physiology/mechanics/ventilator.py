@@ -255,7 +255,8 @@ def breathe(settings: Settings, mechanics: Mechanics, pbw_kg=None, max_iter: int
     if len(shape) > 1:
         raise ValueError(f"settings and mechanics must be scalars or 1-D arrays, got shape {shape}")
     n = shape[0] if shape else 1
-    b = {k: np.broadcast_to(v, (n,)).astype(float) for k, v in {**s, **m}.items()}
+    b = {k: (v if type(v) is np.ndarray and v.shape == (n,) and v.dtype == np.float64 else
+             np.broadcast_to(v, (n,)).astype(float)) for k, v in {**s, **m}.items()}  # read only below
 
     ttot = 60.0 / b["rr"]
     ti, te = b["ti"], ttot - b["ti"]
