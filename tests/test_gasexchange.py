@@ -229,6 +229,30 @@ def test_chunks_and_continued_states_equal_one_pass():
     assert np.max(np.abs(redo["pao2"][done] - alone["pao2"][done])) < 1e-6
 
 
+def test_newton_rows_split_across_two_threads_give_the_same_numbers():
+    """The batch's Newton loop split between two threads (rows are independent) gives every case the
+    numbers of one pass, bit for bit, also while two callers share the helper thread at once."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    from ventcast.physiology.gasexchange import compartments as c
+
+    a, _ = LungParameters(**_random_lungs(300, 21)).arrays()
+    keep = c.PARALLEL_MIN_ROWS
+    try:
+        c.PARALLEL_MIN_ROWS = 10 ** 9
+        serial = c._solve_arrays(a, 1e-4, 80, None)
+        c.PARALLEL_MIN_ROWS = 2
+        with ThreadPoolExecutor(max_workers=2) as pool:
+            split = list(pool.map(lambda _i: c._solve_arrays(a, 1e-4, 80, None), range(4)))
+    finally:
+        c.PARALLEL_MIN_ROWS = keep
+    assert serial["ok"].sum() > 200  # some random lungs have no steady state: their failures must match too
+    for other in split:
+        assert np.array_equal(other["ok"], serial["ok"])
+        for q in ("pao2", "paco2", "ph", "cvo2", "unit_po2", "unit_pco2"):
+            assert np.array_equal(other[q], serial[q], equal_nan=True), q
+
+
 def test_sampler_tolerance_moves_the_gases_by_under_one_percent_of_their_sd():
     """The fit's sampler solves to SAMPLER_TOL: over 4,000 random cases of the domain its blood gases
     differ from the default tolerance's by under 1 % of the smallest measurement SD of each

@@ -47,6 +47,9 @@ References
 
 from __future__ import annotations
 
+import os
+import threading
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, fields
 
 import numpy as np
@@ -466,10 +469,8 @@ def _solve_arrays(a: dict, tol: float, max_iter: int, start: dict | None = None,
     p, c = np.ascontiguousarray(p, dtype=float), np.ascontiguousarray(c, dtype=float)
     cvo2, cvco2 = np.array(cvo2, dtype=float), np.array(cvco2, dtype=float)
     s_lag = np.ascontiguousarray(s_lag, dtype=float)
-    from ._newton import newton  # numba: imported at the first solve, not with the engine (DEVELOPERS.md)
-
-    newton(np.ascontiguousarray(vq), np.ascontiguousarray(w), case, chem, p, c, cvo2, cvco2, s_lag,
-           float(tol), int(max_iter), o2, co2, s, dpu, dcu, deriv, bderiv, flags)
+    _newton_rows(np.ascontiguousarray(vq), np.ascontiguousarray(w), case, chem, p, c, cvo2, cvco2, s_lag,
+                 float(tol), int(max_iter), o2, co2, s, dpu, dcu, deriv, bderiv, flags)
     dv1, dv2 = flags[:, 0], flags[:, 1]
     it = int(flags[:, 3].max()) if n else 0
     converged, collapsed = flags[:, 4] == 1.0, flags[:, 6] == 1.0
@@ -539,6 +540,41 @@ def _solve_arrays(a: dict, tol: float, max_iter: int, start: dict | None = None,
 
 
 _NOT_CONVERGED = "did not converge within the iteration limit"
+
+#: Rows from which a batch's Newton loop is split between this thread and one helper thread (when the
+#: process may run on two or more cores). The compiled loop releases the interpreter lock and its rows
+#: are independent, so the halves run at once and give the same numbers; below this size the hand-over
+#: (~0.1 ms) would cost more than it saves.
+PARALLEL_MIN_ROWS = 64
+_helper = []
+_helper_lock = threading.Lock()
+
+
+def _cores() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):  # not on Linux
+        return os.cpu_count() or 1
+
+
+def _newton_rows(vq, w, case, chem, p, c, cvo2, cvco2, s_lag, tol, max_iter,
+                 o2, co2, s, dpu, dcu, deriv, bderiv, flags):
+    """:func:`._newton.newton` on every row; a large batch's second half on the helper thread."""
+    from ._newton import newton  # numba: imported at the first solve, not with the engine (DEVELOPERS.md)
+
+    rows = (vq, w, case, chem, p, c, cvo2, cvco2, s_lag)
+    outs = (o2, co2, s, dpu, dcu, deriv, bderiv, flags)
+    n = vq.shape[0]
+    if n < PARALLEL_MIN_ROWS or _cores() < 2:
+        newton(*rows, tol, max_iter, *outs)
+        return
+    with _helper_lock:
+        if not _helper:
+            _helper.append(ThreadPoolExecutor(max_workers=1, thread_name_prefix="ventcast-lung"))
+    h = n // 2
+    second = _helper[0].submit(newton, *(x[h:] for x in rows), tol, max_iter, *(x[h:] for x in outs))
+    newton(*(x[:h] for x in rows), tol, max_iter, *(x[:h] for x in outs))
+    second.result()
 def _concatenate(parts: list) -> dict:
     """Join chunk results; a chunk without a high-V/Q mode has fewer unit columns, pad it with zeros."""
     width = max(pt["unit_vq"].shape[1] for pt in parts)
