@@ -573,8 +573,14 @@ def _newton_rows(vq, w, case, chem, p, c, cvo2, cvco2, s_lag, tol, max_iter,
             _helper.append(ThreadPoolExecutor(max_workers=1, thread_name_prefix="ventcast-lung"))
     h = n // 2
     second = _helper[0].submit(newton, *(x[h:] for x in rows), tol, max_iter, *(x[h:] for x in outs))
-    newton(*(x[:h] for x in rows), tol, max_iter, *(x[:h] for x in outs))
+    try:
+        newton(*(x[:h] for x in rows), tol, max_iter, *(x[:h] for x in outs))
+    except BaseException:
+        second.exception()  # the helper still writes into these arrays: let it finish first
+        raise
     second.result()
+
+
 def _concatenate(parts: list) -> dict:
     """Join chunk results; a chunk without a high-V/Q mode has fewer unit columns, pad it with zeros."""
     width = max(pt["unit_vq"].shape[1] for pt in parts)
