@@ -18,7 +18,7 @@ from . import CAUTION
 from .bedside import bedside_indices
 from .casefile import (DEMO_NAMES, SETTING_RANGES, SPONTANEOUS_MODES, CaseError, check_output_file, check_output_files,
                        demo_text, load, load_demo, read_text, write_atomic)
-from .engine import MARGIN_LABELS, RECHECK_NOTE, ModelError, ie_text
+from .engine import MARGIN_LABELS, ModelError, ie_text, recheck_sentence
 from .precision import rounded, sao2_text
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_MODEL = 0, 1, 2, 3
@@ -151,8 +151,7 @@ def _cmd_predict(args) -> int:
     if out["settings"] == out.get("current_settings"):
         print("\nThe trial equals the current settings: no change is expected.")
     elif out.get("recheck_after_min") is not None:
-        print(f"\nRe-check a blood gas after about {max(out['recheck_after_min'], 1):.0f} min at the earliest "
-              f"({RECHECK_NOTE}).")
+        print("\n" + recheck_sentence(out["recheck_after_min"]))
     if out["next_best_measurement"]:
         nb = out["next_best_measurement"][0]
         print(f"Next best measurement: {nb['probe']} - {nb['why']}.")

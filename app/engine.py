@@ -29,7 +29,7 @@ from ventcast.physiology.mechanics.spontaneous import (DPL_DYN_EXCESSIVE, NEURAL
                                                        volume_stand_in)
 from ventcast.physiology.mechanics.ventilator import BEYOND_CAPACITY, NO_ALVEOLAR_VENTILATION, Settings
 from ventcast.physiology.planning.search import Goals, margins, search
-from ventcast.physiology.planning.stepdown import step_down
+from ventcast.physiology.planning.stepdown import HOLD_FLOOR_MIN, step_down
 from ventcast.physiology.planning.support import PH_MIN, RATE_MAX
 from ventcast.physiology.protocols import LIMITS
 
@@ -513,6 +513,28 @@ RECHECK_NOTE = ("the model's 90 % time of the PaO2 and PaCO2 change; patients of
                 "and a gas 10-30 min after a change is common practice")
 
 
+def recheck_advised(model_min):
+    """The re-check time to advise [min]: the model's 90 % time, never below the step-down plan's floor
+    (``HOLD_FLOOR_MIN``, 10 min: common practice is a gas 10-30 min after a change and Cakar 1998 found
+    10 min adequate). Patients' oxygen settles more slowly than the model's after an FiO2 decrease
+    (Cakar 2001): a gas drawn at the model's minute or two would still show most of the fall to come."""
+    return None if model_min is None else max(float(model_min), HOLD_FLOOR_MIN)
+
+
+def recheck_sentence(model_min) -> str:
+    """The re-check advice in words, for the command line, the window and the report ('' without a time)."""
+    if model_min is None:
+        return ""
+    model = max(float(model_min), 1.0)
+    advised = recheck_advised(model_min)
+    if advised > model_min:
+        return (f"Re-check a blood gas after about {advised:.0f} min at the earliest: the model's PaO2 and PaCO2 "
+                f"reach 90 % of their change within about {model:.0f} min, but patients' oxygen often takes longer "
+                f"(Cakar 2001); a gas 10-30 min after a change is common practice, and Cakar 1998 found 10 min "
+                f"adequate after FiO2 changes.")
+    return f"Re-check a blood gas after about {advised:.0f} min at the earliest ({RECHECK_NOTE})."
+
+
 def capacity_refusal(model, trial: Settings, pred) -> str:
     """Why a trial the fitted lung cannot take is refused (the input's fault, not the model's), or ''.
 
@@ -868,6 +890,7 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
                               "sao2_high": _listed(hi_sa, 4), "ph_low": _listed(lo_ph, 4), "ph_high": _listed(hi_ph, 4)})
         recheck = float(course.recheck_after_min)
         out["recheck_after_min"] = None if not math.isfinite(recheck) else round(max(recheck, 0.0), 1)
+        out["recheck_advised_min"] = recheck_advised(out["recheck_after_min"])
     if with_next:
         _check(stop)
         try:

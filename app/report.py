@@ -18,7 +18,7 @@ from pathlib import Path
 
 from . import CAUTION, version
 from .casefile import write_atomic
-from .engine import PARAMETER_LABELS, RECHECK_NOTE, settings_text
+from .engine import PARAMETER_LABELS, recheck_sentence, settings_text
 from .precision import sao2_text
 
 #: Course columns of the CSV export: (key in the forecast's course, header with its unit).
@@ -222,8 +222,7 @@ def report_html(case: dict, forecasts: dict, plan: dict | None = None, generated
     for t, f in forecasts.items():
         r = f.get("recheck_after_min")
         if r is not None:
-            h.append(f"<p>Trial {escape(t)}: re-check a blood gas after about {max(r, 1):.0f} min at the earliest "
-                     f"({escape(RECHECK_NOTE)}).</p>")
+            h.append(f"<p>Trial {escape(t)}: {escape(recheck_sentence(r))}</p>")
     h.append("<h2>Outlook (next 60 min; band: likely range 90 %)</h2>")
     for key in ("pao2_mmhg", "paco2_mmhg", "ph"):
         h.append(f"<p><img src='chart://{key}' width='640'></p>")

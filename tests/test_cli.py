@@ -272,6 +272,26 @@ def test_recheck_time_is_set_by_pao2_not_by_an_unmeasurable_paco2_drift(capsys):
     assert abs(paco2[-1] - paco2[0]) < 1.5 + 0.02 * paco2[0]  # one measurement SD (physiology.measurement)
 
 
+def test_recheck_advice_never_falls_below_the_step_down_floor(capsys):
+    """After an FiO2 decrease the model's PaO2 settles within a minute or two, faster than patients'
+    (Cakar 2001: k 0.69 +/- 0.42 /min after a fall, about half the change left after 1 min): the advice
+    is the step-down plan's floor, 10 min (a gas 10-30 min after a change is common practice; Cakar 1998
+    found 10 min adequate), and says the model's own time beside it. A slower model course (a PEEP step
+    with recruitment and CO2 stores) is advised as it is."""
+    from ventcast.physiology.planning.stepdown import HOLD_FLOOR_MIN
+
+    assert main(["predict", "--demo", "postop-wean", "--set", "fio2=0.35", "--format", "json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["recheck_after_min"] < HOLD_FLOOR_MIN and out["recheck_advised_min"] == HOLD_FLOOR_MIN
+    assert main(["predict", "--demo", "postop-wean", "--set", "fio2=0.35"]) == 0
+    text = capsys.readouterr().out
+    assert f"after about {HOLD_FLOOR_MIN:.0f} min at the earliest" in text
+    assert f"within about {max(out['recheck_after_min'], 1):.0f} min" in text and "Cakar 2001" in text
+    assert main(["predict", "--demo", "ards-moderate", "--set", "peep_cmh2o=14", "--format", "json"]) == 0
+    slow = json.loads(capsys.readouterr().out)
+    assert slow["recheck_after_min"] > HOLD_FLOOR_MIN and slow["recheck_advised_min"] == slow["recheck_after_min"]
+
+
 @pytest.mark.parametrize("sets", [["vt_ml=700"], ["peep_cmh2o=24"]])
 def test_a_trial_beyond_the_lungs_capacity_is_refused_with_the_plateau_it_would_need(capsys, sets):
     """VT 700 mL or PEEP 24 in the ARDS demo: the fitted lung cannot take the volume. That is the input's

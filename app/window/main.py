@@ -17,8 +17,8 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from .. import CAUTION
-from ..engine import (RECHECK_NOTE, case_goals, effort_limit_lines, is_spontaneous, now_block, plan_case, steady_block,
-                      wean_case)
+from ..engine import (case_goals, effort_limit_lines, is_spontaneous, now_block, plan_case, recheck_sentence,
+                      steady_block, wean_case)
 from ..worker import EngineRunner
 from .bedside import BedsidePanel
 from .common import (APP_NAME, AUTOSAVE_MS, DEBOUNCE_MS, ORG_NAME, TRIALS, TrialState, file_stamp, gas_text,
@@ -281,8 +281,7 @@ class MainWindow(BedsideLoop, ForecastPipeline, CaseFiles, TrialEditing, QtWidge
         r = out.get("recheck_after_min")
         unchanged = out["settings"] == out["current_settings"]
         text = ("The trial equals the current settings: no change is expected." if unchanged else
-                "" if r is None else f"Re-check a blood gas after about {max(r, 1):.0f} min at the earliest "
-                                     f"({RECHECK_NOTE}).")
+                recheck_sentence(r))
         # A forecast outside its own likely range is said where the re-check advice is read.
         outside = [a["message"] for a in out.get("alerts", []) if a["code"] == "estimate_outside_range"]
         lines = [text] + [f"\u26a0 {m[0].upper()}{m[1:]}." for m in outside]

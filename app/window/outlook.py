@@ -243,7 +243,7 @@ class OutlookPanel(QtWidgets.QGroupBox):
             return scale(_array(lr[f"{key}_low"])), scale(_array(lr[f"{key}_high"]))
 
         g, b = now.gas, now.breathing
-        recheck = None if out["settings"] == out["current_settings"] else out.get("recheck_after_min")
+        recheck = None if out["settings"] == out["current_settings"] else out.get("recheck_advised_min")
         if oxygen_view == "sao2":
             def pct(a):
                 return 100.0 * a
