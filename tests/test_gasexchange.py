@@ -367,3 +367,19 @@ def test_compiled_contents_equal_the_numpy_ones():
     for j, name in enumerate(("O2", "CO2", "S", "pH", "dO2/dp", "dO2/dc", "dCO2/dp", "dCO2/dc")):
         want = arrays[j][::7]
         assert np.allclose(compiled[:, j], want, rtol=1e-12, atol=1e-14), name
+
+
+def test_compiled_newton_loop_flags_a_division_by_zero_as_a_failure():
+    """The lung's Newton loop replaced array code in which a division by zero became inf and failed the
+    case through its finiteness check; compiled, it must flag the case (non-finite numbers) rather than
+    raise. A unit with zero V/Q divides by zero in its O2 balance."""
+    from ventcast.physiology.gasexchange._newton import newton
+
+    vq, w = np.array([[0.0, 1.0, 2.0]]), np.array([[0.3, 0.4, 0.3]])
+    case = np.array([[8.5, 713.0, 0.5, 0.9, 0.1, 5.0, 4.0, 0.3]])
+    blood = np.array([[12.0, 0.36, 37.0, 0.0, 16.0, 0.0307, 0.0, 0.042]])
+    flags = np.zeros((1, 7))
+    newton(vq, w, case, blood, np.full((1, 5), 60.0), np.full((1, 5), 45.0), np.array([15.0]), np.array([50.0]),
+           np.full((1, 5), 0.9), 1e-4, 80, np.empty((1, 5)), np.empty((1, 5)), np.empty((1, 5)), np.empty((1, 3)),
+           np.empty((1, 3)), np.empty((1, 4, 3)), np.empty((1, 4, 2)), flags)
+    assert flags[0, 5] == 1.0 and flags[0, 4] == 0.0  # non-finite, not converged

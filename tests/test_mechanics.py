@@ -352,3 +352,21 @@ def test_compiled_breath_helpers_equal_the_array_forms():
         g = k._cycle(1.0, cmax, False, row)
         vt, trapped = pressure_control_volumes(dpi, cmax, r * cmax, ti, te)
         assert g[3] == pytest.approx(float(vt), rel=1e-12) and g[4] == pytest.approx(float(trapped), rel=1e-12)
+
+
+def test_compiled_breathing_loop_divides_as_numpy_does():
+    """The breathing loop replaced array code that let a division by zero become inf and caught it with
+    its finiteness checks; compiled, it must do the same, never raise. A zero SD of the opening pressures
+    (a step function, ndtr of +/-inf) gives the answer of a vanishingly small SD."""
+    from ventcast.physiology.mechanics._breath import settle
+
+    def run(sd_open):
+        row = np.array([[0.45, 0.0, 8.0, 1.0, 2.0, 1 / 3, 12.0, 0.05, 26.0, 4.0, 0.2, 0.0, 20.0, sd_open, 10.0, 5.0,
+                         0.0]])
+        out = np.empty((1, 8))
+        settle(True, row, 1e-10, 60, out)
+        return out[0]
+
+    step, narrow = run(0.0), run(1e-12)
+    assert step[7] == 1.0  # converged
+    np.testing.assert_allclose(step, narrow, rtol=1e-9, atol=1e-12)

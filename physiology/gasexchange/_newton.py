@@ -94,10 +94,10 @@ def content_terms(p, c, s_guess, hb, hct, t, offset, cap, sol, log_kelman_t, dpk
     return o2, co2, s, ph, do2_dp, do2_dc, dco2_dp, dco2_dc
 
 
-_contents = njit(cache=True, nogil=True, inline="always")(content_terms)
+_contents = njit(cache=True, nogil=True, inline="always", error_model="numpy")(content_terms)
 
 
-@njit(cache=True, nogil=True, inline="always")
+@njit(cache=True, nogil=True, inline="always", error_model="numpy")
 def _clip(x, lo, hi):
     """``np.clip``'s order (the upper bound wins), NaN kept."""
     if x < lo:
@@ -107,7 +107,7 @@ def _clip(x, lo, hi):
     return x
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, error_model="numpy")
 def newton(vq, w, case, blood, p, c, cvo2, cvco2, s_lag, tol, max_iter,
            o2, co2, s, dpu, dcu, deriv, bderiv, out):
     """Newton iterations for every case (rows), each until it settles or fails.

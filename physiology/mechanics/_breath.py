@@ -27,7 +27,7 @@ from .ventilator import WATERFALL_CORNER_CMH2O, WATERFALL_CRITICAL_SHARE
 _SQRT_HALF = math.sqrt(0.5)
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, error_model="numpy")
 def aerated_volume(p, c_max, inflection, width):
     """:func:`.recruitment.aerated_volume` for one case [L]."""
     if p <= inflection:
@@ -35,7 +35,7 @@ def aerated_volume(p, c_max, inflection, width):
     return c_max * inflection + 4.0 * width * c_max * (1.0 / (1.0 + math.exp(-(p - inflection) / width)) - 0.5)
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, error_model="numpy")
 def aerated_pressure(v, c_max, inflection, width):
     """:func:`.recruitment.aerated_pressure` for one case [cmH2O]; ``inf`` beyond the lung's capacity."""
     knee = c_max * inflection
@@ -47,13 +47,13 @@ def aerated_pressure(v, c_max, inflection, width):
     return inflection - width * math.log(1.0 / frac - 1.0)
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, error_model="numpy")
 def ndtr(x):
     """Standard normal distribution function."""
     return 0.5 * math.erfc(-x * _SQRT_HALF)
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, error_model="numpy")
 def waterfall_total_peep(peep, intrinsic_at_zeep, flow_limitation):
     """:func:`.ventilator.waterfall_total_peep` for one case [cmH2O]."""
     x = (peep - WATERFALL_CRITICAL_SHARE * intrinsic_at_zeep) / WATERFALL_CORNER_CMH2O
@@ -67,7 +67,7 @@ def waterfall_total_peep(peep, intrinsic_at_zeep, flow_limitation):
     return (1.0 - flow_limitation) * additive + flow_limitation * limited
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, error_model="numpy")
 def _cycle(f_ee, c_chord, volume_mode, row):
     """One pass of the loop (``cycle`` in :func:`.ventilator.breathe`): open fraction and chord compliance
     in, the same out, with the breath: (f_ee, c_chord, aerated, VT, trapped, total PEEP, Pplat,
@@ -111,7 +111,7 @@ def _cycle(f_ee, c_chord, volume_mode, row):
     return f_ee_new, c_new, aer, vt, trapped, peep_tot, pplat, f_eff
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, error_model="numpy")
 def settle(volume_mode, case, tol, max_iter, out):
     """The loop for every case (rows of ``case``: VT [L], pressure above PEEP, PEEP, Ti, Te, Ti/Ttot, R,
     Cmax [L/cmH2O], inflection, width, recruitable share, pressure history, opening mean and SD, closing
