@@ -23,7 +23,7 @@ import jsonschema
 
 from ventcast.physiology.gasexchange.alveolar import alveolar_po2
 from ventcast.physiology.indices import predicted_body_weight
-# The flow-cycling criterion when a pressure-support case does not give one [fraction of peak flow].
+# The breath model's cycling criterion when a pressure-support case gives none, and its accepted ranges.
 from ventcast.physiology.mechanics.spontaneous import CYCLE_OFF_DEFAULT, INPUT_LIMITS
 
 FORMAT = "ventcast.case"

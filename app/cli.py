@@ -424,7 +424,7 @@ def _cmd_report(args) -> int:
 
 
 def _cmd_walkthrough(args) -> int:
-    from .walkthrough import Run, apply_actions_file, breathing_lines, load_script
+    from .walkthrough import Run, apply_actions_file, breathing_lines, load_script, score_text
     if args.new:
         if args.script or args.headless:
             raise CaseError("--new", "opens the script editor on a new file: give no SCRIPT and no --headless")
@@ -461,8 +461,7 @@ def _cmd_walkthrough(args) -> int:
         print("The patient's breathing on support:")
         for line in breathing_lines(out):
             print(f"  {line}")
-    later = out["score"]["not_yet_due"]
-    print(f"Score: {out['score']['met']} of {out['score']['of']}" + (f" ({later} not yet due)" if later else ""))
+    print(f"Score: {score_text(out)}")
     for s in out["score"]["items"]:
         print(f"  [{'--' if s['met'] is None else 'ok' if s['met'] else 'no'}] {s['expected']} - {s['why']}")
     print()

@@ -419,6 +419,13 @@ class Run:
                 "caution": CAUTION}
 
 
+def score_text(debrief: dict) -> str:
+    """The debrief's score in words: 'met of due', and how many expected actions were not yet due."""
+    score = debrief["score"]
+    later = score["not_yet_due"]
+    return f"{score['met']} of {score['of']}" + (f" ({later} not yet due)" if later else "")
+
+
 def breathing_lines(debrief: dict) -> list:
     """The patient's breathing on support, stretch by stretch, in words (empty on controlled ventilation)."""
     out = []

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from ventcast.app.cli import main
-from ventcast.app.walkthrough import BUILT_IN, Run, built_in_text
+from ventcast.app.walkthrough import BUILT_IN, Run, built_in_text, score_text
 from ventcast.physiology.dynamics.course import Change, simulate
 from ventcast.physiology.forecast import PatientModel, predict
 from ventcast.physiology.mechanics.ventilator import Mechanics, Settings
@@ -228,4 +228,5 @@ def test_a_run_stopped_early_scores_only_what_was_due():
     items = out["score"]["items"]
     assert [s["met"] for s in items] == [True, None] and "not yet due" in items[1]["expected"]
     assert (out["score"]["met"], out["score"]["of"], out["score"]["not_yet_due"]) == (1, 1, 1)
+    assert score_text(out) == "1 of 1 (1 not yet due)"  # the words of the command line, window and exported debrief
     assert [s["met"] for s in run.score()] == [True, False]  # the whole run: the PEEP was never set

@@ -320,7 +320,7 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
 
     # -- debrief --------------------------------------------------------------------------------------
     def finish(self):
-        from ..walkthrough import breathing_lines
+        from ..walkthrough import breathing_lines, score_text
         if self.running:
             self.toggle()
         if self.run._course is None:
@@ -328,9 +328,7 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         out = self.run.debrief(self.minute if self.minute > 0 else None)
         # The debrief is for both: the score, why each expected action was met or missed, and now the
         # teaching summary the learner did not see during the run.
-        later = out["score"]["not_yet_due"]
-        lines = [f"Debrief: score {out['score']['met']} of {out['score']['of']}"
-                 + (f" ({later} not yet due)" if later else "")]
+        lines = [f"Debrief: score {score_text(out)}"]
         for s in out["score"]["items"]:
             mark = "\u00b7" if s["met"] is None else "\u2713" if s["met"] else "\u2716"
             lines.append(f"   [{mark}] {s['expected']} \u2014 {s['why']}")
@@ -352,7 +350,7 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         import csv
         import io
         from ..report import chart_images, write_pdf
-        from ..walkthrough import breathing_lines
+        from ..walkthrough import breathing_lines, score_text
         from ..casefile import check_output_files
         try:
             folder = check_output_files("debrief folder", folder,
@@ -378,7 +376,7 @@ class WalkthroughWindow(QtWidgets.QMainWindow):
         write_atomic(folder / "debrief-course.csv", course.getvalue())
         html = [f"<h1>Walkthrough debrief: {escape(out['title'])}</h1><p><b>{escape(CAUTION)}</b></p>",
                 f"<h2>Teaching summary</h2><p>{escape(out['summary'])}</p>",
-                f"<p>Score {out['score']['met']} of {out['score']['of']}</p><ul>"]
+                f"<p>Score {escape(score_text(out))}</p><ul>"]
         html += [f"<li>{'(not yet due)' if s['met'] is None else '(ok)' if s['met'] else '(missed)'} "
                  f"{escape(s['expected'])} \u2014 {escape(s['why'])}</li>"
                  for s in out["score"]["items"]]

@@ -58,8 +58,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import sparse
-from scipy.sparse.linalg import splu
 from scipy.integrate import BDF, solve_ivp
+from scipy.sparse.linalg import splu
 from scipy.special import erfinv
 
 from ..bloodgas.acidbase import _ph_invivo
@@ -396,7 +396,7 @@ class _BlockLU:
         p_rows, c_rows = base + units, base + N + units
         pos = [(p_rows, p_rows), (p_rows, c_rows), (c_rows, p_rows), (c_rows, c_rows),
                (p_rows, base + I_CVO2), (p_rows, base + I_CVCO2), (c_rows, base + I_CVO2), (c_rows, base + I_CVCO2)]
-        g = base[:, :, None] + self.GLOBAL[None, :, None] + 0 * self.GLOBAL[None, None, :]
+        g = np.broadcast_to(base[:, :, None] + self.GLOBAL[None, :, None], (b, self.GLOBAL.size, self.GLOBAL.size))
         pos.append((g, np.swapaxes(g, 1, 2)))  # (b, 6, 6): row i, column j
         pos += [(base + I_OPEN, base + I_OPEN), (base + I_EXH, base + I_EXH)]
         self.shapes = [np.broadcast_shapes(r.shape, c.shape) for r, c in pos]
@@ -633,6 +633,7 @@ def simulate(patient: PatientModel, settings_now: Settings, changes=(), minutes:
     # rtol 1e-3: measured against rtol 1e-6 on a PEEP/FiO2/mode change, the course differs by at most
     # 0.08 mmHg (PaO2) and 0.01 mmHg (PaCO2) and the re-check time by 0.02 min; 1e-4 cost 30 % more time.
     opts = {"rtol": 1e-3, "atol": _atol(b), **solver_options}
+    stepper = _block_bdf(b) if method == "BDF" else method  # one block solver for every segment of the course
     for s_i in range(len(bounds) - 1):
         t0, t1 = bounds[s_i], bounds[s_i + 1]
         if s_i > 0:
@@ -654,7 +655,7 @@ def simulate(patient: PatientModel, settings_now: Settings, changes=(), minutes:
             t_eval = np.concatenate([[t0], t_eval])
         try:
             sol = solve_ivp(lambda t, y, u=u: rhs(t, y, u), (t0, t1), x, t_eval=t_eval,
-                            method=_block_bdf(b) if method == "BDF" else method,
+                            method=stepper,
                             jac=(lambda t, y, u=u: _jacobian(y, u, structure)) if method in ("BDF", "Radau") else None,
                             **opts)
         except (RuntimeError, np.linalg.LinAlgError) as exc:  # e.g. a singular Newton matrix in the stiff solver
