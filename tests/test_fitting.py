@@ -312,3 +312,25 @@ def test_a_stopped_sampler_gives_up_and_never_returns_draws():
         sample_posterior(estimate, stop)
     assert len(calls) == 4
     assert sample_posterior(estimate, lambda: False).draws is not None
+
+
+def test_the_problem_transforms_all_columns_as_from_z_does_one():
+    """The sampler's batched inverse transform (``_Problem.values``) against ``_from_z`` applied column by
+    column, for every condition's parameters, on values inside, at and far past each bound; and the
+    population means it holds are the ones ``build_model`` would look up itself."""
+    from ventcast.physiology.fitting.fit import _Problem
+    from ventcast.physiology.fitting.priors import parameter_names
+
+    rng = np.random.default_rng(3)
+    for condition in ("ards", "obstructive", "post-operative", "other"):
+        pt = Patient(sex="male", height_cm=178, weight_kg=80, hb_g_dl=12.0, condition=condition)
+        free = tuple(n for n in parameter_names(condition) if n != "anatomic_dead_space")
+        obs = Observation(settings=vc(0.5, 8), pao2=80.0, paco2=42.0, ph=7.38)
+        prob = _Problem(pt, [obs], free, {"anatomic_dead_space": 150.0}, population_defaults(pt))
+        Z = np.concatenate([rng.normal(0.0, 3.0, (300, len(free))), np.full((1, len(free)), 40.0),
+                            np.full((1, len(free)), -40.0), np.zeros((1, len(free)))])
+        vals = prob.values(Z)
+        for j, n in enumerate(free):
+            assert np.array_equal(vals[n], _from_z(n, Z[:, j])), (condition, n)
+        assert np.all(vals["anatomic_dead_space"] == 150.0)
+        assert prob.prior_mean == population_defaults(pt)["mean"]

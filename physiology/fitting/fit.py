@@ -279,14 +279,15 @@ def _settings_batch(settings_list):
                     apparatus_dead_space_ml=arr("apparatus_dead_space_ml"), pause=arr("pause"))
 
 
-def build_model(patient: Patient, values: dict, mean_paw_ref) -> PatientModel:
+def build_model(patient: Patient, values: dict, mean_paw_ref, prior_mean: dict | None = None) -> PatientModel:
     """PatientModel for parameter values (scalars or arrays).
 
     ``values`` holds the fitted parameters; VCO2 comes from ``vco2`` if given, else ``rq`` x ``vo2``.
-    Parameters a fit did not include keep their population means; the condition's structural
-    assumptions (flow limitation, specific-ventilation spread, low-V/Q mode centre) are applied.
+    Parameters a fit did not include keep their population means (``prior_mean`` if the caller holds
+    them already, else :func:`population_defaults`); the condition's structural assumptions (flow
+    limitation, specific-ventilation spread, low-V/Q mode centre) are applied.
     """
-    prior = population_defaults(patient)["mean"]
+    prior = population_defaults(patient)["mean"] if prior_mean is None else prior_mean
     st = structure(patient.condition)
 
     def get(name):
@@ -348,12 +349,24 @@ class _Problem:
         self._gap = np.zeros((1, len(self.keys)))
         self.pm = np.array([_to_z(n, prior["mean"][n]) for n in self.free])
         self.ps = np.array([prior["sd"][n] for n in self.free])
+        # The inverse transforms of all free columns at once (the sampler calls ``values`` ~50 times a
+        # fit): _from_z column by column, in three groups; tests/test_fitting.py holds them equal.
+        self._logit_cols = np.array([j for j, n in enumerate(self.free) if n in _LOGIT], dtype=int)
+        self._log_cols = np.array([j for j, n in enumerate(self.free) if n not in _LOGIT and n not in _LINEAR],
+                                  dtype=int)
+        self._lo = np.array([_BOUNDS[n][0] for n in self.free])
+        self._hi = np.array([_BOUNDS[n][1] for n in self.free])
+        self.prior_mean = population_defaults(patient)["mean"]
 
     def values(self, Z):
         """Natural-scale parameter arrays for rows of Z (K, p)."""
         vals = {n: np.full(Z.shape[0], float(v)) for n, v in self.fixed.items()}
+        V = np.array(Z, dtype=float)
+        V[:, self._logit_cols] = expit(V[:, self._logit_cols])
+        V[:, self._log_cols] = np.exp(np.clip(V[:, self._log_cols], -30, 30))
+        V = np.clip(V, self._lo, self._hi).T.copy()
         for j, n in enumerate(self.free):
-            vals[n] = _from_z(n, Z[:, j])
+            vals[n] = V[j]
         if "rq" in vals and "vo2" in vals:
             vals["vco2"] = np.clip(vals["rq"] * vals["vo2"], *VCO2_BOUNDS)
         return vals
@@ -382,7 +395,7 @@ class _Problem:
                                                      "apparatus_dead_space_ml", "pause")})
             tiled = _fill_optional(tiled)
             rep = {n: np.repeat(v, m) for n, v in vals.items()}
-            pred = predict(build_model(self.patient, rep, self.mean_paw_ref), tiled,
+            pred = predict(build_model(self.patient, rep, self.mean_paw_ref, self.prior_mean), tiled,
                            start=None if start is None else start[mode], tol=tol, units=units,
                            mechanics_tol=SAMPLER_MECHANICS_TOL if tol >= SAMPLER_TOL else 1e-10)
             self.states[mode] = warm_start(pred.gas)
