@@ -206,7 +206,12 @@ def _cmd_fit(args) -> int:
              ("resistance [cmH2O/L/s]", "resistance_cmh2o_l_s", "resistance"),
              ("base excess [mmol/L]", "base_excess_mmol_l", "base_excess"),
              ("respiratory quotient", "respiratory_quotient", "rq"),
-             ("series dead space [mL]", "series_dead_space_ml", None)]
+             ("series dead space [mL]", "series_dead_space_ml", None),
+             ("  below the Y-piece [mL]", "anatomic_dead_space_ml", "anatomic_dead_space"),
+             # The two constants that set how PaCO2 answers a higher Pplat (drawn, not fixed): shown so that
+             # a PEEP or VT forecast's PaCO2 can be traced to them.
+             ("upper inflection [cmH2O]", "upper_inflection_cmh2o", "inflection"),
+             ("overdistension dead space", "overdistension_dead_space_fraction", "overdistension_dead_space")]
     if block["condition"] == "obstructive":
         names.append(("low-V/Q mode (share of flow)", "low_vq_fraction", "low_vq_fraction"))
     print(f"Lung fit: {block['message']}")

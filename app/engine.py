@@ -280,6 +280,8 @@ def fit_block(result, current: Settings) -> dict:
         "hb_g_dl": float(result.patient.hb_g_dl), "compliance_ml_per_cmh2o": e["c_max"],
         "resistance_cmh2o_l_s": e["resistance"], "base_excess_mmol_l": e["base_excess"],
         "respiratory_quotient": e["rq"], "series_dead_space_ml": _f(now.breathing.series_dead_space_ml),
+        "anatomic_dead_space_ml": e["anatomic_dead_space"],
+        "upper_inflection_cmh2o": e["inflection"], "overdistension_dead_space_fraction": e["overdistension_dead_space"],
         "low_vq_fraction": e.get("low_vq_fraction", 0.0),
         "condition": result.patient.condition, "assumptions": model_assumptions(result.patient.condition),
         "identifiability": list(result.identifiability), "warnings": list(result.warnings),

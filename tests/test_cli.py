@@ -84,6 +84,19 @@ def test_fit_command(capsys):
     assert main(["fit", "--demo", "refractory-shunt", "--format", "json"]) == 0
     data = json.loads(capsys.readouterr().out)
     assert data["fit"]["shunt_fraction"] > 0.25  # a high-shunt case
+    # The constants that set how PaCO2 answers a higher Pplat are fitted (drawn), and shown with their ranges,
+    # so that a PEEP forecast's PaCO2 can be traced to them.
+    f = data["fit"]
+    for key, rkey in (("upper_inflection_cmh2o", "inflection"),
+                      ("overdistension_dead_space_fraction", "overdistension_dead_space"),
+                      ("anatomic_dead_space_ml", "anatomic_dead_space")):
+        lo, hi = f["likely_range"][rkey]
+        assert 0 < lo < hi and f[key] > 0, key
+    assert main(["fit", "--demo", "copd-trapping"]) == 0
+    text = capsys.readouterr().out
+    for label in ("upper inflection [cmH2O]", "overdistension dead space", "below the Y-piece [mL]"):
+        line = next(x for x in text.splitlines() if label in x)
+        assert "likely range" in line, line
 
 
 def _case_text():
