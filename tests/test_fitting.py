@@ -334,3 +334,60 @@ def test_the_problem_transforms_all_columns_as_from_z_does_one():
             assert np.array_equal(vals[n], _from_z(n, Z[:, j])), (condition, n)
         assert np.all(vals["anatomic_dead_space"] == 150.0)
         assert prob.prior_mean == population_defaults(pt)["mean"]
+
+
+def test_compiled_forward_model_gives_predicts_numbers():
+    """Independent calculation: the fit's compiled forward model (physiology/fitting/_forward.py, a second
+    form of breathe -> predict -> the lung solve kept for speed) against ``predict`` itself, on draws
+    spread wider than every condition's priors, observations in volume and pressure control with every
+    observed quantity, at the sampler's and the optimiser's tolerances, on both unit grids, cold and warm
+    started: the same cases fail, the rest agree within 1e-6 (mmHg, cmH2O, mL, pH units) and so do the
+    warm-start states and PetCO2 gaps. A changed equation on one side only, or a stale numba cache of
+    _forward.py, fails it."""
+    from ventcast.physiology.fitting.fit import SAMPLER_TOL, _Problem
+    from ventcast.physiology.fitting.priors import parameter_names
+
+    rng = np.random.default_rng(11)
+    failures = 0
+    for condition in ("ards", "obstructive", "post-operative", "other"):
+        pt = Patient(sex="female", height_cm=160, weight_kg=70, hb_g_dl=9.5, temperature_c=38.3,
+                     barometric_mmhg=720, condition=condition)
+        pc = Settings(mode="pressure", fio2=0.45, peep=12, inspiratory_pressure=16, rr=24, ti=0.8)
+        observations = [
+            Observation(settings=vc(0.5, 8, vt=380), pao2=85.0, paco2=44.0, ph=7.36, petco2=36.0, pplat=24.0,
+                        ppeak=33.0, vte_ml=375.0, ve_l_min=7.5, cardiac_output=5.0),
+            Observation(settings=Settings(mode="volume", fio2=0.8, peep=14, vt_ml=420, rr=18, ti=1.0, pause=0.2),
+                        pao2=130.0, paco2=47.0, ph=7.33, vco2=220.0),
+            Observation(settings=pc, pao2=90.0, paco2=50.0, ph=7.30, sao2=0.95, petco2=40.0, ppeak=28.0,
+                        vte_ml=400.0),
+            # zero PEEP, a low mean airway pressure: a high cardiac output reaches the lung's 20 L/min clip
+            Observation(settings=Settings(mode="volume", fio2=0.3, peep=0, vt_ml=300, rr=8, ti=0.6),
+                        pao2=70.0, paco2=45.0, ph=7.35, cardiac_output=6.0),
+        ]
+        free = parameter_names(condition)
+        prob = _Problem(pt, observations, free, {}, population_defaults(pt))
+        Z = prob.pm + rng.standard_normal((150, len(free))) * prob.ps * 1.5
+        # and draws at the parameters' bounds (cardiac output below 1 or above 20 L/min, the clips, failures)
+        Z = np.concatenate([Z, prob.pm + rng.choice([-8.0, 8.0], (30, len(free))) * prob.ps])
+        for units, tol in (("coarse", SAMPLER_TOL), ("full", 1e-4)):
+            start = None
+            for Zs in (Z, Z + rng.normal(0.0, 0.05, Z.shape)):
+                ref = prob.model_outputs(Zs, start, tol, units, compiled=False)
+                ref_states, ref_gap = prob.states, prob._gap
+                got = prob.model_outputs(Zs, start, tol, units, compiled=True)
+                assert np.array_equal(np.isfinite(ref), np.isfinite(got)), (condition, units)
+                ok = np.isfinite(ref)
+                assert np.max(np.abs(ref[ok] - got[ok])) < 1e-6, (condition, units)
+                assert np.max(np.abs(ref_gap - prob._gap)) < 1e-6
+                for mode, st in ref_states.items():
+                    for k, v in st.items():
+                        w = prob.states[mode][k]
+                        assert np.array_equal(np.isfinite(v), np.isfinite(w)), (condition, mode, k)
+                        assert np.nanmax(np.abs(v - w)) < 1e-6, (condition, mode, k)
+                failures += int((~ok).any(axis=1).sum())
+                start = ref_states  # the second round starts warm, from the first's solved states
+    assert failures > 0  # the failure rules were exercised
+    # The patient's numbers are refused as predict refuses them, before any draw.
+    with pytest.raises(ValueError, match="hb"):
+        _Problem(Patient(sex="male", height_cm=175, weight_kg=70, hb_g_dl=2.0), observations, free, {},
+                 population_defaults(pt))

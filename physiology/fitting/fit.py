@@ -55,10 +55,10 @@ from scipy.special import expit, gammaln, logit
 
 from .._checks import check_fio2, check_range
 from ..bloodgas.acidbase import _ph_invivo, bicarbonate_henderson_hasselbalch
-from ..bloodgas.oxygen import saturation
+from ..bloodgas.oxygen import HUFNER_DEFAULT, saturation
 from ..forecast import PatientModel, Prediction, predict
 from ..gasexchange.alveolar import alveolar_po2
-from ..gasexchange.compartments import warm_start
+from ..gasexchange.compartments import UNIT_GRIDS, LungParameters, split_rows, warm_start
 from ..indices import predicted_body_weight
 from ..mechanics.ventilator import Mechanics, Settings
 from ..measurement import SD
@@ -357,6 +357,32 @@ class _Problem:
         self._lo = np.array([_BOUNDS[n][0] for n in self.free])
         self._hi = np.array([_BOUNDS[n][1] for n in self.free])
         self.prior_mean = population_defaults(patient)["mean"]
+        self._compiled_setup()
+
+    def _compiled_setup(self):
+        """What the compiled forward model (:mod:`._forward`) takes from the patient and the observations:
+        the patient's constants (read from a model :func:`build_model` makes, so that defaults are not
+        repeated), each mode's validated settings, and where each observed quantity sits in its output."""
+        from ._forward import CONST, OUT, SET
+
+        one = build_model(self.patient, {n: float(self.prior_mean[n]) for n in PARAMETERS}, self.mean_paw_ref,
+                          self.prior_mean)
+        # The patient's own numbers refused as predict would refuse them (the settings: by ``validated`` below;
+        # the draws stay inside the engine's domain by _BOUNDS).
+        LungParameters(hb=one.hb, temperature=one.temperature, barometric=one.barometric).arrays()
+        mech = one.mechanics
+        src = {"hufner": HUFNER_DEFAULT, **{f: getattr(one, f) for f in CONST if hasattr(one, f)},
+               **{f: getattr(mech, f) for f in CONST if hasattr(mech, f)}}
+        self._const = np.array([float(src[f]) for f in CONST])
+        self._st, self._cols = {}, {}
+        for mode, idx in self.groups.items():
+            s = _fill_optional(_settings_batch([self.obs[i].settings for i in idx]))
+            valid = s.validated(self.patient.pbw_kg)
+            m = len(idx)
+            self._st[mode] = np.stack([np.broadcast_to(np.asarray(valid.get(f, 0.0), dtype=float), (m,))
+                                       for f in SET], axis=1)
+            self._cols[mode] = [(col, idx.index(i), OUT.index(q), q == "petco2")
+                                for col, (i, q, _y, _sd) in enumerate(self.keys) if i in idx]
 
     def values(self, Z):
         """Natural-scale parameter arrays for rows of Z (K, p)."""
@@ -371,7 +397,23 @@ class _Problem:
             vals["vco2"] = np.clip(vals["rq"] * vals["vo2"], *VCO2_BOUNDS)
         return vals
 
-    def model_outputs(self, Z, start=None, tol=1e-4, units="full"):
+    def _parameters(self, vals: dict, K: int):
+        """The compiled forward model's per-draw parameter rows (K, len(PAR)), as :func:`build_model` reads
+        ``vals``: parameters not fitted keep their population means, VCO2 is RQ x VO2."""
+        from ._forward import PAR
+
+        def get(name):
+            return vals[name] if name in vals else self.prior_mean[name]
+
+        cols = dict(vals)
+        cols["vco2"] = vals["vco2"] if "vco2" in vals else np.clip(np.asarray(get("rq")) * np.asarray(get("vo2")),
+                                                                   *VCO2_BOUNDS)
+        for name in ("anatomic_dead_space", "inflection", "overdistension_dead_space"):
+            cols[name] = get(name)
+        cols.setdefault("low_vq_fraction", 0.0)
+        return np.stack([np.broadcast_to(np.asarray(cols[n], dtype=float), (K,)) for n in PAR], axis=1)
+
+    def model_outputs(self, Z, start=None, tol=1e-4, units="full", compiled=True):
         """Model values for every (row of Z, observation key): array (K, n_keys), NaN where it failed.
 
         Also keeps, for the PetCO2 keys, the arterial to mixed-alveolar PCO2 gap (``self._gap``), which
@@ -381,7 +423,11 @@ class _Problem:
         ``tol``: the lung solver's tolerance (:data:`SAMPLER_TOL` for the sampler's densities).
         ``units``: the lung's unit grid ("coarse" only in the sampler's tempering; see
         :data:`physiology.gasexchange.compartments.UNIT_GRIDS`).
+        ``compiled``: through the compiled forward model (:mod:`._forward`, several times faster at the
+        sampler's batch sizes), or through :func:`predict` (False), which a test holds it to.
         """
+        if compiled:
+            return self._compiled_outputs(Z, start, tol, units)
         K = Z.shape[0]
         vals = self.values(Z)
         out = np.full((K, len(self.keys)), np.nan)
@@ -406,6 +452,42 @@ class _Problem:
                     out[:, col] = table[q].reshape(K, m)[:, pos]
                     if q == "petco2":
                         gap[:, col] = np.abs(table["petco2_gap"].reshape(K, m)[:, pos])
+        self._gap = np.nan_to_num(gap)
+        return out
+
+    def _compiled_outputs(self, Z, start, tol, units):
+        """:meth:`model_outputs` through :func:`._forward.forward` (the same table, states and gaps)."""
+        from ._forward import OUT, forward
+
+        K = Z.shape[0]
+        par_draws = self._parameters(self.values(Z), K)
+        z = UNIT_GRIDS[units][0]
+        width = z.size + 2
+        out = np.full((K, len(self.keys)), np.nan)
+        gap = np.zeros((K, len(self.keys)))
+        mech_tol = SAMPLER_MECHANICS_TOL if tol >= SAMPLER_TOL else 1e-10
+        gap_col = OUT.index("petco2_gap")
+        self.states = {}
+        for mode, idx in self.groups.items():
+            m = len(idx)
+            n = K * m
+            st = np.tile(self._st[mode], (K, 1))
+            par = np.repeat(par_draws, m, axis=0)
+            given = None if start is None else start[mode]
+            if given is not None and given["p"].shape == (n, width):
+                sp, sc = np.array(given["p"], dtype=float), np.array(given["c"], dtype=float)
+                scv = np.stack([given["cvo2"], given["cvco2"]], axis=1).astype(float)
+            else:
+                sp, sc, scv = np.full((n, width), np.nan), np.full((n, width), np.nan), np.full((n, 2), np.nan)
+            table = np.empty((n, len(OUT)))
+            volume = mode == "volume"
+            split_rows(lambda lo, hi: forward(volume, st[lo:hi], par[lo:hi], self._const, z, tol, 80, mech_tol, 60,
+                                              sp[lo:hi], sc[lo:hi], scv[lo:hi], table[lo:hi]), n)
+            self.states[mode] = {"p": sp, "c": sc, "cvo2": scv[:, 0].copy(), "cvco2": scv[:, 1].copy()}
+            for col, pos, q, is_petco2 in self._cols[mode]:
+                out[:, col] = table[:, q].reshape(K, m)[:, pos]
+                if is_petco2:
+                    gap[:, col] = np.abs(table[:, gap_col].reshape(K, m)[:, pos])
         self._gap = np.nan_to_num(gap)
         return out
 

@@ -565,16 +565,24 @@ def _newton_rows(vq, w, case, chem, p, c, cvo2, cvco2, s_lag, tol, max_iter,
     rows = (vq, w, case, chem, p, c, cvo2, cvco2, s_lag)
     outs = (o2, co2, s, dpu, dcu, deriv, bderiv, flags)
     n = vq.shape[0]
+    split_rows(lambda lo, hi: newton(*(x[lo:hi] for x in rows), tol, max_iter, *(x[lo:hi] for x in outs)), n)
+
+
+def split_rows(work, n: int) -> None:
+    """``work(lo, hi)`` on rows ``[0, n)``: the second half on the helper thread when ``n`` reaches
+    :data:`PARALLEL_MIN_ROWS` and the process may use two cores, else all here. ``work`` must write only
+    its own rows and release the interpreter lock for most of its time (compiled ``nogil`` loops). If
+    this thread's half fails, the helper's half finishes before the error goes up."""
     if n < PARALLEL_MIN_ROWS or _cores() < 2:
-        newton(*rows, tol, max_iter, *outs)
+        work(0, n)
         return
     with _helper_lock:
         if not _helper:
             _helper.append(ThreadPoolExecutor(max_workers=1, thread_name_prefix="ventcast-lung"))
     h = n // 2
-    second = _helper[0].submit(newton, *(x[h:] for x in rows), tol, max_iter, *(x[h:] for x in outs))
+    second = _helper[0].submit(work, h, n)
     try:
-        newton(*(x[:h] for x in rows), tol, max_iter, *(x[:h] for x in outs))
+        work(0, h)
     except BaseException:
         second.exception()  # the helper still writes into these arrays: let it finish first
         raise
