@@ -188,7 +188,7 @@ def _lung_rows(volume_mode, st, par, const, loop, z, state_p, state_c, state_cv,
     for i in range(n):
         fio2, peep, rr, ti, app_ds, pause = st[i, 0], st[i, 1], st[i, 4], st[i, 5], st[i, 6], st[i, 7]
         r, infl = par[i, 8], par[i, 11]
-        vt, peep_tot, pplat, f_eff = loop[i, 2], loop[i, 4], loop[i, 5], loop[i, 6]
+        vt, pplat, f_eff = loop[i, 2], loop[i, 5], loop[i, 6]
         converged = loop[i, 7] == 1.0
         # breathe: the quantities derived from the settled breath, and whether it failed.
         if volume_mode:
