@@ -22,9 +22,12 @@ This is a second form of those steps, kept for speed only: ``tests/test_fitting.
 ``predict`` over random draws of every condition's priors and draws at the parameters' bounds, in both
 ventilator modes, at the sampler's and the optimiser's tolerances, cold and warm started, failures included
 (the same cases fail; the rest, and the warm-start states, agree within 1e-6; measured about 5e-12). A change to the equations of ``breathe``, ``predict`` or ``_solve_arrays`` must be
-made here too, or that test fails. Numba's cache of this file is invalidated by an edit of this file
-only; the constants it takes from other modules are frozen into the cached code, and the same test
-fails on a stale cache (delete ``__pycache__``). Imported at the first fit, not with the engine.
+made here too, or that test fails. The equations of blood chemistry are not repeated: the kernels compile
+the array code's own functions (blood contents, Severinghaus and Ellis, in-vivo pH; see ``_OPTIONS``
+below). Numba's cache of this file is invalidated by an edit of this file only; the constants and the
+functions it takes from other modules are frozen into the cached code, and the same test fails on a
+stale cache (delete ``__pycache__``).
+Imported at the first fit, not with the engine.
 """
 
 from __future__ import annotations
@@ -34,9 +37,9 @@ import math
 import numpy as np
 from numba import njit
 
-from ..bloodgas.acidbase import CO2_SOLUBILITY, PK_PLASMA
-from ..bloodgas.carbon_dioxide import MMOL_TO_ML_DL
-from ..bloodgas.oxygen import _SEV_A, _SEV_B, O2_SOLUBILITY
+from ..bloodgas import acidbase, oxygen
+from ..bloodgas.oxygen import O2_SOLUBILITY
+from ..gasexchange._newton import _clip, content_terms
 from ..gasexchange.compartments import _BOHR, _LN10, _LN20, _LN40, _PH40_SBE0, MIN_MIXED_VENOUS_PO2
 from ..mechanics.recruitment import MMHG_PER_CMH2O
 
@@ -60,79 +63,16 @@ _K_OK_BREATH, _K_PPLAT, _K_PPEAK, _K_VT_ML, _K_VE, _K_CO, _K_VA, _K_SBE = range(
 _KEEP = 8
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
-def _sev(p):
-    q = p * (p * p + _SEV_B)
-    return q / (q + _SEV_A)
-
-
-@njit(cache=True, nogil=True, error_model="numpy")
-def _ellis(s):
-    k = 0.5 * _SEV_A * s / (1.0 - s)
-    r = math.sqrt(50.0 ** 3 + k * k)
-    a = np.cbrt(r + k)
-    b = np.cbrt(r - k)
-    return 2.0 * k / (a * a + a * b + b * b)
-
-
-@njit(cache=True, nogil=True, error_model="numpy")
-def _clip(x, lo, hi):
-    """``np.clip``'s order (the upper bound wins), NaN kept."""
-    if x < lo:
-        x = lo
-    if x > hi:
-        x = hi
-    return x
-
-
-@njit(cache=True, nogil=True, error_model="numpy")
-def _ph_invivo(pco2, sbe):
-    """:func:`physiology.bloodgas.acidbase._ph_invivo` for one case."""
-    a = CO2_SOLUBILITY * pco2
-    ph = PK_PLASMA + math.log10(max(24.8 + sbe, 1.0) / a)
-    target = 24.8 + sbe + 16.2 * 7.40
-    ln10 = math.log(10.0)
-    for _ in range(30):
-        h = a * 10.0 ** (ph - PK_PLASMA)
-        f = h + 16.2 * ph - target
-        step = f / (h * ln10 + 16.2)
-        ph = ph - step
-        if abs(step) < 1e-12:
-            break
-    return ph
-
-
-@njit(cache=True, nogil=True, error_model="numpy")
-def _contents_values(p, c, s_guess, hb, hct, t, offset, cap, sol, lkt):
-    """O2 and CO2 contents (:func:`physiology.gasexchange._newton.content_terms`, values only)."""
-    lnc = math.log(c)
-    oxy = 0.003 * hb
-    ph_base = 7.59 + offset + oxy - 0.2741 * (lnc - _LN20)
-    ph = ph_base - oxy * s_guess
-    lx = math.log(p) + lkt + _BOHR * (ph - 7.4) + 0.06 * (_LN40 - lnc)
-    x = math.exp(lx)
-    x2 = x * x
-    q = x * (x2 + _SEV_B)
-    den = q + _SEV_A
-    fx = _SEV_A * (3.0 * x2 + _SEV_B) * x / (den * den)
-    kappa = fx * _BOHR * oxy
-    s_new = s_guess + (q / den - s_guess) / (1.0 + kappa)
-    ph = ph_base - oxy * s_new
-    x = x * (1.0 - _BOHR * oxy * (s_new - s_guess))
-    x2 = x * x
-    q = x * (x2 + _SEV_B)
-    den = q + _SEV_A
-    s = q / den
-    o2 = cap * s + O2_SOLUBILITY * p
-    pp = 7.4 - ph
-    pk = 6.086 + 0.042 * pp + (38.0 - t) * (0.00472 + 0.00139 * pp)
-    dox = 0.590 + 0.2913 * pp - 0.0844 * pp * pp
-    dr = 0.664 + 0.2275 * pp - 0.0938 * pp * pp
-    ddd = dox + (dr - dox) * (1.0 - s)
-    e = math.exp(_LN10 * (ph - pk))
-    cp = sol * c * (1.0 + e)
-    mix = hct * ddd + (1.0 - hct)
-    return o2, MMOL_TO_ML_DL * mix * cp
+# The equations these kernels share with the array code, not repeated: the blood contents
+# (physiology.gasexchange._newton.content_terms), Severinghaus's saturation and Ellis's inverse
+# (physiology.bloodgas.oxygen), the in-vivo pH at a fixed standard base excess (physiology.bloodgas.acidbase),
+# compiled into this file's kernels. Numba does not see an edit of those files from here: after one, this
+# file's cache is stale until it is deleted (tests/test_fitting.py fails on it, as on a frozen constant).
+_OPTIONS = dict(cache=True, nogil=True, inline="always", error_model="numpy")
+_contents = njit(**_OPTIONS)(content_terms)
+_sev = njit(**_OPTIONS)(oxygen._sev)
+_ellis = njit(**_OPTIONS)(oxygen._ellis)
+_ph_invivo = njit(**_OPTIONS)(acidbase._ph_invivo)
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
@@ -255,7 +195,7 @@ def _lung_rows(volume_mode, st, par, const, loop, z, state_p, state_c, state_cv,
         sv_guess = _clip((cv_guess - O2_SOLUBILITY * 35.0) / cap, 0.2, 0.9)
         pv_o2 = _ellis(sv_guess)
         pv_co2 = pa_co2_guess + fick_co2 / beta
-        cv1, cv2 = _contents_values(pv_o2, pv_co2, 0.75, hb, hct, temp, offset, cap, sol, lkt)
+        cv1, cv2, _s, _ph = _contents(pv_o2, pv_co2, 0.75, hb, hct, temp, offset, cap, sol, lkt, dpk, True)
         mean_p = 0.0
         mean_c = 0.0
         for j in range(nu):
