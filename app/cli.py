@@ -257,6 +257,16 @@ def _parse_size(text: str) -> tuple[int, int]:
     return w, h
 
 
+def oxygenation_either_text(m: dict) -> str:
+    """Why an option with SpO2 (or PaO2) outside its range still meets the oxygenation goal: the goal is met
+    by either one in range (ARDS Network 2000). '' when both are in range, both out, or only one is set."""
+    if "spo2" not in m or "pao2_mmhg" not in m or (m["spo2"] >= 0) == (m["pao2_mmhg"] >= 0):
+        return ""
+    met, other = ("PaO2", "SpO2") if m["pao2_mmhg"] >= 0 else ("SpO2", "PaO2")
+    return (f"oxygenation goal met by {met} ({other} outside its range): the goal is SpO2 or PaO2 in range "
+            f"(ARDS Network 2000)")
+
+
 def _cmd_plan(args) -> int:
     from .engine import plan_case, settings_text
     case = _load_case(args)
@@ -286,6 +296,9 @@ def _cmd_plan(args) -> int:
         print("   margins to the goals and limits: " + ", ".join(
             f"{MARGIN_LABELS[k][0]} {v:+.{MARGIN_LABELS[k][2]}f} {MARGIN_LABELS[k][1]}".rstrip()
             for k, v in o["margins"].items()))
+        either = oxygenation_either_text(o["margins"])
+        if either:
+            print(f"   {either}")
         misses = ", ".join(f"{CONSTRAINT_NAMES.get(k, k)} {100 * v:.0f} %" if v >= 0.01 else
                            f"{CONSTRAINT_NAMES.get(k, k)} <1 %" for k, v in o["misses"].items())
         print(f"   probability of meeting every goal and limit: {100 * o['probability_all_goals']:.0f} % ({mark})"

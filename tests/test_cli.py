@@ -450,3 +450,16 @@ def test_readiness_values_are_judged_as_shown():
     assert (ph["value"], ph["met"]) == (7.25, True)
     assert (pf["value"], pf["met"]) == (150.0, True)
     assert rsbi["value"] == 105.0 and rsbi["met"] is False  # 30 / 0.285 = 105.3: "below 105" not met
+
+
+def test_an_option_met_by_pao2_alone_says_so():
+    """ARDS Network 2000: the oxygenation goal is PaO2 55-80 mmHg or SpO2 88-95 %. An option whose SpO2 margin
+    is negative while its PaO2 margin is not meets the goal, and the text says by which."""
+    from ventcast.app.cli import oxygenation_either_text
+
+    text = oxygenation_either_text({"spo2": -0.02, "pao2_mmhg": 9.0, "ph": 0.03})
+    assert "met by PaO2" in text and "SpO2 outside its range" in text and "ARDS Network 2000" in text
+    assert "met by SpO2" in oxygenation_either_text({"spo2": 0.01, "pao2_mmhg": -3.0})
+    assert oxygenation_either_text({"spo2": 0.01, "pao2_mmhg": 3.0}) == ""
+    assert oxygenation_either_text({"spo2": -0.01, "pao2_mmhg": -3.0}) == ""
+    assert oxygenation_either_text({"spo2": -0.01}) == ""
