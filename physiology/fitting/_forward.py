@@ -20,14 +20,14 @@ iteration, :func:`physiology.gasexchange._newton.newton`, both called from :func
 
 This is a second form of those steps, kept for speed only: ``tests/test_fitting.py`` holds it to
 ``predict`` over random draws of every condition's priors and draws at the parameters' bounds, in both
-ventilator modes, at the sampler's and the optimiser's tolerances, cold and warm started, failures included
-(the same cases fail; the rest, and the warm-start states, agree within 1e-6; measured about 5e-12). A change to the equations of ``breathe``, ``predict`` or ``_solve_arrays`` must be
-made here too, or that test fails. The equations of blood chemistry are not repeated: the kernels compile
-the array code's own functions (blood contents, Severinghaus and Ellis, in-vivo pH; see ``_OPTIONS``
+ventilator modes, at the sampler's and the optimiser's tolerances, cold and warm started, failures
+included (the same cases fail; the rest, and the warm-start states, agree within 1e-6; measured about
+5e-12). A change to the equations of ``breathe``, ``predict`` or ``_solve_arrays`` must be made here
+too, or that test fails. The equations of blood chemistry are not repeated: the kernels compile the
+array code's own functions (blood contents, Severinghaus and Ellis, in-vivo pH; see ``_OPTIONS``
 below). Numba's cache of this file is invalidated by an edit of this file only; the constants and the
 functions it takes from other modules are frozen into the cached code, and the same test fails on a
-stale cache (delete ``__pycache__``).
-Imported at the first fit, not with the engine.
+stale cache (delete ``__pycache__``). Imported at the first fit, not with the engine.
 """
 
 from __future__ import annotations
@@ -58,6 +58,18 @@ CONST = ("pbw_kg", "hb", "temperature", "barometric", "hufner", "recruitable_shu
 OUT = ("pao2", "paco2", "ph", "sao2", "petco2", "petco2_gap", "pplat", "ppeak", "vte_ml", "ve_l_min", "vco2",
        "cardiac_output")
 
+# Column numbers by name (numba takes module-level integers as constants).
+(_P_SHUNT_FIXED, _P_RECRUITABLE, _P_LOG_SD, _P_DEAD_SPACE_FRACTION, _P_VO2, _P_VCO2, _P_CARDIAC_OUTPUT_REF,
+ _P_C_MAX, _P_RESISTANCE, _P_BASE_EXCESS, _P_ANATOMIC_DEAD_SPACE, _P_INFLECTION, _P_OVERDISTENSION_DEAD_SPACE,
+ _P_LOW_VQ_FRACTION) = range(len(PAR))
+(_S_FIO2, _S_PEEP, _S_VT_ML, _S_INSPIRATORY_PRESSURE, _S_RR, _S_TI, _S_APPARATUS_DEAD_SPACE_ML,
+ _S_PAUSE) = range(len(SET))
+(_C_PBW_KG, _C_HB, _C_TEMPERATURE, _C_BAROMETRIC, _C_HUFNER, _C_RECRUITABLE_SHUNT_RATIO, _C_LOW_VQ_RATIO,
+ _C_MEAN_PAW_REF, _C_PRELOAD_DEPENDENCE, _C_END_TIDAL_SHARE, _C_WIDTH, _C_MU_OPEN, _C_SD_OPEN, _C_MU_CLOSE,
+ _C_SD_CLOSE, _C_PRESSURE_HISTORY, _C_FLOW_LIMITATION) = range(len(CONST))
+(_O_PAO2, _O_PACO2, _O_PH, _O_SAO2, _O_PETCO2, _O_PETCO2_GAP, _O_PPLAT, _O_PPEAK, _O_VTE_ML, _O_VE_L_MIN,
+ _O_VCO2, _O_CARDIAC_OUTPUT) = range(len(OUT))
+
 # Per-case values handed from _lung_rows to _finish_rows.
 _K_OK_BREATH, _K_PPLAT, _K_PPEAK, _K_VT_ML, _K_VE, _K_CO, _K_VA, _K_SBE = range(8)
 _KEEP = 8
@@ -80,25 +92,25 @@ def _breath_rows(volume_mode, st, par, const, case):
     """Rows of the breathing loop's input (:func:`physiology.mechanics._breath.settle`), as ``breathe``
     builds them."""
     for i in range(st.shape[0]):
-        rr, ti = st[i, 4], st[i, 5]
+        rr, ti = st[i, _S_RR], st[i, _S_TI]
         ttot = 60.0 / rr
-        case[i, 0] = st[i, 2] / 1000.0 if volume_mode else 0.0
-        case[i, 1] = 0.0 if volume_mode else st[i, 3]
-        case[i, 2] = st[i, 1]
+        case[i, 0] = st[i, _S_VT_ML] / 1000.0 if volume_mode else 0.0
+        case[i, 1] = 0.0 if volume_mode else st[i, _S_INSPIRATORY_PRESSURE]
+        case[i, 2] = st[i, _S_PEEP]
         case[i, 3] = ti
         case[i, 4] = ttot - ti
         case[i, 5] = ti / ttot
-        case[i, 6] = par[i, 8]
-        case[i, 7] = par[i, 7] / 1000.0
-        case[i, 8] = par[i, 11]
-        case[i, 9] = const[10]
-        case[i, 10] = par[i, 1]
-        case[i, 11] = const[15]
-        case[i, 12] = const[11]
-        case[i, 13] = const[12]
-        case[i, 14] = const[13]
-        case[i, 15] = const[14]
-        case[i, 16] = const[16]
+        case[i, 6] = par[i, _P_RESISTANCE]
+        case[i, 7] = par[i, _P_C_MAX] / 1000.0
+        case[i, 8] = par[i, _P_INFLECTION]
+        case[i, 9] = const[_C_WIDTH]
+        case[i, 10] = par[i, _P_RECRUITABLE]
+        case[i, 11] = const[_C_PRESSURE_HISTORY]
+        case[i, 12] = const[_C_MU_OPEN]
+        case[i, 13] = const[_C_SD_OPEN]
+        case[i, 14] = const[_C_MU_CLOSE]
+        case[i, 15] = const[_C_SD_CLOSE]
+        case[i, 16] = const[_C_FLOW_LIMITATION]
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
@@ -106,9 +118,10 @@ def _lung_rows(volume_mode, st, par, const, loop, z, state_p, state_c, state_cv,
                vq, w, vent, lcase, chem, p, c, cvo2, cvco2, s_lag, keep):
     """From the settled breath to the lung's Newton start, case by case (see the module notes)."""
     n, nu = vq.shape
-    hb, temp, baro, hufner = const[1], const[2], const[3], const[4]
-    rsr, low_ratio, paw_ref, preload = const[5], const[6], const[7], const[8]
-    width = const[10]
+    hb, temp, baro, hufner = const[_C_HB], const[_C_TEMPERATURE], const[_C_BAROMETRIC], const[_C_HUFNER]
+    rsr, low_ratio = const[_C_RECRUITABLE_SHUNT_RATIO], const[_C_LOW_VQ_RATIO]
+    paw_ref, preload = const[_C_MEAN_PAW_REF], const[_C_PRELOAD_DEPENDENCE]
+    width = const[_C_WIDTH]
     w_main = np.exp(-0.5 * z * z)
     w_main = w_main / w_main.sum()
     w_low = np.empty(nu)
@@ -126,39 +139,40 @@ def _lung_rows(volume_mode, st, par, const, loop, z, state_p, state_c, state_cv,
     beta = 0.45 * hb / 15.0 + 0.1
     b_o2 = 0.05 * hb / 15.0
     for i in range(n):
-        fio2, peep, rr, ti, app_ds, pause = st[i, 0], st[i, 1], st[i, 4], st[i, 5], st[i, 6], st[i, 7]
-        r, infl = par[i, 8], par[i, 11]
+        fio2, peep, rr, ti = st[i, _S_FIO2], st[i, _S_PEEP], st[i, _S_RR], st[i, _S_TI]
+        app_ds, pause = st[i, _S_APPARATUS_DEAD_SPACE_ML], st[i, _S_PAUSE]
+        r, infl = par[i, _P_RESISTANCE], par[i, _P_INFLECTION]
         vt, pplat, f_eff = loop[i, 2], loop[i, 5], loop[i, 6]
         converged = loop[i, 7] == 1.0
         # breathe: the quantities derived from the settled breath, and whether it failed.
         if volume_mode:
             ppeak = pplat + r * (vt / (ti - pause))
         else:
-            ppeak = peep + st[i, 3]
+            ppeak = peep + st[i, _S_INSPIRATORY_PRESSURE]
         mean_paw = (1.0 if not volume_mode else 0.5) * (ppeak - peep) * (ti * rr / 60.0) + peep
         over = _clip(2.0 / (1.0 + math.exp(-(pplat - infl) / width)) - 1.0, 0.0, 1.0)
         ve = rr * vt
-        va = ve - rr * (par[i, 10] + app_ds) / 1000.0
+        va = ve - rr * (par[i, _P_ANATOMIC_DEAD_SPACE] + app_ds) / 1000.0
         ok_breath = converged and math.isfinite(pplat) and not (va <= 0.05)
         if not ok_breath:
             # predict's stand-ins where the mechanics failed (that case's numbers are NaN in the end).
             f_eff, over, mean_paw, va = 1.0, 0.0, paw_ref, 1.0
         # predict: shunt of the collapsed recruitable lung, dead space of the overdistended lung,
         # cardiac output with mean airway pressure (recruitment.cardiac_output_with_paw).
-        shunt = _clip(par[i, 0] + rsr * par[i, 1] * (1.0 - f_eff), 0.0, 0.8)
-        ads = _clip(par[i, 3] + par[i, 12] * over, 0.0, 0.8)
+        shunt = _clip(par[i, _P_SHUNT_FIXED] + rsr * par[i, _P_RECRUITABLE] * (1.0 - f_eff), 0.0, 0.8)
+        ads = _clip(par[i, _P_DEAD_SPACE_FRACTION] + par[i, _P_OVERDISTENSION_DEAD_SPACE] * over, 0.0, 0.8)
         drop = preload * 0.25 * MMHG_PER_CMH2O * (mean_paw - paw_ref) / 12.0
-        co = par[i, 6] * _clip(1.0 - drop, 0.2, 2.0)
+        co = par[i, _P_CARDIAC_OUTPUT_REF] * _clip(1.0 - drop, 0.2, 2.0)
         co_lung = _clip(co, 1.0, 20.0)
         va_lung = _clip(va, 0.5, 30.0)
         keep[i, _K_OK_BREATH] = 1.0 if ok_breath else 0.0
         keep[i, _K_PPLAT], keep[i, _K_PPEAK], keep[i, _K_VT_ML] = pplat, ppeak, 1000.0 * vt
         keep[i, _K_VE], keep[i, _K_CO], keep[i, _K_VA] = ve, co, va_lung
-        sbe = par[i, 9]
+        sbe = par[i, _P_BASE_EXCESS]
         keep[i, _K_SBE] = sbe
         # compartments._distribution: the log-normal perfusion over the unit grid, with a low-V/Q mode.
-        sd = par[i, 2]
-        f_low = par[i, 13]
+        sd = par[i, _P_LOG_SD]
+        f_low = par[i, _P_LOW_VQ_FRACTION]
         if f_low > 0.0:
             z_low = _clip(math.log(low_ratio) / max(sd, 0.05), -3.0, 0.0)
             total = 0.0
@@ -183,7 +197,7 @@ def _lung_rows(volume_mode, st, par, const, loop, z, state_p, state_c, state_cv,
             vent[i, j] = (q_perfused * w[i, j]) * vq[i, j]
         # compartments._solve_arrays: the Newton start.
         offset = (_ph_invivo(40.0, sbe) - _PH40_SBE0) if sbe != 0.0 else 0.0
-        vo2, vco2 = par[i, 4], par[i, 5]
+        vo2, vco2 = par[i, _P_VO2], par[i, _P_VCO2]
         fick_o2 = vo2 / (10.0 * co_lung)
         fick_co2 = vco2 / (10.0 * co_lung)
         pio2 = fio2 * pdry
@@ -240,7 +254,7 @@ def _finish_rows(par, const, w, vent, lcase, p, c, cvo2, cvco2, s, dpu, dcu, der
     """The accepted state, the failure rules and the observation table, case by case (see the module
     notes); the warm-start state of each case (NaN where it failed)."""
     n, nu = w.shape
-    share = const[9]
+    share = const[_C_END_TIDAL_SHARE]
     for i in range(n):
         ns, shunt = lcase[i, 3], lcase[i, 4]
         dv1, dv2 = flags[i, 0], flags[i, 1]
@@ -270,18 +284,18 @@ def _finish_rows(par, const, w, vent, lcase, p, c, cvo2, cvco2, s, dpu, dcu, der
         mixed = flow / keep[i, _K_VA]
         ph = _ph_invivo(pa_co2 if ok else 40.0, keep[i, _K_SBE])
         nan = 1.0 if ok else math.nan
-        out[i, 0] = pa_o2 * nan
-        out[i, 1] = pa_co2 * nan
-        out[i, 2] = ph * nan
-        out[i, 3] = s[i, nu] * nan
-        out[i, 4] = (mixed + share * (pa_co2 - mixed)) * nan
-        out[i, 5] = (pa_co2 - mixed) * nan
-        out[i, 6] = keep[i, _K_PPLAT] * nan
-        out[i, 7] = keep[i, _K_PPEAK] * nan
-        out[i, 8] = keep[i, _K_VT_ML] * nan
-        out[i, 9] = keep[i, _K_VE] * nan
-        out[i, 10] = par[i, 5]
-        out[i, 11] = keep[i, _K_CO] * nan
+        out[i, _O_PAO2] = pa_o2 * nan
+        out[i, _O_PACO2] = pa_co2 * nan
+        out[i, _O_PH] = ph * nan
+        out[i, _O_SAO2] = s[i, nu] * nan
+        out[i, _O_PETCO2] = (mixed + share * (pa_co2 - mixed)) * nan
+        out[i, _O_PETCO2_GAP] = (pa_co2 - mixed) * nan
+        out[i, _O_PPLAT] = keep[i, _K_PPLAT] * nan
+        out[i, _O_PPEAK] = keep[i, _K_PPEAK] * nan
+        out[i, _O_VTE_ML] = keep[i, _K_VT_ML] * nan
+        out[i, _O_VE_L_MIN] = keep[i, _K_VE] * nan
+        out[i, _O_VCO2] = par[i, _P_VCO2]
+        out[i, _O_CARDIAC_OUTPUT] = keep[i, _K_CO] * nan
         for j in range(nu + 2):
             state_p[i, j] = p[i, j] * nan
             state_c[i, j] = c[i, j] * nan
