@@ -282,8 +282,10 @@ class MainWindow(BedsideLoop, ForecastPipeline, CaseFiles, TrialEditing, QtWidge
         unchanged = out["settings"] == out["current_settings"]
         text = ("The trial equals the current settings: no change is expected." if unchanged else
                 recheck_sentence(r))
-        # A forecast outside its own likely range is said where the re-check advice is read.
-        outside = [a["message"] for a in out.get("alerts", []) if a["code"] == "estimate_outside_range"]
+        # A forecast outside its own likely range, or beyond most of its draws, is said where the re-check
+        # advice is read.
+        outside = [a["message"] for a in out.get("alerts", [])
+                   if a["code"] in ("estimate_outside_range", "estimate_atypical")]
         lines = [text] + [f"\u26a0 {m[0].upper()}{m[1:]}." for m in outside]
         if out.get("spontaneous"):  # which bound is drawn, and what the other says
             b1, b2 = out["spontaneous"]["bounds"]["effort_unchanged"], out["spontaneous"]["bounds"]["drive_preserved"]
