@@ -845,8 +845,7 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
     if out["likely_range"] is not None:
         # The point forecast comes from the fitted estimate, the range from the posterior draws; when the
         # estimate lies outside the draws' 90 % range it is atypical of what the data allow: say so.
-        q_of = {"pao2_mmhg": "pao2", "paco2_mmhg": "paco2"}
-        for key, name, digits in (("pao2_mmhg", "PaO2", 0), ("paco2_mmhg", "PaCO2", 1)):
+        for key, q, name, digits in (("pao2_mmhg", "pao2", "PaO2", 0), ("paco2_mmhg", "paco2", "PaCO2", 1)):
             lo, hi = out["likely_range"][key]
             x = steady[key]
             if x is not None and not lo <= x <= hi:
@@ -855,12 +854,12 @@ def forecast_fitted(case: dict, result, trial_dict: dict, minutes: float = 60.0,
                                           f"outside its likely range ({lo:.{digits}f} to {hi:.{digits}f} mmHg): the "
                                           f"estimate is atypical of the parameters the data allow; read the range, "
                                           f"and a second blood gas at other settings would settle it"})
-            elif x is not None and result.draws is not None:
+            elif x is not None:
                 # Inside the range but beyond the draws' quartiles: the fitted estimate (the mode of 13
                 # parameters) can sit far from the middle of what the data allow. Measured on the demos:
                 # after a PEEP rise the estimate's PaCO2 lay above 74-90 % of the draws (COPD PEEP 5 -> 8:
                 # 77.3 mmHg, draws' median 67.4), after FiO2 changes near their middle. Say where the middle is.
-                v = np.asarray(draw_table[q_of[key]], dtype=float)
+                v = np.asarray(draw_table[q], dtype=float)
                 v = v[np.isfinite(v)]
                 if v.size:
                     above = float(np.mean(v < x))

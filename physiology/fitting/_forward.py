@@ -195,53 +195,54 @@ def _lung_rows(volume_mode, st, par, const, loop, z, state_p, state_c, state_cv,
         for j in range(nu):
             vq[i, j] = scale * shape[j]
             vent[i, j] = (q_perfused * w[i, j]) * vq[i, j]
-        # compartments._solve_arrays: the Newton start.
+        # compartments._solve_arrays: the Newton start, from the warm start where it is complete (the
+        # sampler's proposals, nearly always), else from the standard guesses (computed only then).
         offset = (_ph_invivo(40.0, sbe) - _PH40_SBE0) if sbe != 0.0 else 0.0
         vo2, vco2 = par[i, _P_VO2], par[i, _P_VCO2]
         fick_o2 = vo2 / (10.0 * co_lung)
         fick_co2 = vco2 / (10.0 * co_lung)
-        pio2 = fio2 * pdry
-        pa_co2_guess = _clip(k_btps * vco2 / va_perfused, 15.0, 150.0)
-        r_guess = _clip(vco2 / vo2, 0.5, 1.5)
-        pa_ideal = max(pio2 - pa_co2_guess * (fio2 + (1.0 - fio2) / r_guess), 30.0)
-        cc_ideal = cap * _sev(pa_ideal) + O2_SOLUBILITY * pa_ideal
-        cv_guess = cc_ideal - fick_o2 / max(ns, 0.2)
-        sv_guess = _clip((cv_guess - O2_SOLUBILITY * 35.0) / cap, 0.2, 0.9)
-        pv_o2 = _ellis(sv_guess)
-        pv_co2 = pa_co2_guess + fick_co2 / beta
-        cv1, cv2, _s, _ph = _contents(pv_o2, pv_co2, 0.75, hb, hct, temp, offset, cap, sol, lkt, dpk, True)
-        mean_p = 0.0
-        mean_c = 0.0
-        for j in range(nu):
-            ko2 = (1.0 - fio2) * (k_flux / vq[i, j])
-            cu = k_flux * beta * pv_co2 / (vq[i, j] + k_flux * beta)
-            num = pio2 * (1.0 - cu / pdry) + ko2 * b_o2 * pv_o2
-            den = pio2 / pdry + (1.0 - fio2) + ko2 * b_o2
-            pu = _clip(num / den, pv_o2, max(pio2 - cu, pv_o2 + 1.0))
-            cu = max(cu, 0.5)
-            p[i, j] = pu
-            c[i, j] = cu
-            mean_p += w[i, j] * pu
-            mean_c += w[i, j] * cu
-        p[i, nu], p[i, nu + 1] = mean_p, pv_o2
-        c[i, nu], c[i, nu + 1] = mean_c, pv_co2
-        cvo2[i], cvco2[i] = cv1, cv2
         warm = math.isfinite(state_cv[i, 0]) and math.isfinite(state_cv[i, 1])
         for j in range(nu + 2):
             if not (math.isfinite(state_p[i, j]) and state_p[i, j] > 0.0
                     and math.isfinite(state_c[i, j]) and state_c[i, j] > 0.0):
                 warm = False
-        for j in range(nu + 2):
-            if warm:
+        if warm:
+            for j in range(nu + 2):
                 p[i, j], c[i, j] = state_p[i, j], state_c[i, j]
                 # compartments._Blood.saturation_guess
                 lnc = math.log(c[i, j])
                 ph = 7.59 + offset + 0.003 * hb * 0.25 - 0.2741 * (lnc - _LN20)
                 s_lag[i, j] = _sev(p[i, j] * math.exp(lkt + _BOHR * (ph - 7.4) + 0.06 * (_LN40 - lnc)))
-            else:
-                s_lag[i, j] = 0.9
-        if warm:
             cvo2[i], cvco2[i] = state_cv[i, 0], state_cv[i, 1]
+        else:
+            pio2 = fio2 * pdry
+            pa_co2_guess = _clip(k_btps * vco2 / va_perfused, 15.0, 150.0)
+            r_guess = _clip(vco2 / vo2, 0.5, 1.5)
+            pa_ideal = max(pio2 - pa_co2_guess * (fio2 + (1.0 - fio2) / r_guess), 30.0)
+            cc_ideal = cap * _sev(pa_ideal) + O2_SOLUBILITY * pa_ideal
+            cv_guess = cc_ideal - fick_o2 / max(ns, 0.2)
+            sv_guess = _clip((cv_guess - O2_SOLUBILITY * 35.0) / cap, 0.2, 0.9)
+            pv_o2 = _ellis(sv_guess)
+            pv_co2 = pa_co2_guess + fick_co2 / beta
+            cv1, cv2, _s, _ph = _contents(pv_o2, pv_co2, 0.75, hb, hct, temp, offset, cap, sol, lkt, dpk, True)
+            mean_p = 0.0
+            mean_c = 0.0
+            for j in range(nu):
+                ko2 = (1.0 - fio2) * (k_flux / vq[i, j])
+                cu = k_flux * beta * pv_co2 / (vq[i, j] + k_flux * beta)
+                num = pio2 * (1.0 - cu / pdry) + ko2 * b_o2 * pv_o2
+                den = pio2 / pdry + (1.0 - fio2) + ko2 * b_o2
+                pu = _clip(num / den, pv_o2, max(pio2 - cu, pv_o2 + 1.0))
+                cu = max(cu, 0.5)
+                p[i, j] = pu
+                c[i, j] = cu
+                mean_p += w[i, j] * pu
+                mean_c += w[i, j] * cu
+            p[i, nu], p[i, nu + 1] = mean_p, pv_o2
+            c[i, nu], c[i, nu + 1] = mean_c, pv_co2
+            cvo2[i], cvco2[i] = cv1, cv2
+            for j in range(nu + 2):
+                s_lag[i, j] = 0.9
         lcase[i, 0], lcase[i, 1], lcase[i, 2], lcase[i, 3] = k_flux, pdry, fio2, ns
         lcase[i, 4], lcase[i, 5], lcase[i, 6], lcase[i, 7] = shunt, fick_o2, fick_co2, 0.02 * cap
         chem[i, 0], chem[i, 1], chem[i, 2], chem[i, 3] = hb, hct, temp, offset
