@@ -291,7 +291,7 @@ def _cmd_plan(args) -> int:
             if not caution.startswith("I:E"):
                 print(f"   {caution}")
         print(f"   PaO2 {st['pao2_mmhg']:.0f} mmHg, SaO2 {sao2_text(st['sao2'])}, PaCO2 {st['paco2_mmhg']:.1f} mmHg, pH "
-              f"{st['ph']:.2f}, Pplat {st['pplat_cmh2o']:.1f}, driving pressure {st['driving_pressure_cmh2o']:.1f} cmH2O, "
+              f"{st['ph']:.2f}, Pplat {st['pplat_cmh2o']:.1f}, driving pressure (Pplat - total PEEP) {st['driving_pressure_cmh2o']:.1f} cmH2O, "
               f"mechanical power {st['mechanical_power_j_min']:.1f} J/min")
         print("   margins to the goals and limits: " + ", ".join(
             f"{MARGIN_LABELS[k][0]} {v:+.{MARGIN_LABELS[k][2]}f} {MARGIN_LABELS[k][1]}".rstrip()

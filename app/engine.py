@@ -442,7 +442,7 @@ def limit_checks(steady: dict, goals: dict | None = None, fio2: float | None = N
     line("pplat", "Pplat", x, f"<= {pplat_max:g} cmH2O", x is not None and x > pplat_max, "pplat_high", "danger",
          f"Pplat {x or 0:.1f} cmH2O is above {pplat_max:g} cmH2O", f"{x or 0:.1f} cmH2O")
     x = v["driving_pressure_cmh2o"]
-    line("driving_pressure", "Driving pressure", x, f"<= {dp_max:g} cmH2O", x is not None and x > dp_max,
+    line("driving_pressure", "Driving pressure (Pplat - total PEEP)", x, f"<= {dp_max:g} cmH2O", x is not None and x > dp_max,
          "driving_pressure_high", "caution", f"driving pressure {x or 0:.1f} cmH2O (Pplat - total PEEP) is above {dp_max:g} cmH2O",
          f"{x or 0:.1f} cmH2O")
     x = v["vt_ml_per_kg_pbw"]

@@ -1345,3 +1345,18 @@ def test_a_breathing_trial_walkthrough_shows_the_patients_own_breathing(qtbot, q
         assert out["breathing"] and any("RSBI above 105" in t for t in lines), lines
     finally:
         _dispose_walkthrough(w, qapp)
+
+
+def test_every_driving_pressure_on_screen_says_which_peep(window):
+    """Issue 16 (labels): the bedside's driving pressure is Pplat minus set PEEP (what a clinician computes
+    from the ventilator), the model's is Pplat minus total PEEP (set plus intrinsic); the two differ with
+    gas trapping, so every one on screen says which it is: the Bedside label, the Trial table's row, the
+    Limits line and the Outlook chart's axis."""
+    bedside = [lab.text() for lab in window.bedside.findChildren(QtWidgets.QLabel)]
+    assert any(t.startswith("Driving pressure") and "set PEEP" in t for t in bedside), bedside
+    rows = [window.compare.verticalHeaderItem(r).text() for r in range(window.compare.rowCount())]
+    assert [t for t in rows if t.startswith("\u0394P")] == ["\u0394P (Pplat \u2212 PEEPtot) [cmH2O]"], rows
+    limits = [window.limits.item(r, 1).text() for r in range(window.limits.rowCount())]
+    assert any(t.startswith("Driving pressure (Pplat - total PEEP) ") for t in limits), limits
+    axis = window.outlook.plots["driving_pressure"].getAxis("left").labelText
+    assert "PEEPtot" in axis, axis

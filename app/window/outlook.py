@@ -155,7 +155,7 @@ class OutlookPanel(QtWidgets.QGroupBox):
         self.charts = {key: OutlookChart(self.plots[key], span) for key, span in spans.items()}
         _axis(self.plots["ph"], "pH")
         _axis(self.plots["pplat"], "Pplat [cmH2O]")
-        _axis(self.plots["driving_pressure"], "driving pressure [cmH2O]")
+        _axis(self.plots["driving_pressure"], "\u0394P = Pplat \u2212 PEEPtot [cmH2O]")
         _axis(self.plots["vd_vt"], "VD/VT [fraction]")
         # The goal of each gas as a pale horizontal band behind its curves (the case's goals, else the
         # published defaults), so that a forecast is read against what the team aims for.

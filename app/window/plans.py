@@ -61,7 +61,7 @@ class OptionsPanel(QtWidgets.QWidget):
             st = o["steady"]
             forecast = (f"{gas_text(st['pao2_mmhg'], units)}, SaO2 {sao2_text(st['sao2'])}, "
                         f"PaCO2 {gas_text(st['paco2_mmhg'], units, 1)}, pH {st['ph']:.2f}, "
-                        f"Pplat {st['pplat_cmh2o']:.1f}, \u0394P {st['driving_pressure_cmh2o']:.1f}, "
+                        f"Pplat {st['pplat_cmh2o']:.1f}, \u0394P (Pplat \u2212 total PEEP) {st['driving_pressure_cmh2o']:.1f}, "
                         f"intrinsic PEEP {st['intrinsic_peep_cmh2o']:.1f} cmH2O, "
                         f"mechanical power {st['mechanical_power_j_min']:.1f} J/min")
             changes = "\n".join(o["changes"] + [ie_text(o["i_to_e"])] + [c for c in o["cautions"] if not c.startswith("I:E")])

@@ -24,7 +24,7 @@ class TrialPanel(QtWidgets.QGroupBox):
 
     COMPARE_ROWS = (("PaO2", "pao2_mmhg", "gas", 0), ("PaCO2", "paco2_mmhg", "gas", 1), ("pH", "ph", "", 2),
                     ("SaO2", "sao2", "%", 0), ("VD/VT", "vd_vt", "", 2), ("Pplat", "pplat_cmh2o", "cmH2O", 1),
-                    ("\u0394P", "driving_pressure_cmh2o", "cmH2O", 1),
+                    ("\u0394P (Pplat \u2212 PEEPtot)", "driving_pressure_cmh2o", "cmH2O", 1),
                     ("Mech. power", "mechanical_power_j_min", "J/min", 1),
                     ("PEEPi", "intrinsic_peep_cmh2o", "cmH2O", 1), ("VT", "vt_ml", "mL", 0),
                     ("VT", "vt_ml_per_kg_pbw", "mL/kg PBW", 1), ("Rate", "rr_per_min", "/min", 0),
