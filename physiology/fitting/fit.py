@@ -58,9 +58,9 @@ from ..bloodgas.acidbase import _ph_invivo, bicarbonate_henderson_hasselbalch
 from ..bloodgas.oxygen import HUFNER_DEFAULT, saturation
 from ..forecast import PatientModel, Prediction, predict
 from ..gasexchange.alveolar import alveolar_po2
-from ..gasexchange.compartments import UNIT_GRIDS, LungParameters, split_rows, warm_start
+from ..gasexchange.compartments import NEWTON_MAX_ITER, UNIT_GRIDS, LungParameters, split_rows, warm_start
 from ..indices import predicted_body_weight
-from ..mechanics.ventilator import Mechanics, Settings
+from ..mechanics.ventilator import BREATH_MAX_ITER, Mechanics, Settings
 from ..measurement import SD
 from .priors import RQ_WARNING_RANGE, condition_priors, parameter_names, structure
 
@@ -481,8 +481,9 @@ class _Problem:
                 sp, sc, scv = np.full((n, width), np.nan), np.full((n, width), np.nan), np.full((n, 2), np.nan)
             table = np.empty((n, len(OUT)))
             volume = mode == "volume"
-            split_rows(lambda lo, hi: forward(volume, st[lo:hi], par[lo:hi], self._const, z, tol, 80, mech_tol, 60,
-                                              sp[lo:hi], sc[lo:hi], scv[lo:hi], table[lo:hi]), n)
+            split_rows(lambda lo, hi: forward(volume, st[lo:hi], par[lo:hi], self._const, z, tol, NEWTON_MAX_ITER,
+                                              mech_tol, BREATH_MAX_ITER, sp[lo:hi], sc[lo:hi], scv[lo:hi],
+                                              table[lo:hi]), n)
             self.states[mode] = {"p": sp, "c": sc, "cvo2": scv[:, 0].copy(), "cvco2": scv[:, 1].copy()}
             for col, pos, q, is_petco2 in self._cols[mode]:
                 out[:, col] = table[:, q].reshape(K, m)[:, pos]

@@ -637,6 +637,9 @@ def warm_start(previous: "SteadyState") -> dict:
             "cvco2": np.atleast_1d(np.asarray(previous.cvco2, dtype=float))}
 
 
+#: Newton iteration limit of a steady-state solve (the forecast's, and the fit's compiled forward model's).
+NEWTON_MAX_ITER = 80
+
 #: Cases per chunk: bounds the (chunk x units) work arrays of a large batch (a plan screens tens of
 #: thousands of settings). 2048 holds a six-gas fit's 1,200 sampler rows in one chunk: joining chunks
 #: cost more than it saved (six-gas fit 1.36 -> 1.06 s, medians of 5 interleaved runs against 512; a
@@ -644,7 +647,7 @@ def warm_start(previous: "SteadyState") -> dict:
 CHUNK = 2048
 
 
-def solve_steady_state(params: LungParameters, tol: float = 1e-4, max_iter: int = 80,
+def solve_steady_state(params: LungParameters, tol: float = 1e-4, max_iter: int = NEWTON_MAX_ITER,
                        start: dict | None = None, units: str = "full") -> SteadyState:
     """Solve the V/Q lung and body to steady state for one case or a batch.
 

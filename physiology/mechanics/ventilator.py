@@ -38,6 +38,8 @@ SETTING_LIMITS = {
     "pause": (0.0, 2.0, "s"),
 }
 VT_PER_KG_LIMITS = (2.0, 20.0)
+#: Iteration limit of the breathing loop (the forecast's, and the fit's compiled forward model's).
+BREATH_MAX_ITER = 60
 
 
 @dataclass(frozen=True)
@@ -232,7 +234,7 @@ class Breathing:
     mechanics: Mechanics = field(repr=False)
 
 
-def breathe(settings: Settings, mechanics: Mechanics, pbw_kg=None, max_iter: int = 60,
+def breathe(settings: Settings, mechanics: Mechanics, pbw_kg=None, max_iter: int = BREATH_MAX_ITER,
             tol: float = 1e-10) -> Breathing:
     """Steady breathing pattern for the settings and patient mechanics (batched).
 
